@@ -1,0 +1,1 @@
+"""Infinite-width theory: mean field (length and correlation maps) and free probability."""
