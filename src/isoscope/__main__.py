@@ -1,0 +1,7 @@
+"""``python -m isoscope``."""
+
+import sys
+
+from isoscope.cli import main
+
+sys.exit(main())

@@ -1,0 +1,207 @@
+"""One analysis end to end: build, draw, differentiate, measure, score.
+
+``analyze(spec) -> Analysis``.  For each of ``spec.analysis.inputs`` draws the key
+``fold_in(PRNGKey(seed), i)`` is split into a parameter key and an input key, so a spec and
+its seed fix every number.  Inputs are resolved here because the default (the network's
+steady state) needs the mean-field length map: measurement and theory never import each
+other, this module joins them.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import functools
+import math
+import time
+from pathlib import Path
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+
+from isoscope import jacobian as jac
+from isoscope.errors import InputError, TheoryError
+from isoscope.network import Network, plain_stack, residual_stack
+from isoscope.score import Score, non_finite_score, score_spectrum
+from isoscope.spec import Spec
+from isoscope.spectrum import Spectrum, from_singular_values
+from isoscope.theory import mean_field
+
+__all__ = ["Analysis", "InputPlan", "analyze", "build_network", "plan_inputs"]
+
+# Relative accuracy of an SVD is about n * eps * s_max: below 10^-(digits) of the largest,
+# small singular values are noise.  Digits usable per dtype (common practice, no source:
+# a few digits short of the dtype's, to leave room for the n factor).
+_RELIABLE_DIGITS = {"float64": 13.0, "float32": 5.0}
+
+
+@dataclasses.dataclass(frozen=True)
+class InputPlan:
+    """How inputs are drawn.
+
+    Attributes:
+      kind: ``"steady-state"`` (``x = phi(h)``, ``h ~ N(0, q)``), ``"gaussian"``
+        (``x ~ N(0, variance)``) or ``"file"``.
+      variance: q for steady-state, the variance for gaussian, the file's mean square otherwise.
+      detail: one sentence for the report.
+    """
+
+    kind: str
+    variance: float
+    detail: str
+
+
+@dataclasses.dataclass(frozen=True)
+class Analysis:
+    """The result of analysing one design.
+
+    Attributes:
+      spec: the resolved spec.
+      inputs: how inputs were drawn.
+      spectrum: pooled measurement (``None`` when it overflowed).
+      fault: where the measurement overflowed, if it did.
+      score: the isometry score and verdict.
+      warnings: sentences a user must read before trusting the numbers.
+      seconds: wall time per stage.
+    """
+
+    spec: Spec
+    inputs: InputPlan
+    spectrum: Spectrum | None
+    fault: jac.Fault | None
+    score: Score
+    warnings: tuple[str, ...]
+    seconds: dict[str, float]
+
+
+def build_network(spec: Spec) -> Network:
+    """The :class:`~isoscope.network.Network` a spec describes."""
+    n, i = spec.network, spec.init
+    if n.family == "residual":
+        return residual_stack(n.width, n.depth, n.activation, weights=i.weights,
+                              sigma_w=i.sigma_w, sigma_b=i.sigma_b, alpha=n.alpha)
+    return plain_stack(n.width, n.depth, n.activation, weights=i.weights,
+                       sigma_w=i.sigma_w, sigma_b=i.sigma_b)
+
+
+def plan_inputs(spec: Spec) -> tuple[InputPlan, tuple[str, ...]]:
+    """Resolve the input distribution, with warnings when the requested one is unavailable.
+
+    Steady state (plain stacks): h ~ N(0, q*) with q* the fixed point of the length map
+    ``V(q) = sigma_w^2 E[phi(sqrt(q) z)^2] + sigma_b^2`` (Poole et al. 2016, sec. 2), so that
+    every layer sees pre-activations of variance q*.  Residual stacks have no fixed point
+    (the length grows with depth); their steady-state inputs are Gaussian of the spec's
+    ``input_variance``.
+    """
+    a = spec.analysis
+    if a.input == "file":
+        return InputPlan("file", math.nan, f"inputs read from {a.input_file}"), ()
+    if a.input == "gaussian":
+        return InputPlan("gaussian", a.input_variance,
+                         f"x ~ N(0, {a.input_variance:g}) in every coordinate"), ()
+    if spec.network.family == "residual":
+        return (InputPlan("gaussian", a.input_variance,
+                          f"x ~ N(0, {a.input_variance:g}): a residual stack has no steady state"),
+                ())
+    try:
+        q = mean_field.fixed_point(spec.network.activation, spec.init.sigma_w, spec.init.sigma_b)
+    except TheoryError as e:
+        msg = (f"no steady state for these settings ({e}); inputs fall back to "
+               f"x ~ N(0, {a.input_variance:g})")
+        return InputPlan("gaussian", a.input_variance, msg), (msg,)
+    return (InputPlan("steady-state", q, f"x = phi(h), h ~ N(0, q*) with q* = {q:.6g} "
+                      "(fixed point of the length map)"), ())
+
+
+def _load_inputs(spec: Spec, dtype) -> np.ndarray:
+    a, n = spec.analysis, spec.network.width
+    path = Path(a.input_file)
+    try:
+        x = np.load(path, allow_pickle=False)
+    except FileNotFoundError:
+        raise InputError(f"input file {str(path)!r} does not exist", expected="a .npy file",
+                         file=spec.source, key="analysis.input_file") from None
+    except (ValueError, OSError) as e:
+        raise InputError(f"input file {str(path)!r} is not a readable .npy array ({e})",
+                         expected="a file written by numpy.save", file=spec.source,
+                         key="analysis.input_file") from None
+    if x.shape == (n,):
+        x = np.broadcast_to(x, (a.inputs, n))
+    if x.shape != (a.inputs, n) or not np.issubdtype(x.dtype, np.number):
+        raise InputError(f"input file {str(path)!r} holds an array of shape {x.shape} and dtype {x.dtype}",
+                         expected=f"a numeric array of shape ({n},) or ({a.inputs}, {n}) "
+                                  "(width, or inputs x width)",
+                         file=spec.source, key="analysis.input_file",
+                         hint="save one row per draw, or set analysis.inputs to the number of rows")
+    if not np.all(np.isfinite(x)):
+        raise InputError(f"input file {str(path)!r} contains inf or NaN", expected="finite values",
+                         file=spec.source, key="analysis.input_file")
+    return np.asarray(x, dtype=dtype)
+
+
+def _draw_input(plan: InputPlan, network: Network, key, dtype) -> jax.Array:
+    z = jax.random.normal(key, (network.width,), dtype)
+    if plan.kind == "steady-state":
+        return network.activation.fn(jnp.sqrt(jnp.asarray(plan.variance, dtype)) * z)
+    return jnp.sqrt(jnp.asarray(plan.variance, dtype)) * z
+
+
+@functools.lru_cache(maxsize=None)
+def _svd_values():
+    return jax.jit(lambda m: jnp.linalg.svd(m, compute_uv=False))
+
+
+def _precision_warnings(spectrum: Spectrum) -> tuple[str, ...]:
+    digits = _RELIABLE_DIGITS.get(spectrum.dtype, 13.0)
+    if spectrum.log10_condition > digits:
+        return (f"singular values span {spectrum.log10_condition:.1f} decades, more than the "
+                f"{digits:.0f} that an SVD in {spectrum.dtype} resolves: the smallest ones are "
+                "rounding noise" + (" (use dtype = \"float64\")" if spectrum.dtype == "float32" else
+                                   "; their count is reported as numerically zero"),)
+    return ()
+
+
+def analyze(spec: Spec) -> Analysis:
+    """Measure and score one design.
+
+    For each draw i: parameters ``network.init(k_params)``, an input from the resolved
+    :class:`InputPlan`, the exact Jacobian by ``jax.jacfwd``, its singular values.  Draws are
+    pooled in one :class:`~isoscope.spectrum.Spectrum`.  If any draw overflows, the analysis
+    reports where (forward pass or Jacobian, and the first layer) and scores ``non-finite``.
+    """
+    t0 = time.perf_counter()
+    network = build_network(spec)
+    dtype = jnp.float64 if spec.analysis.dtype == "float64" else jnp.float32
+    plan, warnings = plan_inputs(spec)
+    file_inputs = _load_inputs(spec, dtype) if plan.kind == "file" else None
+    if file_inputs is not None:
+        plan = dataclasses.replace(plan, variance=float(np.mean(file_inputs.astype(np.float64) ** 2)))
+    root = jax.random.PRNGKey(spec.analysis.seed)
+    seconds = {"jacobian": 0.0, "svd": 0.0}
+    singular, fault = [], None
+    for i in range(spec.analysis.inputs):
+        k_params, k_input = jax.random.split(jax.random.fold_in(root, i))
+        params = network.init(k_params, dtype)
+        x = (jnp.asarray(file_inputs[i]) if file_inputs is not None
+             else _draw_input(plan, network, k_input, dtype))
+        t = time.perf_counter()
+        jmat = jac.dense_jacobian(network, params, x).block_until_ready()
+        seconds["jacobian"] += time.perf_counter() - t
+        if not bool(jnp.all(jnp.isfinite(jmat))):
+            fault = (jac.forward_fault(network, params, x) or jac.jacobian_fault(network, params, x)
+                     or jac.Fault("jacobian", 0, "the Jacobian is not finite"))
+            break
+        t = time.perf_counter()
+        singular.append(np.asarray(_svd_values()(jmat)))
+        seconds["svd"] += time.perf_counter() - t
+    if fault is not None:
+        spectrum, score = None, non_finite_score(f"draw {i}: {fault.detail}")
+        warnings += (f"measurement stopped: {fault.detail} (draw {i}); lower sigma_w or the depth, "
+                     "or use float64",)
+    else:
+        spectrum = from_singular_values(np.stack(singular), dtype)
+        score = score_spectrum(spectrum, spec.network.depth)
+        warnings += _precision_warnings(spectrum)
+    seconds["total"] = time.perf_counter() - t0
+    return Analysis(spec=spec, inputs=plan, spectrum=spectrum, fault=fault, score=score,
+                    warnings=warnings, seconds=seconds)

@@ -1,0 +1,154 @@
+"""Weight and bias initializers: ``(key, shape, dtype) -> Array`` factories.
+
+Shapes follow ``h = W x``: a weight matrix has shape ``(..., fan_out, fan_in)``; leading axes
+are a stack of independent matrices (one per layer).  Each factory takes the *scale*
+(sigma_w or sigma_b, a standard deviation times sqrt(fan_in) for weights), never its square.
+
+The unit samplers are jit-compiled once per shape and dtype; the scale multiplies outside the
+compiled function, so sampling at a new sigma does not recompile anything.
+"""
+
+from __future__ import annotations
+
+import functools
+from collections.abc import Callable
+from typing import Protocol
+
+import jax
+import jax.numpy as jnp
+
+from isoscope.errors import InputError
+
+__all__ = ["Initializer", "gaussian", "orthogonal", "uniform", "gaussian_bias",
+           "get_initializer", "initializer_names"]
+
+
+class Initializer(Protocol):
+    """``(key, shape, dtype) -> Array``: draws one array of the given shape."""
+
+    def __call__(self, key: jax.Array, shape: tuple[int, ...], dtype=jnp.float64) -> jax.Array: ...
+
+
+def _fans(shape: tuple[int, ...]) -> tuple[int, int]:
+    if len(shape) < 2:
+        raise InputError(f"weight shape {shape} has fewer than 2 axes",
+                         expected="(..., fan_out, fan_in)")
+    return int(shape[-2]), int(shape[-1])
+
+
+@functools.partial(jax.jit, static_argnums=(1, 2))
+def _unit_normal(key, shape, dtype):
+    return jax.random.normal(key, shape, dtype)
+
+
+@functools.partial(jax.jit, static_argnums=(1, 2))
+def _unit_uniform(key, shape, dtype):
+    return jax.random.uniform(key, shape, dtype, minval=-1.0, maxval=1.0)
+
+
+@functools.partial(jax.jit, static_argnums=(1, 2))
+def _haar(key, shape, dtype):
+    """Haar-distributed matrices with orthonormal rows or columns (Mezzadri 2007, sec. 5).
+
+    Z has i.i.d. N(0, 1) entries; Z = Q R; Q <- Q diag(sign(diag R)).  Without the sign fix
+    the law of Q is not Haar (det Q takes one sign only).
+    """
+    fan_out, fan_in = shape[-2], shape[-1]
+    tall = fan_out >= fan_in
+    rows, cols = (fan_out, fan_in) if tall else (fan_in, fan_out)
+    z = jax.random.normal(key, (*shape[:-2], rows, cols), dtype)
+    q, r = jnp.linalg.qr(z)
+    signs = jnp.sign(jnp.diagonal(r, axis1=-2, axis2=-1))
+    signs = jnp.where(signs == 0, 1.0, signs).astype(dtype)
+    q = q * signs[..., None, :]
+    return q if tall else jnp.swapaxes(q, -1, -2)
+
+
+def gaussian(scale: float = 1.0) -> Initializer:
+    """Gaussian weights, ``W_ij ~ N(0, scale^2 / fan_in)``.
+
+    With ``scale = sqrt(2)`` and ReLU this is He et al. 2015 (sec. 2.2); with ``scale = 1``,
+    LeCun's fan-in variance.
+    """
+    scale = float(scale)
+
+    def init(key, shape, dtype=jnp.float64):
+        _, fan_in = _fans(shape)
+        return _unit_normal(key, tuple(shape), dtype) * jnp.asarray(scale / fan_in ** 0.5, dtype)
+
+    return init
+
+
+def orthogonal(scale: float = 1.0) -> Initializer:
+    """Scaled Haar-orthogonal weights, ``W = scale * Q``.
+
+    Q is Haar on the orthogonal group for square shapes, with orthonormal columns
+    (fan_out > fan_in) or rows (fan_out < fan_in) otherwise.  Its singular values all equal
+    ``scale``; its mean squared entry is ``scale^2 / max(fan_in, fan_out)``.
+
+    References: Mezzadri 2007, "How to generate random matrices from the classical compact
+    groups", Notices AMS 54, sec. 5 (QR with the sign fix).
+    """
+    scale = float(scale)
+
+    def init(key, shape, dtype=jnp.float64):
+        _fans(shape)
+        return _haar(key, tuple(shape), dtype) * jnp.asarray(scale, dtype)
+
+    return init
+
+
+def uniform(scale: float = 1.0) -> Initializer:
+    """Uniform weights on ``[-a, a]`` with the fan-based bound ``a = scale * sqrt(6 / (fan_in + fan_out))``.
+
+    The variance is ``scale^2 * 2 / (fan_in + fan_out)`` (Glorot & Bengio 2010, eq. 16 with a
+    gain); for square layers it equals the Gaussian ``scale^2 / fan_in``, so sigma_w keeps its
+    meaning across initializers.
+    """
+    scale = float(scale)
+
+    def init(key, shape, dtype=jnp.float64):
+        fan_out, fan_in = _fans(shape)
+        bound = scale * (6.0 / (fan_in + fan_out)) ** 0.5
+        return _unit_uniform(key, tuple(shape), dtype) * jnp.asarray(bound, dtype)
+
+    return init
+
+
+def gaussian_bias(scale: float = 0.0) -> Initializer:
+    """Biases ``b_i ~ N(0, scale^2)`` (scale is sigma_b; zero gives exact zeros)."""
+    scale = float(scale)
+
+    def init(key, shape, dtype=jnp.float64):
+        return _unit_normal(key, tuple(shape), dtype) * jnp.asarray(scale, dtype)
+
+    return init
+
+
+_WEIGHT_INITIALIZERS: dict[str, Callable[[float], Initializer]] = {
+    "gaussian": gaussian,
+    "orthogonal": orthogonal,
+    "uniform": uniform,
+}
+
+
+def initializer_names() -> tuple[str, ...]:
+    """Names accepted by :func:`get_initializer`."""
+    return tuple(_WEIGHT_INITIALIZERS)
+
+
+def get_initializer(name: str, scale: float) -> Initializer:
+    """The weight initializer registered under ``name``, at the given scale sigma_w.
+
+    Raises:
+      InputError: for an unknown name (the message lists the allowed names) or a negative scale.
+    """
+    key = str(name).lower()
+    if key not in _WEIGHT_INITIALIZERS:
+        raise InputError(f"unknown weight initializer {name!r}",
+                         expected=f"one of {', '.join(_WEIGHT_INITIALIZERS)}",
+                         hint="check the spelling")
+    if not scale >= 0:
+        raise InputError(f"weight scale sigma_w = {scale!r} is negative or not a number",
+                         expected="a number >= 0", hint="give sigma_w as a scale, not a variance")
+    return _WEIGHT_INITIALIZERS[key](scale)

@@ -1,0 +1,298 @@
+"""Results as files: versioned JSON, figures, a self-contained HTML page, a terminal table.
+
+Output folders are written crash-safe: everything goes into a temporary sibling folder, which
+is renamed into place only when complete.  An existing folder is replaced only if isoscope
+wrote it (it holds the marker file ``.isoscope-output``); any other non-empty folder is left
+alone and the run stops with an error, so nothing a user saved is overwritten.
+"""
+
+from __future__ import annotations
+
+import base64
+import html
+import json
+import math
+import os
+import platform
+import shutil
+import tempfile
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from isoscope.analysis import Analysis
+from isoscope.errors import InputError
+
+__all__ = ["SCHEMA", "GLOSSARY", "result_dict", "to_json", "write_analysis_folder",
+           "write_comparison_folder", "summary_table", "output_folder"]
+
+SCHEMA = "isoscope.result/1"
+MARKER = ".isoscope-output"
+
+GLOSSARY = {
+    "measured.draws": "independent (parameter, input) draws pooled in the spectrum",
+    "measured.singular_values_per_draw": "singular values of each Jacobian (its smaller dimension)",
+    "measured.lambda_moments.mK": "K-th moment of lambda = s^2 over all draws, E[lambda^K], zeros included",
+    "measured.lambda_m1_draw_spread": "standard deviation of m1 across draws (sampling noise of m1)",
+    "measured.log_s.mean": "mean of ln s over the non-zero singular values",
+    "measured.log_s.std": "standard deviation of ln s over the non-zero singular values",
+    "measured.log_s.min, .max": "smallest and largest ln s over the non-zero singular values",
+    "measured.zero_fraction": "fraction of singular values at or below zero_threshold * s_max of their draw",
+    "measured.zero_threshold": "relative threshold n * eps(dtype) for a numerically zero singular value",
+    "measured.log10_condition": "log10(s_max / s_min) with s_min the smallest non-zero singular value",
+    "measured.s_quantiles.qP": "P-th percentile of the pooled singular values s (zeros included)",
+    "score.isometry": "E[min(lambda, 1/lambda)] in [0, 1]; 1 only for a perfect isometry",
+    "score.shape_score": "the isometry score after dividing lambda by m1 (gain corrected)",
+    "score.gain": "m1 = E[lambda], mean squared singular value",
+    "score.log10_gain": "log10 of m1",
+    "score.gain_per_layer": "m1^(1/L): the average factor per layer on the squared norm",
+    "score.normalised_variance": "m2/m1^2 - 1: variance of lambda/m1 (0 only if all lambda are equal)",
+    "score.log_s_std": "standard deviation of ln s (non-zero s), the spread on a log scale",
+    "score.verdict": "isometric | spread | vanishing | exploding | non-finite (see score.reason)",
+    "inputs.variance": "q* for steady-state inputs (h ~ N(0, q*)), the variance for Gaussian ones",
+    "seconds": "wall-clock seconds per stage on this machine",
+}
+
+
+def _clean(v: Any) -> Any:
+    """Plain JSON data: NaN and infinities become null, numpy scalars become Python numbers."""
+    if isinstance(v, dict):
+        return {str(k): _clean(x) for k, x in v.items()}
+    if isinstance(v, (list, tuple)):
+        return [_clean(x) for x in v]
+    if isinstance(v, (np.floating, float)):
+        f = float(v)
+        return f if math.isfinite(f) else None
+    if isinstance(v, np.integer):
+        return int(v)
+    if isinstance(v, np.ndarray):
+        return _clean(v.tolist())
+    return v
+
+
+def _environment(analysis: Analysis) -> dict[str, Any]:
+    import jax
+    return {"isoscope": __import__("isoscope").__version__, "jax": jax.__version__,
+            "numpy": np.__version__, "python": platform.python_version(),
+            "machine": platform.machine(), "device": jax.devices()[0].platform,
+            "dtype": analysis.spec.analysis.dtype,
+            "jax_enable_x64": bool(jax.config.read("jax_enable_x64"))}
+
+
+def _measured(analysis: Analysis) -> dict[str, Any] | None:
+    s = analysis.spectrum
+    if s is None:
+        return None
+    lo, hi = s.log_s_range
+    return {
+        "method": "dense Jacobian by jax.jacfwd, singular values by SVD" if s.method == "svd" else s.method,
+        "draws": s.draws,
+        "singular_values_per_draw": s.size,
+        "lambda_moments": s.lambda_moments,
+        "lambda_m1_draw_spread": float(np.std(s.lambda_moment_draws(1))) if s.draws > 1 else None,
+        "log_s": {"mean": s.log_s_mean, "std": s.log_s_std, "min": lo, "max": hi},
+        "zero_fraction": s.zero_fraction,
+        "zero_threshold": s.threshold,
+        "log10_condition": s.log10_condition,
+        "s_quantiles": s.s_quantiles,
+    }
+
+
+def result_dict(analysis: Analysis) -> dict[str, Any]:
+    """The result of one analysis as plain JSON-ready data (schema ``isoscope.result/1``)."""
+    f = analysis.fault
+    return _clean({
+        "schema": SCHEMA,
+        "name": analysis.spec.name,
+        "spec": analysis.spec.to_dict(),
+        "environment": _environment(analysis),
+        "inputs": {"kind": analysis.inputs.kind, "variance": analysis.inputs.variance,
+                   "detail": analysis.inputs.detail},
+        "measured": _measured(analysis),
+        "fault": None if f is None else {"stage": f.stage, "layer": f.layer, "detail": f.detail},
+        "score": analysis.score._asdict(),
+        "warnings": list(analysis.warnings),
+        "seconds": analysis.seconds,
+        "glossary": GLOSSARY,
+    })
+
+
+def to_json(data: Any) -> str:
+    """Strict JSON text (no NaN), indented."""
+    return json.dumps(_clean(data), indent=2, allow_nan=False) + "\n"
+
+
+# ----------------------------------------------------------------------------- folders
+class output_folder:
+    """Context manager: a temporary folder that replaces ``target`` only on success.
+
+    ``with output_folder(path) as tmp: ...write into tmp...``.  On an exception the
+    temporary folder is removed and ``target`` is untouched.
+    """
+
+    def __init__(self, target: str | Path):
+        self.target = Path(target)
+
+    def __enter__(self) -> Path:
+        t = self.target
+        if t.exists() and not t.is_dir():
+            raise InputError(f"output path {str(t)!r} exists and is not a folder",
+                             expected="a new or isoscope-written folder", hint="choose another --out")
+        if t.is_dir() and any(t.iterdir()) and not (t / MARKER).exists():
+            raise InputError(f"output folder {str(t)!r} is not empty and was not written by isoscope",
+                             expected="a new folder, an empty one, or one isoscope wrote before",
+                             hint="choose another --out; isoscope never overwrites other files")
+        t.parent.mkdir(parents=True, exist_ok=True)
+        self.tmp = Path(tempfile.mkdtemp(prefix=f".{t.name}.partial-", dir=t.parent))
+        return self.tmp
+
+    def __exit__(self, exc_type, exc, tb) -> bool:
+        if exc_type is not None:
+            shutil.rmtree(self.tmp, ignore_errors=True)
+            return False
+        (self.tmp / MARKER).write_text("written by isoscope; this folder is replaced on the next run\n")
+        os.chmod(self.tmp, 0o755)
+        old = None
+        if self.target.exists():
+            old = self.target.with_name(f".{self.target.name}.old-{os.getpid()}")
+            os.replace(self.target, old)
+        os.replace(self.tmp, self.target)
+        if old is not None:
+            shutil.rmtree(old, ignore_errors=True)
+        return False
+
+
+def _figures(analysis: Analysis, folder: Path, prefix: str = "") -> dict[str, Path]:
+    from isoscope import plot
+    if analysis.spectrum is None:
+        return {}
+    name = analysis.spec.name
+    out = {}
+    fig = plot.log_s_figure(analysis.spectrum, f"{name}: singular values s of J (log axis)")
+    out["log_s"] = plot.save(fig, folder / f"{prefix}spectrum-log-s")[0]
+    fig = plot.lambda_figure(analysis.spectrum, f"{name}: eigenvalues lambda = s^2 of J J^T")
+    out["lambda"] = plot.save(fig, folder / f"{prefix}spectrum-lambda")[0]
+    return out
+
+
+def _img(path: Path, alt: str) -> str:
+    data = base64.b64encode(path.read_bytes()).decode("ascii")
+    return f'<img alt="{html.escape(alt)}" src="data:image/png;base64,{data}">'
+
+
+def _fmt(v: Any) -> str:
+    if v is None:
+        return "—"
+    if isinstance(v, float):
+        if not math.isfinite(v):
+            return "—"
+        return f"{v:.4g}"
+    return html.escape(str(v))
+
+
+_ROWS = (
+    ("verdict", lambda r: r["score"]["verdict"]),
+    ("isometry score", lambda r: r["score"]["isometry"]),
+    ("shape score (gain corrected)", lambda r: r["score"]["shape_score"]),
+    ("gain m1 = E[lambda]", lambda r: r["score"]["gain"]),
+    ("gain per layer m1^(1/L)", lambda r: r["score"]["gain_per_layer"]),
+    ("m2/m1^2 - 1", lambda r: r["score"]["normalised_variance"]),
+    ("mean ln s", lambda r: (r["measured"] or {}).get("log_s", {}).get("mean")),
+    ("std ln s", lambda r: (r["measured"] or {}).get("log_s", {}).get("std")),
+    ("numerically zero s", lambda r: (r["measured"] or {}).get("zero_fraction")),
+    ("log10 s_max/s_min", lambda r: (r["measured"] or {}).get("log10_condition")),
+)
+
+
+def _design_line(r: dict[str, Any]) -> str:
+    n, i, a = r["spec"]["network"], r["spec"]["init"], r["spec"]["analysis"]
+    extra = f", alpha = {n['alpha']:g}" if n["family"] == "residual" else ""
+    return (f"{n['family']} stack, width {n['width']}, depth {n['depth']}, {n['activation']}; "
+            f"{i['weights']} weights, sigma_w = {i['sigma_w']:g} (sigma_w^2 = {i['sigma_w'] ** 2:.4g}), "
+            f"sigma_b = {i['sigma_b']:g}{extra}; {a['inputs']} draws, seed {a['seed']}, {a['dtype']}")
+
+
+_CSS = """body{font-family:system-ui,sans-serif;max-width:64rem;margin:2rem auto;color:#222;padding:0 1rem}
+table{border-collapse:collapse;margin:1rem 0}td,th{border-bottom:1px solid #ccc;padding:.3rem .7rem;text-align:right}
+th:first-child,td:first-child{text-align:left}.warn{background:#fff4e0;border-left:4px solid #c4512b;padding:.5rem 1rem}
+img{max-width:100%}h2{margin-top:2.5rem;border-top:2px solid #2f6f73;padding-top:1rem}.small{color:#555;font-size:.9rem}"""
+
+
+def _html_page(title: str, intro: str, results: list[dict[str, Any]], sections: list[str]) -> str:
+    head = "".join(f"<th>{html.escape(r['name'])}</th>" for r in results)
+    body = "".join(f"<tr><td>{html.escape(label)}</td>" + "".join(f"<td>{_fmt(get(r))}</td>" for r in results)
+                   + "</tr>" for label, get in _ROWS)
+    return (f"<!doctype html><html><head><meta charset='utf-8'><title>{html.escape(title)}</title>"
+            f"<style>{_CSS}</style></head><body><h1>{html.escape(title)}</h1>{intro}"
+            f"<table><tr><th></th>{head}</tr>{body}</table>"
+            "<p class='small'>s: singular values of the input-output Jacobian J; lambda = s^2: "
+            "eigenvalues of J J^T. Isometry score = E[min(lambda, 1/lambda)]. "
+            "Verdict thresholds: gain outside [0.1, 10] is vanishing/exploding, score >= 0.8 is isometric "
+            "(isoscope's conventions).</p>"
+            + "".join(sections) + "</body></html>\n")
+
+
+def _section_html(r: dict[str, Any], figures: dict[str, Path]) -> str:
+    warn = "".join(f"<p class='warn'>{html.escape(w)}</p>" for w in r["warnings"])
+    figs = "".join(_img(p, k) for k, p in figures.items())
+    desc = f"<p>{html.escape(r['spec']['description'])}</p>" if r["spec"]["description"] else ""
+    return (f"<h2>{html.escape(r['name'])}</h2>{desc}<p class='small'>{html.escape(_design_line(r))}. "
+            f"Inputs: {html.escape(r['inputs']['detail'])}.</p>{warn}"
+            f"<p><b>{html.escape(r['score']['verdict'])}</b>: {html.escape(r['score']['reason'])}</p>{figs}")
+
+
+def write_analysis_folder(analysis: Analysis, out: str | Path) -> Path:
+    """Write ``result.json``, the figures (PNG and SVG) and ``report.html`` for one analysis."""
+    result = result_dict(analysis)
+    with output_folder(out) as tmp:
+        figures = _figures(analysis, tmp)
+        (tmp / "result.json").write_text(to_json(result))
+        page = _html_page(f"isoscope: {analysis.spec.name}", "", [result], [_section_html(result, figures)])
+        (tmp / "report.html").write_text(page)
+    return Path(out)
+
+
+def write_comparison_folder(analyses: list[Analysis], out: str | Path, title: str, intro_html: str,
+                            spec_texts: dict[str, str] | None = None) -> Path:
+    """Write a folder comparing several designs: one sub-folder per design, a summary, a page."""
+    from isoscope import plot
+    results = [result_dict(a) for a in analyses]
+    with output_folder(out) as tmp:
+        sections = []
+        for a, r in zip(analyses, results):
+            sub = tmp / a.spec.name
+            sub.mkdir()
+            (sub / "result.json").write_text(to_json(r))
+            sections.append(_section_html(r, _figures(a, sub)))
+        spectra = {a.spec.name: a.spectrum for a in analyses if a.spectrum is not None}
+        fig_html = ""
+        if spectra:
+            path = plot.save(plot.comparison_figure(spectra, "singular values s of J, all designs"),
+                             tmp / "comparison-log-s")[0]
+            fig_html = _img(path, "comparison")
+        if spec_texts:
+            (tmp / "specs").mkdir()
+            for name, text in spec_texts.items():
+                (tmp / "specs" / f"{name}.toml").write_text(text)
+        (tmp / "summary.json").write_text(to_json({"schema": SCHEMA, "title": title, "results": results}))
+        page = _html_page(title, intro_html + fig_html, results, sections)
+        (tmp / "report.html").write_text(page)
+    return Path(out)
+
+
+def summary_table(analyses: list[Analysis]) -> str:
+    """A short fixed-width table for the terminal, one row per design."""
+    cols = ("design", "verdict", "isometry", "gain m1", "m2/m1^2-1", "std ln s", "zero s")
+    rows = []
+    for a in analyses:
+        sc, sp = a.score, a.spectrum
+        rows.append((a.spec.name, sc.verdict, f"{sc.isometry:.3f}", f"{sc.gain:.4g}",
+                     f"{sc.normalised_variance:.3g}", f"{sc.log_s_std:.3f}",
+                     f"{100 * sp.zero_fraction:.1f}%" if sp is not None else "—"))
+    widths = [max(len(c), *(len(r[i]) for r in rows)) for i, c in enumerate(cols)]
+    line = lambda r: "  ".join(v.ljust(w) if i < 2 else v.rjust(w) for i, (v, w) in enumerate(zip(r, widths)))
+    out = [line(cols), "  ".join("-" * w for w in widths)] + [line(r) for r in rows]
+    for a in analyses:
+        out += [f"! {a.spec.name}: {w}" for w in a.warnings]
+    return "\n".join(out)

@@ -1,0 +1,141 @@
+"""Singular-value spectra of Jacobians, pooled over independent draws.
+
+A :class:`Spectrum` holds ``ln s`` (not s), so that it can carry spectra from QR accumulation
+whose singular values do not fit in floating point.  Everything else (lambda = s^2 moments,
+quantiles, log statistics, the numerically-zero fraction) is derived from ``ln s`` in float64,
+moments through log-sum-exp so that ``s ~ 1e200`` does not overflow.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import functools
+import math
+
+import numpy as np
+from scipy.special import logsumexp
+
+__all__ = ["Spectrum", "from_singular_values", "zero_threshold"]
+
+QUANTILES = (0.01, 0.05, 0.25, 0.5, 0.75, 0.95, 0.99)
+
+
+def zero_threshold(size: int, dtype) -> float:
+    """Relative threshold below which a singular value counts as numerically zero.
+
+    ``s_i <= s_max * n * eps(dtype)``: the rank tolerance of ``numpy.linalg.matrix_rank``
+    (and of Golub & Van Loan, "Matrix Computations", sec. 5.4.1): an SVD cannot resolve
+    singular values below it relative to the largest.
+    """
+    return float(size * np.finfo(np.dtype(dtype)).eps)
+
+
+@dataclasses.dataclass(frozen=True)
+class Spectrum:
+    """Pooled singular values of several Jacobian draws.
+
+    Attributes:
+      log_s: ``(draws, n)`` natural logs of the singular values, each row in decreasing order;
+        ``-inf`` marks an exact zero.
+      zero_mask: ``(draws, n)`` true where ``s`` is numerically zero (see ``threshold``).
+      threshold: the relative zero threshold used (``s <= threshold * s_max`` of its draw).
+      dtype: the dtype the Jacobian was computed in.
+      method: how ``log_s`` was obtained (``"svd"`` or ``"qr"``).
+    """
+
+    log_s: np.ndarray
+    zero_mask: np.ndarray
+    threshold: float
+    dtype: str
+    method: str = "svd"
+
+    @property
+    def draws(self) -> int:
+        return int(self.log_s.shape[0])
+
+    @property
+    def size(self) -> int:
+        """Singular values per draw."""
+        return int(self.log_s.shape[1])
+
+    @property
+    def s(self) -> np.ndarray:
+        """Pooled singular values (may overflow to inf for very spread spectra)."""
+        with np.errstate(over="ignore"):
+            return np.exp(self.log_s).ravel()
+
+    @property
+    def lam(self) -> np.ndarray:
+        """Pooled eigenvalues lambda = s^2 of J J^T."""
+        with np.errstate(over="ignore"):
+            return np.exp(2.0 * self.log_s).ravel()
+
+    @property
+    def zero_fraction(self) -> float:
+        """Fraction of pooled singular values that are numerically zero."""
+        return float(self.zero_mask.mean())
+
+    @functools.cached_property
+    def log_s_nonzero(self) -> np.ndarray:
+        """Pooled ``ln s`` of the singular values that are not numerically zero."""
+        return self.log_s[~self.zero_mask]
+
+    def lambda_moment(self, k: int) -> float:
+        """``m_k = (1/(draws n)) sum s^(2k)``, zeros included (they contribute 0)."""
+        flat = self.log_s.ravel()
+        return float(np.exp(logsumexp(2.0 * k * flat) - math.log(flat.size)))
+
+    def lambda_moment_draws(self, k: int) -> np.ndarray:
+        """``m_k`` of each draw separately (for a sampling error across draws)."""
+        return np.exp(logsumexp(2.0 * k * self.log_s, axis=1) - math.log(self.size))
+
+    @property
+    def lambda_moments(self) -> dict[str, float]:
+        """``{"m1": ..., "m4": ...}``, moments of lambda = s^2."""
+        return {f"m{k}": self.lambda_moment(k) for k in range(1, 5)}
+
+    @property
+    def log_s_mean(self) -> float:
+        """Mean of ``ln s`` over the non-zero singular values."""
+        v = self.log_s_nonzero
+        return float(v.mean()) if v.size else -math.inf
+
+    @property
+    def log_s_std(self) -> float:
+        """Standard deviation of ``ln s`` over the non-zero singular values."""
+        v = self.log_s_nonzero
+        return float(v.std()) if v.size > 1 else 0.0
+
+    @property
+    def log_s_range(self) -> tuple[float, float]:
+        """``(min, max)`` of ``ln s`` over the non-zero singular values."""
+        v = self.log_s_nonzero
+        return (float(v.min()), float(v.max())) if v.size else (-math.inf, -math.inf)
+
+    @property
+    def log10_condition(self) -> float:
+        """``log10(s_max / s_min)``, s_min the smallest non-zero singular value (pooled)."""
+        lo, hi = self.log_s_range
+        return (hi - lo) / math.log(10.0)
+
+    @property
+    def s_quantiles(self) -> dict[str, float]:
+        """Quantiles of the pooled singular values s (zeros included), keyed ``"q05"`` etc."""
+        qs = np.quantile(self.s, QUANTILES)
+        return {f"q{int(round(100 * p)):02d}": float(v) for p, v in zip(QUANTILES, qs)}
+
+
+def from_singular_values(s: np.ndarray, dtype, method: str = "svd") -> Spectrum:
+    """Build a :class:`Spectrum` from singular values ``s`` of shape ``(draws, n)`` or ``(n,)``.
+
+    A value ``s <= n * eps(dtype) * max(s)`` of its draw is marked numerically zero
+    (:func:`zero_threshold`).
+    """
+    s = np.atleast_2d(np.asarray(s, dtype=np.float64))
+    s = -np.sort(-s, axis=1)
+    thr = zero_threshold(s.shape[1], dtype)
+    zero = s <= thr * s[:, :1]
+    with np.errstate(divide="ignore"):
+        log_s = np.log(s)
+    return Spectrum(log_s=log_s, zero_mask=zero, threshold=thr, dtype=str(np.dtype(dtype)),
+                    method=method)
