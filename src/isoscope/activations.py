@@ -81,7 +81,8 @@ def _elementwise_grad(fn: Callable[[jax.Array], jax.Array]) -> Callable[[jax.Arr
 
 
 def _hard_tanh(h):
-    return jnp.clip(h, -1.0, 1.0)
+    # where() rather than clip(): clip's gradient at h = +-1 is 1/2, outside phi' in {0, 1}
+    return jnp.where(jnp.abs(h) < 1.0, h, jnp.sign(h))
 
 
 def _relu(h):

@@ -2,8 +2,8 @@
 
 A :class:`Spectrum` holds ``ln s`` (not s), so that it can carry spectra from QR accumulation
 whose singular values do not fit in floating point.  Everything else (lambda = s^2 moments,
-quantiles, log statistics, the numerically-zero fraction) is derived from ``ln s`` in float64,
-moments through log-sum-exp so that ``s ~ 1e200`` does not overflow.
+quantiles, log statistics, the numerically-zero fraction) is derived from ``ln s`` in float64;
+moments go through log-sum-exp, so they are finite whenever the moment itself is.
 """
 
 from __future__ import annotations
