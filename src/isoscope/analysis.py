@@ -109,6 +109,13 @@ def plan_inputs(spec: Spec) -> tuple[InputPlan, tuple[str, ...]]:
         msg = (f"no steady state for these settings ({e}); inputs fall back to "
                f"x ~ N(0, {a.input_variance:g})")
         return InputPlan("gaussian", a.input_variance, msg), (msg,)
+    v = a.input_variance
+    if q == 0.0 and v > 0 and abs(mean_field.length_map(spec.network.activation, spec.init.sigma_w,
+                                                       spec.init.sigma_b, v) - v) <= 1e-12 * v:
+        # a marginal length map (ReLU at sigma_w^2 = 2, linear at sigma_w = 1, no bias): every
+        # variance is a fixed point, and q* = 0 would feed the constant input phi(0)
+        return (InputPlan("steady-state", v, f"x = phi(h), h ~ N(0, {v:g}): every variance is a "
+                          "fixed point of the length map here, input_variance sets it"), ())
     return (InputPlan("steady-state", q, f"x = phi(h), h ~ N(0, q*) with q* = {q:.6g} "
                       "(fixed point of the length map)"), ())
 

@@ -19,10 +19,18 @@ Gauss-Legendre split at the activation's kinks); Gauss-Hermite is never used.
 
 Numerical conventions (see ``docs/theory-mean-field.md``):
 
-* ``q = 0`` is a legitimate fixed point (odd phi or phi(0) = 0 with ``sigma_b = 0``).  Quantities
-  built from phi' (chi_1, mu_k, V'(0), C'(c)) are then the limits ``q -> 0+``, evaluated at
-  ``q = 1e-60`` where the quadrature still resolves the two sides of a kink at 0 (ReLU:
-  ``E[phi'^2] -> 1/2``, not ``phi'(0)^2 = 0``); the neglected terms are O(1e-60).
+* ``q = 0`` is a legitimate fixed point (phi(0) = 0 with ``sigma_b = 0``: tanh, erf below
+  criticality; ReLU below sigma_w^2 = 2).  Quantities built from phi' (chi_1, mu_k, V'(0), C'(c))
+  and the normalised correlation map are then the limits ``q -> 0+``.  They are computed exactly
+  as expectations of the linearisation ``psi(h) = phi'(0+) h`` (h > 0), ``phi'(0-) h`` (h < 0) at
+  q = 1 (ReLU: ``E[phi'^2] -> 1/2``, not ``phi'(0)^2 = 0``), never by evaluating phi at tiny h,
+  where an activation written as ``4 sigmoid(h) - 2`` has no relative accuracy left.
+* 1-D rules get extra panel breaks at h = 0, +-0.5, +-2, +-8, +-32 besides the kinks: at large q
+  a saturating or ReLU-like phi switches over a z-interval of width ~1/sqrt(q), which the
+  unsplit rule does not resolve (measured against mpmath: tanh at q = 1e4, 3e-6 relative error
+  without the breaks, 1e-15 with them; GELU, SiLU and the sigmoid are similar).  2-D rules use the
+  kinks only (cost grows with the square of the panel count; the correlation map is needed at
+  q = q* = O(1)).
 * The phase is "critical" when ``|chi_1 - 1| <= PHASE_TOL = 1e-9``; a depth scale whose slope is
   within ``PHASE_TOL`` of 1 is ``math.inf`` exactly.  1e-9 sits well above the error of chi_1 at a
   solved critical point (about 1e-13) and well below any physically meaningful distance.
@@ -55,12 +63,13 @@ PHASE_TOL = 1e-9
 Q_MAX = 1e16
 """Largest variance searched for a fixed point; beyond it q is treated as growing without bound."""
 
-_Q_ZERO = 1e-60          # where q -> 0+ limits are evaluated (see module docstring)
-_SIGN_RTOL = 1e-11       # |V(q) - q| below this fraction of q is treated as zero (quadrature noise)
+_SOFT_BREAKS = (0.0, -0.5, 0.5, -2.0, 2.0, -8.0, 8.0, -32.0, 32.0)  # see _rule and the module doc
+_SIGN_RTOL = 1e-11       # |V(q) - q| <= _SIGN_RTOL q + _SIGN_ATOL sqrt(q) counts as zero: quadrature
+_SIGN_ATOL = 1e-13       # noise, plus phi's own rounding (~1e-16 absolute) times |h| ~ sqrt(q)
 _FIXED_POINT_RTOL = 1e-6  # how close q must be to V(q) to be accepted as "the fixed point"
 _HERMITE_TERMS = 48      # Mehler-series terms used only to seed the c* solve
 _CRITICAL_SB2_SPAN = 1.0  # default critical line: up to sigma_b^2 = 1
-_MIN_BUCKET = 512
+_CHUNK = 8192           # evaluation chunk (see _padded): a 1-D rule fits in one, a 2-D rule in ~25
 
 
 # ---------------------------------------------------------------------------------------------
@@ -157,84 +166,129 @@ def _correlation(c: float) -> float:
 
 
 def _padded(fn: Callable[[np.ndarray], np.ndarray]) -> Callable[[np.ndarray], np.ndarray]:
-    """Call a jit-compiled elementwise ``fn`` on a zero-padded power-of-two buffer.
+    """Call a jit-compiled elementwise ``fn`` in zero-padded chunks of one fixed length.
 
-    The activations' NumPy callables are compiled once per input length; quadrature rules split
-    at kinks have lengths that change with q and rho, so padding keeps compilations to a few.
+    The activations' NumPy callables are compiled once per input length, and quadrature rules
+    split at kinks change length with q and rho.  Feeding every call through chunks of
+    ``_CHUNK`` points means one compilation per function (about 0.1 s) instead of one per length.
     """
 
     def call(x: np.ndarray) -> np.ndarray:
         x = np.asarray(x, dtype=np.float64)
         flat = x.ravel()
         n = flat.size
-        size = max(_MIN_BUCKET, 1 << max(0, n - 1).bit_length())
-        buf = np.zeros(size)
+        chunks = max(1, -(-n // _CHUNK))
+        buf = np.zeros(chunks * _CHUNK)
         buf[:n] = flat
-        return np.asarray(fn(buf))[:n].reshape(x.shape)
+        out = np.concatenate([np.asarray(fn(part)) for part in buf.reshape(chunks, _CHUNK)])
+        return out[:n].reshape(x.shape)
 
     return call
 
 
-def _pair(act: Activation):
-    phi, dphi = act.numpy_pair()
-    return _padded(phi), _padded(dphi)
+class _Integrand(NamedTuple):
+    """What a Gaussian expectation needs of phi: NumPy phi, phi' and the kinks of phi'."""
+
+    phi: Callable[[np.ndarray], np.ndarray]
+    dphi: Callable[[np.ndarray], np.ndarray]
+    kinks: tuple[float, ...]
 
 
-def _nodes(act: Activation, q: float) -> tuple[np.ndarray, np.ndarray, float]:
-    """Nodes h = sqrt(q) z and weights of ``E[f(h)]``, h ~ N(0, q); q = 0 maps to the 0+ limit."""
-    qe = q if q > 0 else _Q_ZERO
-    s = math.sqrt(qe)
-    z, w = normal_rule([k / s for k in act.kinks])
-    return s * z, w, qe
+_INTEGRANDS: dict[Activation, _Integrand] = {}
+_LIMITS: dict[Activation, _Integrand] = {}
+
+
+def _integrand(act: Activation) -> _Integrand:
+    if act not in _INTEGRANDS:
+        phi, dphi = act.numpy_pair()
+        _INTEGRANDS[act] = _Integrand(_padded(phi), _padded(dphi), tuple(act.kinks))
+    return _INTEGRANDS[act]
+
+
+def _one_sided_slopes(act: Activation) -> tuple[float, float]:
+    """``(phi'(0+), phi'(0-))`` from the registry's derivative just either side of 0."""
+    d = _integrand(act).dphi(np.array([1e-300, -1e-300]))
+    return float(d[0]), float(d[1])
+
+
+def _limit_integrand(act: Activation) -> _Integrand:
+    """The linearisation psi(h) = a h (h > 0), b h (h < 0), a, b = phi'(0+), phi'(0-).
+
+    For phi(0) = 0, ``E[F(phi(sqrt(q) z)/sqrt(q), phi'(sqrt(q) z))] -> E[F(psi(z), psi'(z))]`` as
+    q -> 0+, and psi is positively homogeneous, so the q -> 0+ limits of everything in this module
+    are expectations of psi at q = 1: exact, with no rounding trouble at tiny h (an activation
+    written as ``4 sigmoid(h) - 2`` loses all relative accuracy below h ~ 1e-16).
+    """
+    if act not in _LIMITS:
+        a, b = _one_sided_slopes(act)
+
+        def psi(h: np.ndarray) -> np.ndarray:
+            return np.where(h > 0, a * h, b * h)
+
+        def dpsi(h: np.ndarray) -> np.ndarray:
+            return np.where(h > 0, a, b) + 0.0 * h
+
+        _LIMITS[act] = _Integrand(psi, dpsi, (0.0,) if a != b else ())
+    return _LIMITS[act]
+
+
+def _at(act: Activation, q: float) -> tuple[_Integrand, float]:
+    """The integrand and variance to use: phi at q for q > 0, its linearisation at 1 for q = 0."""
+    if q > 0.0:
+        return _integrand(act), q
+    return _limit_integrand(act), 1.0
+
+
+def _phi0(act: Activation) -> float:
+    return float(_integrand(act).phi(np.zeros(1))[0])
+
+
+def _rule(fn: _Integrand, q: float) -> tuple[np.ndarray, np.ndarray]:
+    """Nodes h ~ N(0, q) and weights of a 1-D rule, split at the kinks and the soft breaks."""
+    s = math.sqrt(q)
+    z, w = normal_rule([k / s for k in (*fn.kinks, *_SOFT_BREAKS)])
+    return s * z, w
 
 
 def _mean_square(act: Activation, q: float) -> float:
     """``E[phi(sqrt(q) z)^2]`` (continuous at q = 0, where it is phi(0)^2)."""
-    phi, _ = _pair(act)
     if q == 0.0:
-        return float(phi(np.zeros(1))[0] ** 2)
-    h, w, _ = _nodes(act, q)
-    return float(np.dot(w, phi(h) ** 2))
+        return _phi0(act) ** 2
+    fn = _integrand(act)
+    h, w = _rule(fn, q)
+    return float(np.dot(w, fn.phi(h) ** 2))
 
 
 def _dphi_sq(act: Activation, q: float) -> float:
     """``E[phi'(sqrt(q) z)^2]`` (q -> 0+ limit at q = 0)."""
-    _, dphi = _pair(act)
-    h, w, _ = _nodes(act, q)
-    return float(np.dot(w, dphi(h) ** 2))
+    fn, qe = _at(act, q)
+    h, w = _rule(fn, qe)
+    return float(np.dot(w, fn.dphi(h) ** 2))
 
 
 def _slope_ratio(act: Activation, q: float) -> float:
     """``E[u phi(u) phi'(u)]/q`` for u ~ N(0, q): (1/sigma_w^2) dV/dq; q -> 0+ limit at q = 0."""
-    phi, dphi = _pair(act)
-    if q == 0.0:
-        phi0 = float(phi(np.zeros(1))[0])
-        if phi0 != 0.0:
-            if 0.0 in act.kinks:
-                # phi(0) != 0 with a jump of phi' at 0: E[u phi phi']/q ~ phi(0)(a - b)/sqrt(2 pi q).
-                a = float(dphi(np.array([1e-300]))[0])
-                b = float(dphi(np.array([-1e-300]))[0])
-                jump = phi0 * (a - b)
-                return math.copysign(math.inf, jump) if jump != 0.0 else _smooth_slope0(act)
-            return _smooth_slope0(act)
-    h, w, qe = _nodes(act, q)
-    return float(np.dot(w, h * phi(h) * dphi(h))) / qe
-
-
-def _smooth_slope0(act: Activation) -> float:
-    # Taylor expansion at 0: E[u phi phi']/q -> phi'(0)^2 + phi(0) phi''(0) (Stein's lemma).
-    d1 = jax.grad(lambda t: act.fn(t))
-    d2 = jax.grad(d1)
-    x = np.float64(0.0)
-    return float(act.fn(x) * d2(x) + d1(x) ** 2)
+    if q == 0.0 and _phi0(act) != 0.0:
+        if 0.0 in act.kinks:
+            # phi(0) != 0 with a jump of phi' at 0: E[u phi phi']/q ~ phi(0)(a - b)/sqrt(2 pi q).
+            a, b = _one_sided_slopes(act)
+            jump = _phi0(act) * (a - b)
+            if jump != 0.0:
+                return math.copysign(math.inf, jump)
+        # Taylor expansion at 0: E[u phi phi']/q -> phi'(0)^2 + phi(0) phi''(0) (Stein's lemma).
+        d1 = jax.grad(lambda t: act.fn(t))
+        x = np.float64(0.0)
+        return float(act.fn(x) * jax.grad(d1)(x) + d1(x) ** 2)
+    fn, qe = _at(act, q)
+    h, w = _rule(fn, qe)
+    return float(np.dot(w, h * fn.phi(h) * fn.dphi(h))) / qe
 
 
 def _homogeneous(act: Activation) -> bool:
     """phi piecewise linear with phi(0) = 0 and no kink away from 0: phi(t h) = t phi(h), t > 0."""
     if not act.piecewise_linear or any(k != 0.0 for k in act.kinks):
         return False
-    phi, _ = _pair(act)
-    return float(phi(np.zeros(1))[0]) == 0.0
+    return _phi0(act) == 0.0
 
 
 def _residual_g(act: Activation, sw2: float, sb2: float, q: float) -> float:
@@ -350,9 +404,10 @@ def fixed_point(activation: str | Activation, sigma_w: float, sigma_b: float) ->
     q = 1e-20
     while True:
         val = g(q)
-        if val < -_SIGN_RTOL * q:
+        noise = _SIGN_RTOL * q + _SIGN_ATOL * math.sqrt(q)
+        if val < -noise:
             return 0.0                       # attracted back to 0 from above
-        if val > _SIGN_RTOL * q:
+        if val > noise:
             break                            # 0 repels: look for the attracting fixed point above
         q *= 2.0
         if q > Q_MAX:
@@ -367,7 +422,7 @@ def fixed_point(activation: str | Activation, sigma_w: float, sigma_b: float) ->
 
 def _brent(f: Callable[[float], float], lo: float, hi: float) -> float:
     try:
-        return float(optimize.brentq(f, lo, hi, xtol=1e-300, rtol=4.5e-16, maxiter=500))
+        return float(optimize.brentq(f, lo, hi, xtol=1e-300, rtol=1e-15, maxiter=500))
     except (RuntimeError, ValueError) as exc:  # pragma: no cover - bracket was verified
         raise TheoryError(f"root finding did not converge on [{lo:.6g}, {hi:.6g}]: {exc}; "
                           "try a slightly different sigma_w or sigma_b") from exc
@@ -413,9 +468,9 @@ def derivative_moments(activation: str | Activation, q: float, kmax: int = 4) ->
     if isinstance(kmax, bool) or not isinstance(kmax, (int, np.integer)) or kmax < 1:
         raise InputError(f"kmax = {kmax!r} is invalid", expected="an integer >= 1",
                          hint="ask for at least the first moment, e.g. kmax=4")
-    _, dphi = _pair(act)
-    h, w, _ = _nodes(act, q)
-    d2 = dphi(h) ** 2
+    fn, qe = _at(act, q)
+    h, w = _rule(fn, qe)
+    d2 = fn.dphi(h) ** 2
     powers = d2[None, :] ** np.arange(1, int(kmax) + 1)[:, None]
     return powers @ w
 
@@ -447,20 +502,20 @@ def chi1(activation: str | Activation, sigma_w: float, q: float) -> float:
 # Correlation map
 # ---------------------------------------------------------------------------------------------
 
-def _bivariate_mean(act: Activation, f: Callable[[np.ndarray, np.ndarray], np.ndarray],
-                    q: float, c: float) -> float:
-    """``E[f(u1, u2)]`` with u1, u2 ~ N(0, q), correlation c, by quadrature.expect_bivariate."""
-    return expect_bivariate(f, q, q, c, act.kinks)
+def _bivariate(fn: _Integrand, which: str, form: str, q: float, c: float) -> float:
+    """``E[F(u1, u2)]``, u1, u2 ~ N(0, q) with correlation c, by quadrature.expect_bivariate.
 
+    ``which`` picks g = phi or phi'; ``form`` is ``"product"`` (F = g(u1) g(u2)) or ``"square"``
+    (F = (g(u1) - g(u2))^2).  g is evaluated on u1 and u2 in one padded call.
+    """
+    g = fn.phi if which == "phi" else fn.dphi
 
-def _two_point(fn: Callable[[np.ndarray], np.ndarray]):
-    """Evaluate fn on u1 and u2 in one padded call."""
+    def f(u1: np.ndarray, u2: np.ndarray) -> np.ndarray:
+        vals = g(np.concatenate([u1, u2]))
+        a, b = vals[: u1.size], vals[u1.size:]
+        return a * b if form == "product" else (a - b) ** 2
 
-    def both(u1: np.ndarray, u2: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        vals = fn(np.concatenate([u1, u2]))
-        return vals[: u1.size], vals[u1.size:]
-
-    return both
+    return expect_bivariate(f, q, q, c, fn.kinks)
 
 
 def _fp_map(act: Activation, sw2: float, q: float, c: float) -> float:
@@ -470,15 +525,8 @@ def _fp_map(act: Activation, sw2: float, q: float, c: float) -> float:
     fixed-point equation); the integrand is non-negative, so 1 - C(c) keeps full relative accuracy
     near c = 1, and the expression has a finite limit at q -> 0+.
     """
-    phi, _ = _pair(act)
-    both = _two_point(phi)
-    qe = q if q > 0 else _Q_ZERO
-
-    def f(u1, u2):
-        a, b = both(u1, u2)
-        return (a - b) ** 2
-
-    return 1.0 - sw2 * _bivariate_mean(act, f, qe, c) / (2.0 * qe)
+    fn, qe = _at(act, q)
+    return 1.0 - sw2 * _bivariate(fn, "phi", "square", qe, c) / (2.0 * qe)
 
 
 def correlation_map(activation: str | Activation, sigma_w: float, sigma_b: float, q: float,
@@ -521,14 +569,7 @@ def correlation_map(activation: str | Activation, sigma_w: float, sigma_b: float
                 expected="q > 0, or q = 0 only where it is a fixed point (V(0) = 0)",
                 hint=f"V(0) = {v0:.6g} > 0 here; pass q = fixed_point(...)")
         return _fp_map(act, sw2, 0.0, c)
-    phi, _ = _pair(act)
-    both = _two_point(phi)
-
-    def f(u1, u2):
-        a, b = both(u1, u2)
-        return a * b
-
-    return (sw2 * _bivariate_mean(act, f, q, c) + sb2) / q
+    return (sw2 * _bivariate(_integrand(act), "phi", "product", q, c) + sb2) / q
 
 
 def correlation_slope(activation: str | Activation, sigma_w: float, q: float, c: float) -> float:
@@ -552,15 +593,8 @@ def correlation_slope(activation: str | Activation, sigma_w: float, q: float, c:
     """
     act = _act(activation)
     sw, q, c = _scale("sigma_w", sigma_w), _variance(q), _correlation(c)
-    _, dphi = _pair(act)
-    both = _two_point(dphi)
-    qe = q if q > 0 else _Q_ZERO
-
-    def f(u1, u2):
-        a, b = both(u1, u2)
-        return a * b
-
-    return sw * sw * _bivariate_mean(act, f, qe, c)
+    fn, qe = _at(act, q)
+    return sw * sw * _bivariate(fn, "dphi", "product", qe, c)
 
 
 def _hermite_coefficients(act: Activation, q: float, terms: int) -> np.ndarray:
@@ -568,10 +602,10 @@ def _hermite_coefficients(act: Activation, q: float, terms: int) -> np.ndarray:
 
     Mehler's formula gives ``E[phi(u1) phi(u2)] = sum_k b_k^2 c^k``; used only to seed the c* solve.
     """
-    phi, _ = _pair(act)
-    h, w, qe = _nodes(act, q)
+    fn, qe = _at(act, q)
+    h, w = _rule(fn, qe)
     z = h / math.sqrt(qe)
-    fw = w * phi(h)
+    fw = w * fn.phi(h)
     out = np.empty(terms)
     prev, cur = np.zeros_like(z), np.ones_like(z)
     for k in range(terms):
@@ -610,22 +644,27 @@ def correlation_fixed_point(activation: str | Activation, sigma_w: float, sigma_
     act = _act(activation)
     sw, sb, q = _scale("sigma_w", sigma_w), _scale("sigma_b", sigma_b), _variance(q)
     _require_fixed_point(act, sw, sb, q)
-    sw2, sb2 = sw * sw, sb * sb
+    sw2 = sw * sw
     slope1 = sw2 * _dphi_sq(act, q)
     if slope1 <= 1.0 + PHASE_TOL:
         return 1.0
-    qe = q if q > 0 else _Q_ZERO
+    qe = q if q > 0 else 1.0  # q = 0: the series of the linearisation psi at q = 1 (see _at)
     b2 = _hermite_coefficients(act, q, _HERMITE_TERMS) ** 2
     ks = np.arange(b2.size)
-    # Mehler series of C in fixed-point form: C(c) = 1 - sigma_w^2 sum_k b_k^2 (1 - c^k)/q.
-    c_ser = lambda c: 1.0 - sw2 * float(np.dot(b2, 1.0 - c ** ks)) / qe  # noqa: E731
+    # Mehler series of C in fixed-point form, C(c) = 1 - sigma_w^2 sum_k b_k^2 (1 - c^k)/q, with
+    # sum_k b_k^2 = E[phi^2] taken exactly, so only the tail sum_{k >= K} b_k^2 c^k is dropped
+    # (kinked phi have b_k^2 ~ k^(-5/2): truncating 1 - c^k instead would cost ~1e-3).
+    fn, _ = _at(act, q)
+    h, w = _rule(fn, qe)
+    total = float(np.dot(w, fn.phi(h) ** 2))
+    c_ser = lambda c: 1.0 - sw2 * (total - float(np.dot(b2, c ** ks))) / qe  # noqa: E731
     dc_ser = lambda c: sw2 * float(np.dot(ks[1:] * b2[1:], c ** (ks[1:] - 1))) / qe  # noqa: E731
     top = 1.0 - 1e-9
 
     def h_ser(c: float) -> float:
         return (c_ser(c) - c) / (1.0 - c)
 
-    if h_ser(0.0) <= 0.0:
+    if h_ser(0.0) <= 1e-14:  # C(0) = 0 (odd phi, sigma_b = 0): c* = 0 by symmetry
         seed = 0.0
     elif h_ser(top) >= 0.0:
         seed = top
@@ -802,7 +841,7 @@ def q_trajectory(activation: str | Activation, sigma_w: float, sigma_b: float, q
         raise InputError(f"alpha = {alpha!r} is invalid", expected="a finite real branch scale",
                          hint="use alpha = 1.0 for the default residual block")
     sw2, sb2 = sw * sw, sb * sb
-    phi, _ = _pair(act)
+    fn = _integrand(act)
     out = np.empty(int(depth))
     big_q, m = q0, 0.0
     for layer in range(int(depth)):
@@ -813,10 +852,11 @@ def q_trajectory(activation: str | Activation, sigma_w: float, sigma_b: float, q
                               f"({act.name}, sigma_w = {sw:g}, sigma_b = {sb:g}); "
                               "lower sigma_w or the depth")
         if q == 0.0:
-            mu, nu = (lambda v: (v, v * v))(float(phi(np.zeros(1))[0]))
+            mu = _phi0(act)
+            nu = mu * mu
         else:
-            h, w, _ = _nodes(act, q)
-            p = phi(h)
+            h, w = _rule(fn, q)
+            p = fn.phi(h)
             mu, nu = float(np.dot(w, p)), float(np.dot(w, p * p))
         if family == "plain":
             big_q = nu
@@ -830,19 +870,21 @@ def q_trajectory(activation: str | Activation, sigma_w: float, sigma_b: float, q
 # Criticality
 # ---------------------------------------------------------------------------------------------
 
-def _line_point(act: Activation, q: float) -> tuple[float, float, float]:
-    """(sigma_w^2, sigma_b^2, V'(q)) of the critical-line point with fixed point q."""
-    phi, dphi = _pair(act)
-    h, w, qe = _nodes(act, q)
-    p, d = phi(h), dphi(h)
-    mu1 = float(np.dot(w, d * d))
+def _line_point(act: Activation, q: float, slope: bool = True) -> tuple[float, float, float]:
+    """(sigma_w^2, sigma_b^2, V'(q)) of the critical-line point with fixed point q (V' = nan if not slope)."""
+    if q == 0.0:
+        mu1, e2 = _dphi_sq(act, 0.0), _phi0(act) ** 2
+        ratio = _slope_ratio(act, 0.0) if slope else math.nan
+    else:
+        fn = _integrand(act)
+        h, w = _rule(fn, q)
+        p, d = fn.phi(h), fn.dphi(h)
+        mu1, e2 = float(np.dot(w, d * d)), float(np.dot(w, p * p))
+        ratio = float(np.dot(w, h * p * d)) / q
     if mu1 <= 0.0:
         return math.inf, -math.inf, math.inf
     sw2 = 1.0 / mu1
-    e2 = float(np.dot(w, p * p)) if q > 0 else float(phi(np.zeros(1))[0] ** 2)
-    sb2 = q - sw2 * e2
-    slope = sw2 * _slope_ratio(act, q)
-    return sw2, sb2, slope
+    return sw2, q - sw2 * e2, sw2 * ratio
 
 
 def _homogeneous_point(act: Activation) -> tuple[float, float]:
@@ -902,7 +944,7 @@ def critical_point(activation: str | Activation, sigma_b: float) -> CriticalPoin
             "if a bias is needed")
 
     def f(q: float) -> float:
-        return _line_point(act, q)[1] - sb2
+        return _line_point(act, q, slope=False)[1] - sb2
 
     rejected: list[str] = []
     f0 = f(0.0)
@@ -957,9 +999,17 @@ def _accept(act: Activation, q: float, sb: float, rejected: list[str]) -> Critic
     return CriticalPoint(sw, sw2, sb, sb * sb, q)
 
 
+def _reached(act: Activation, sw2: float, sb2: float, q: float) -> bool:
+    try:
+        found = fixed_point(act, math.sqrt(sw2), math.sqrt(max(sb2, 0.0)))
+    except TheoryError:
+        return False
+    return abs(found - q) <= 1e-7 * q + 1e-14
+
+
 def _line_min_sb2(act: Activation) -> float:
     qs = np.geomspace(1e-6, 1e4, 61)
-    return float(min(_line_point(act, float(q))[1] for q in qs))
+    return float(min(_line_point(act, float(q), slope=False)[1] for q in qs))
 
 
 def critical_line(activation: str | Activation, q_max: float | None = None,
@@ -997,7 +1047,7 @@ def critical_line(activation: str | Activation, q_max: float | None = None,
         return CriticalLine(np.array([sw2]), np.array([0.0]), np.array([0.0]))
 
     def sb2_of(q: float) -> float:
-        return _line_point(act, q)[1]
+        return _line_point(act, q, slope=False)[1]
 
     q_lo = 0.0 if sb2_of(0.0) >= 0.0 else _first_crossing(sb2_of, 0.0)
     if q_lo is None:
@@ -1014,7 +1064,12 @@ def critical_line(activation: str | Activation, q_max: float | None = None,
                               f"= {q_hi:g}; it starts at q* = {q_lo:.6g}: pass a larger q_max")
     qs = np.linspace(q_lo, q_hi, int(points))
     rows = np.array([_line_point(act, float(q)) for q in qs])
+    # sigma_b^2 = 0 at q_lo up to the root finder's rounding
+    rows[0, 1] = max(rows[0, 1], 0.0) if abs(rows[0, 1]) <= 1e-12 * max(1.0, q_lo) else rows[0, 1]
     keep = (rows[:, 1] >= 0.0) & (rows[:, 2] <= 1.0 + PHASE_TOL)
+    for i in np.flatnonzero(keep & (np.abs(rows[:, 2] - 1.0) <= PHASE_TOL)):
+        # marginal (V'(q*) = 1, e.g. q* = 0 for GELU/SiLU): keep only if q* is actually reached
+        keep[i] = _reached(act, float(rows[i, 0]), float(rows[i, 1]), float(qs[i]))
     if not keep.any():
         raise TheoryError(f"no point of the critical line of {act.name} with q* in [{q_lo:.6g}, "
                           f"{q_hi:.6g}] has sigma_b^2 >= 0 and a stable fixed point; "
