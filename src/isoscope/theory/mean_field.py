@@ -51,7 +51,7 @@ from isoscope.errors import InputError, TheoryError
 from isoscope.theory.quadrature import expect_bivariate, normal_rule
 
 __all__ = [
-    "PHASE_TOL", "MeanField", "CriticalPoint", "CriticalLine",
+    "PHASE_TOL", "Q_MAX", "MeanField", "CriticalPoint", "CriticalLine",
     "length_map", "length_map_slope", "fixed_point", "derivative_moments", "chi1",
     "correlation_map", "correlation_slope", "correlation_fixed_point", "mean_field",
     "q_trajectory", "critical_point", "critical_line",
@@ -69,6 +69,8 @@ _SIGN_ATOL = 1e-13       # noise, plus phi's own rounding (~1e-16 absolute) time
 _FIXED_POINT_RTOL = 1e-6  # how close q must be to V(q) to be accepted as "the fixed point"
 _HERMITE_TERMS = 48      # Mehler-series terms used only to seed the c* solve
 _CRITICAL_SB2_SPAN = 1.0  # default critical line: up to sigma_b^2 = 1
+_NEAR_ONE_PERP = 0.2      # sqrt(1 - c^2) below which kinked 2-D rules get extra breaks (_bivariate)
+_NEAR_ONE_STEPS = (-8.0, -2.0, -0.5, 0.5, 2.0, 8.0)
 _CHUNK = 8192           # evaluation chunk (see _padded): a 1-D rule fits in one, a 2-D rule in ~25
 
 
@@ -113,7 +115,11 @@ class CriticalPoint(NamedTuple):
 
 
 class CriticalLine(NamedTuple):
-    """The curve chi_1 = 1 in the (sigma_w^2, sigma_b^2) plane, parametrised by q* (arrays, same length)."""
+    """The curve chi_1 = 1 in the (sigma_w^2, sigma_b^2) plane, parametrised by q*.
+
+    Attributes:
+      sigma_w2, sigma_b2, q_star: float64 arrays of one length, ordered by increasing q*.
+    """
 
     sigma_w2: np.ndarray
     sigma_b2: np.ndarray
@@ -356,7 +362,11 @@ def fixed_point(activation: str | Activation, sigma_w: float, sigma_b: float) ->
     iterating V from ``q -> 0+`` (the lowest attracting one).  Search:
 
     * ``V(0) > 0`` (a bias, or phi(0) != 0): ``g(q) = V(q) - q`` is positive at 0; double q from
-      V(0) until g <= 0, then solve g = 0 by Brent's method on the last bracket.
+      V(0) until g is negative beyond the quadrature noise (``1e-11 q + 1e-13 sqrt(q)``), then
+      solve g = 0 by Brent's method between the last positive q and that one.  So a fixed point
+      with ``1 - V'(q*)`` below about 1e-11 counts as "unbounded": it cannot be told apart from
+      ReLU at sigma_w^2 = 2 with a bias, whose computed V(q) - q = sigma_b^2 + O(1e-16 q) would
+      otherwise give a spurious root near q = 1e14.
     * ``V(0) = 0``: q = 0 is a fixed point.  If ``V'(0) < 1 - PHASE_TOL`` it is stable and exactly
       ``0.0`` is returned.  Otherwise the sign of g just above 0 decides: negative (e.g. tanh at
       sigma_w = 1) returns 0.0; positive means 0 repels, and the search continues upwards.  When
@@ -387,16 +397,16 @@ def fixed_point(activation: str | Activation, sigma_w: float, sigma_b: float) ->
 
     v0 = g(0.0)
     if v0 > 0.0:
-        lo, hi = 0.0, v0
-        g_hi = g(hi)
-        while g_hi > 0.0:
-            lo, hi = hi, 2.0 * hi
+        # Double until g is *clearly* negative: a marginal map (ReLU at sigma_w^2 = 2 with a bias,
+        # V(q) - q = sigma_b^2 + O(1e-16) q) must not produce a spurious root at q ~ 1e14.
+        pos, hi = 0.0, v0                    # g(pos) > 0 throughout
+        while (g_hi := g(hi)) >= -_noise(hi):
+            if g_hi > 0.0:
+                pos = hi
+            hi *= 2.0
             if hi > Q_MAX:
                 _raise_unbounded(act, sw, sb)
-            g_hi = g(hi)
-        if g_hi == 0.0:
-            return hi
-        return _brent(g, lo, hi)
+        return _brent(g, pos, hi)
 
     # V(0) = 0: q = 0 is a fixed point.
     if length_map_slope(act, sw, 0.0) < 1.0 - PHASE_TOL:
@@ -404,7 +414,7 @@ def fixed_point(activation: str | Activation, sigma_w: float, sigma_b: float) ->
     q = 1e-20
     while True:
         val = g(q)
-        noise = _SIGN_RTOL * q + _SIGN_ATOL * math.sqrt(q)
+        noise = _noise(q)
         if val < -noise:
             return 0.0                       # attracted back to 0 from above
         if val > noise:
@@ -418,6 +428,11 @@ def fixed_point(activation: str | Activation, sigma_w: float, sigma_b: float) ->
         if hi > Q_MAX:
             _raise_unbounded(act, sw, sb)
     return _brent(g, lo, hi)
+
+
+def _noise(q: float) -> float:
+    """Size below which V(q) - q is indistinguishable from 0 (quadrature and phi rounding)."""
+    return _SIGN_RTOL * q + _SIGN_ATOL * math.sqrt(q)
 
 
 def _brent(f: Callable[[float], float], lo: float, hi: float) -> float:
@@ -515,7 +530,15 @@ def _bivariate(fn: _Integrand, which: str, form: str, q: float, c: float) -> flo
         a, b = vals[: u1.size], vals[u1.size:]
         return a * b if form == "product" else (a - b) ** 2
 
-    return expect_bivariate(f, q, q, c, fn.kinks)
+    kinks = fn.kinks
+    perp = math.sqrt(max(0.0, 1.0 - c * c))
+    if kinks and 0.0 < perp < _NEAR_ONE_PERP:
+        # Near |c| = 1 the inner integral, as a function of u1, switches over a width
+        # sqrt(q) perp around each kink; extra breaks there keep the outer rule exact (without them
+        # ReLU's E[phi' phi'] is off by 5e-10 at c = 0.999 and 1e-6 at c = 0.9999).
+        width = math.sqrt(q) * perp
+        kinks = tuple(sorted({*kinks, *(k + m * width for k in kinks for m in _NEAR_ONE_STEPS)}))
+    return expect_bivariate(f, q, q, c, kinks)
 
 
 def _fp_map(act: Activation, sw2: float, q: float, c: float) -> float:
@@ -871,7 +894,10 @@ def q_trajectory(activation: str | Activation, sigma_w: float, sigma_b: float, q
 # ---------------------------------------------------------------------------------------------
 
 def _line_point(act: Activation, q: float, slope: bool = True) -> tuple[float, float, float]:
-    """(sigma_w^2, sigma_b^2, V'(q)) of the critical-line point with fixed point q (V' = nan if not slope)."""
+    """(sigma_w^2, sigma_b^2, V'(q)) of the critical-line point at fixed point q.
+
+    V'(q) is nan unless ``slope`` (the q = 0 slope of a phi with phi(0) != 0 costs a jax.grad).
+    """
     if q == 0.0:
         mu1, e2 = _dphi_sq(act, 0.0), _phi0(act) ** 2
         ratio = _slope_ratio(act, 0.0) if slope else math.nan
@@ -908,11 +934,13 @@ def critical_point(activation: str | Activation, sigma_b: float) -> CriticalPoin
     degenerates to one point, ``sigma_w^2 = 1/E[phi'^2]`` (ReLU 2, linear 1) with sigma_b = 0,
     where every q is preserved; q_star is reported as 0.0, the convention of :func:`fixed_point`.
 
-    What happens for the other registered activations: tanh, erf, hard-tanh, centred sigmoid and
-    SELU have one critical point for every sigma_b >= 0.  The logistic sigmoid has one too, but
-    far out: chi_1 <= sigma_w^2/16 forces sigma_w^2 >= 16, and at sigma_b = 0 the solution is near
-    sigma_w^2 = 110, q* = 45 (deep saturation).  GELU and SiLU reach chi_1 = 1 at small sigma_b
-    only on unstable fixed points; those requests raise TheoryError.
+    What happens for the other registered activations (measured): tanh, erf, hard-tanh, centred
+    sigmoid and SELU have one critical point for every sigma_b >= 0 (at sigma_b = 0 it sits at
+    q* = 0).  The logistic sigmoid has one too, but far out: chi_1 <= sigma_w^2/16 forces
+    sigma_w^2 >= 16, and at sigma_b = 0 the solution is sigma_w^2 = 103.0, q* = 45.6 (deep
+    saturation).  GELU and SiLU reach chi_1 = 1 at small sigma_b only on unstable fixed points
+    (V'(q*) > 1); stable critical points start near sigma_b^2 = 0.18 (GELU) and 0.56 (SiLU), and
+    smaller sigma_b raise TheoryError.
 
     Args:
       activation: registry name or Activation.
@@ -973,9 +1001,9 @@ def critical_point(activation: str | Activation, sigma_b: float) -> CriticalPoin
             "larger sigma_b (see critical_line for the stable part of the line)")
     lo_sb2 = _line_min_sb2(act)
     raise TheoryError(
-        f"{act.name} has no critical point at sigma_b = {sb:g}: no fixed point q* in [0, {Q_MAX:g}] "
-        f"has chi_1 = 1 and sigma_b^2 = {sb2:g} (sigma_b^2 along the critical line stays above "
-        f"{lo_sb2:.6g} for q* >= 0 and below its value at q* = {Q_MAX:g}). Choose another sigma_b or "
+        f"{act.name} has no critical point at sigma_b = {sb:g}: no fixed point q* in "
+        f"[0, {Q_MAX:g}] has chi_1 = 1 and sigma_b^2 = {sb2:g} (the smallest sigma_b^2 on the "
+        f"critical line for q* in [1e-6, 1e4] is {lo_sb2:.6g}). Choose another sigma_b or "
         "activation")
 
 
@@ -1020,8 +1048,10 @@ def critical_line(activation: str | Activation, q_max: float | None = None,
     ``sigma_b^2 = q* - sigma_w^2 E[phi(sqrt(q*) z)^2]`` (the fixed-point equation solved for the
     bias).  q* runs evenly over ``[q_lo, q_max]``, with q_lo the smallest q* >= 0 where
     ``sigma_b^2 >= 0`` (0 for odd phi); points with sigma_b^2 < 0 or an unstable fixed point
-    (``V'(q*) > 1 + PHASE_TOL``, GELU/SiLU at small q*) are dropped.  The default q_max is the q*
-    where sigma_b^2 reaches 1.  Positively homogeneous phi (linear, ReLU, leaky ReLU) return their
+    (``V'(q*) > 1 + PHASE_TOL``, GELU/SiLU at small q*) are dropped, and so are marginal points
+    (``|V'(q*) - 1| <= PHASE_TOL``) that :func:`fixed_point` does not reach (GELU/SiLU at q* = 0,
+    which repels from above).  The default q_max is the q* where sigma_b^2 reaches 1.
+    Positively homogeneous phi (linear, ReLU, leaky ReLU) return their
     single critical point (``(1, 0)``, ``(2, 0)``, ...) with q* = 0.
 
     Args:
@@ -1064,8 +1094,8 @@ def critical_line(activation: str | Activation, q_max: float | None = None,
                               f"= {q_hi:g}; it starts at q* = {q_lo:.6g}: pass a larger q_max")
     qs = np.linspace(q_lo, q_hi, int(points))
     rows = np.array([_line_point(act, float(q)) for q in qs])
-    # sigma_b^2 = 0 at q_lo up to the root finder's rounding
-    rows[0, 1] = max(rows[0, 1], 0.0) if abs(rows[0, 1]) <= 1e-12 * max(1.0, q_lo) else rows[0, 1]
+    if abs(rows[0, 1]) <= 1e-12 * max(1.0, q_lo):
+        rows[0, 1] = 0.0  # sigma_b^2 = 0 at q_lo, up to the root finder's rounding
     keep = (rows[:, 1] >= 0.0) & (rows[:, 2] <= 1.0 + PHASE_TOL)
     for i in np.flatnonzero(keep & (np.abs(rows[:, 2] - 1.0) <= PHASE_TOL)):
         # marginal (V'(q*) = 1, e.g. q* = 0 for GELU/SiLU): keep only if q* is actually reached
@@ -1079,7 +1109,7 @@ def critical_line(activation: str | Activation, q_max: float | None = None,
 
 def _first_crossing(f: Callable[[float], float], level: float, start: float = 1e-14) -> float | None:
     """Smallest q >= start (geometric scan, then Brent) where f(q) rises through level."""
-    q_prev, f_prev = None, None
+    q_prev = None
     q = max(start, 1e-14)
     while q <= Q_MAX:
         fq = f(q) - level
@@ -1087,6 +1117,6 @@ def _first_crossing(f: Callable[[float], float], level: float, start: float = 1e
             if q_prev is None or fq == 0.0:
                 return q
             return _brent(lambda t: f(t) - level, q_prev, q)
-        q_prev, f_prev = q, fq
+        q_prev = q
         q *= 2.0
     return None
