@@ -32,11 +32,6 @@ def _demo_specs() -> dict[str, str]:
             for p in sorted(folder.iterdir(), key=lambda p: p.name) if p.name.endswith(".toml")}
 
 
-def _status(args, text: str) -> None:
-    if not args.json:
-        print(text, file=sys.stderr if args.json else sys.stdout, flush=True)
-
-
 def _cmd_analyze(args) -> int:
     from isoscope.analysis import analyze
     from isoscope.report import result_dict, summary_table, to_json, write_analysis_folder

@@ -28,7 +28,7 @@ import numpy as np
 from isoscope.network import Network
 
 __all__ = ["dense_jacobian", "layer_product", "qr_log_singular_values", "forward_fault",
-           "Fault", "trace_count"]
+           "jacobian_fault", "Fault", "trace_count"]
 
 _TRACES = {"count": 0}
 

@@ -97,7 +97,7 @@ def lambda_figure(spectrum: Spectrum, title: str, predicted: tuple[np.ndarray, n
         keep = predicted[0] <= top * 1.02
         ax.plot(predicted[0][keep], predicted[1][keep], color=PREDICTED, lw=2.0,
                 label="predicted (N -> infinity)")
-    if 0 < top * 1.02 and 1.0 <= top * 1.02:
+    if top * 1.02 >= 1.0:
         ax.axvline(1.0, color=REFERENCE, ls="--", lw=1.0, label="lambda = 1")
     beyond = 1.0 - shown.size / max(lam.size, 1)
     ax.text(0.98, 0.70, f"{100 * beyond:.1f}% beyond the axis", transform=ax.transAxes,
