@@ -22,12 +22,13 @@ import numpy as np
 from isoscope import jacobian as jac
 from isoscope.errors import InputError, TheoryError
 from isoscope.network import Network, plain_stack, residual_stack
-from isoscope.score import Score, non_finite_score, score_spectrum
+from isoscope.score import Agreement, Score, agreement, non_finite_score, score_spectrum
 from isoscope.spec import Spec
 from isoscope.spectrum import Spectrum, from_singular_values
 from isoscope.theory import mean_field
+from isoscope.theory.predict import Prediction, predict
 
-__all__ = ["Analysis", "InputPlan", "analyze", "build_network", "plan_inputs"]
+__all__ = ["Analysis", "InputPlan", "analyze", "build_network", "plan_inputs", "prediction_for"]
 
 # Relative accuracy of an SVD is about n * eps * s_max: below 10^-(digits) of the largest,
 # small singular values are noise.  Digits usable per dtype (common practice, no source:
@@ -61,6 +62,9 @@ class Analysis:
       spectrum: pooled measurement (``None`` when it overflowed).
       fault: where the measurement overflowed, if it did.
       score: the isometry score and verdict.
+      predicted: the infinite-width prediction (``None`` when theory has none: the reason is
+        in ``warnings``).
+      agreement: measured against predicted (``None`` without both).
       warnings: sentences a user must read before trusting the numbers.
       seconds: wall time per stage.
     """
@@ -70,6 +74,8 @@ class Analysis:
     spectrum: Spectrum | None
     fault: jac.Fault | None
     score: Score
+    predicted: Prediction | None
+    agreement: Agreement | None
     warnings: tuple[str, ...]
     seconds: dict[str, float]
 
@@ -168,6 +174,26 @@ def _precision_warnings(spectrum: Spectrum) -> tuple[str, ...]:
     return ()
 
 
+def prediction_for(spec: Spec, plan: InputPlan) -> tuple[Prediction | None, tuple[str, ...]]:
+    """The infinite-width prediction for a spec whose inputs follow ``plan``.
+
+    Every kind of input enters through its mean square ``q0 = |x^0|^2/N``, from which the q^l
+    trajectory starts (``q^1 = sigma_w^2 q0 + sigma_b^2``): steady-state inputs
+    ``x = phi(h), h ~ N(0, q*)`` have ``q0 = E[phi(h)^2]`` and so put every layer at q*.  Without a prediction (no fixed point, a failed solve) the
+    reason comes back as a warning.
+    """
+    n, i = spec.network, spec.init
+    q0 = plan.variance                       # mean square |x^0|^2/N of Gaussian or file inputs
+    if plan.kind == "steady-state":          # x = phi(h), h ~ N(0, q): mean square E[phi(h)^2]
+        q0 = mean_field.length_map(n.activation, 1.0, 0.0, plan.variance)
+    try:
+        p = predict(n.activation, i.weights, i.sigma_w, i.sigma_b, n.depth, family=n.family,
+                    alpha=n.alpha, input_variance=q0)
+    except TheoryError as e:
+        return None, (f"no infinite-width prediction: {e}",)
+    return p, p.notes
+
+
 def analyze(spec: Spec) -> Analysis:
     """Measure and score one design.
 
@@ -209,6 +235,15 @@ def analyze(spec: Spec) -> Analysis:
         spectrum = from_singular_values(np.stack(singular), dtype)
         score = score_spectrum(spectrum, spec.network.depth)
         warnings += _precision_warnings(spectrum)
+    t = time.perf_counter()
+    predicted, notes = prediction_for(spec, plan)
+    seconds["theory"] = time.perf_counter() - t
+    warnings += notes
+    agree = None
+    if predicted is not None and spectrum is not None:
+        agree = agreement(spectrum, predicted.density, predicted.moments, spec.network.depth,
+                          mean_mode=predicted.mean_mode)
+        warnings += agree.warnings
     seconds["total"] = time.perf_counter() - t0
     return Analysis(spec=spec, inputs=plan, spectrum=spectrum, fault=fault, score=score,
-                    warnings=warnings, seconds=seconds)
+                    predicted=predicted, agreement=agree, warnings=warnings, seconds=seconds)

@@ -1,0 +1,221 @@
+"""One infinite-width prediction of a design's Jacobian spectrum.
+
+``predict(...) -> Prediction`` joins the two theory modules: mean field
+(:mod:`isoscope.theory.mean_field`) gives the pre-activation variance of every layer, free
+probability (:mod:`isoscope.theory.free_probability`) turns it into the law of
+``lambda = s^2``, eigenvalue of ``J J^T``:
+
+* plain stacks: every layer at the stable fixed point q* of the length map
+  (``V(q) = sigma_w^2 E[phi(sqrt(q) z)^2] + sigma_b^2``), ``S_{JJ^T} = S_W^L S_{D^2}^L``
+  (Pennington, Schoenholz, Ganguli 2017, sec. 2.3; THEORY.md sec. 2-3);
+* residual stacks ``x' = x + alpha phi(W x + b)``: the universal large-depth law
+  ``S(z) = exp(-tau (1 + 2 z))`` with ``tau = sum_l alpha^2 sigma_w^2 E[phi'(h^l)^2]``
+  accumulated along the q^l trajectory from the input variance (Tarnowski et al. 2019;
+  THEORY.md sec. 4).
+
+Nothing here samples or differentiates a network: the prediction depends on the design only.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+
+import numpy as np
+
+from isoscope.activations import get_activation
+from isoscope.errors import TheoryError
+from isoscope.theory import free_probability as fp
+from isoscope.theory import mean_field as mf
+
+__all__ = ["Prediction", "predict", "log_lambda_stats"]
+
+# The prediction takes every layer of a plain stack at q*; the inputs are "at q*" when no layer
+# of the actual trajectory departs from it by more than this (relative).
+_STEADY_RTOL = 0.05
+
+
+@dataclasses.dataclass(frozen=True, eq=False)
+class Prediction:
+    """The infinite-width prediction for one design.
+
+    Attributes:
+      family, activation, weights: the design (``weights`` "gaussian" or "orthogonal").
+      sigma_w, sigma_b: weight and bias scales (the squares are ``sigma_w**2``, ``sigma_b**2``).
+      depth: number of weight layers L.
+      alpha: residual branch scale (1.0 for plain stacks, where it is unused).
+      mean_field: :class:`~isoscope.theory.mean_field.MeanField` at (sigma_w, sigma_b): q*, chi_1,
+        c*, xi_q, xi_c, phase.  ``None`` for residual stacks (no fixed point: q grows).
+      q_layers: the variance q^l of each layer the law was built from (shape ``(L,)``).
+      q_law: the variance at which the law of phi'(h)^2 was taken (plain stacks), else NaN.
+      tau: ``sum_l alpha^2 sigma_w^2 E[phi'(h^l)^2]`` (residual stacks), else NaN.
+      moments: m1..m4 of lambda.
+      density: the law of lambda (continuous part on a grid, atoms separate).
+      log_s_mean, log_s_std: mean and standard deviation of ln s = (ln lambda)/2 over the
+        non-zero part of the law (comparable with the measured statistics over non-zero s).
+      mean_mode: True for a residual stack whose branch has ``E[phi(h)] != 0``: one singular
+        value per draw (the mean mode) sits far above the bulk the law describes.
+      regime: the assumptions the prediction rests on.
+      notes: caveats a user must read (inputs off the fixed point, large-depth assumption, ...).
+    """
+
+    family: str
+    activation: str
+    weights: str
+    sigma_w: float
+    sigma_b: float
+    depth: int
+    alpha: float
+    mean_field: mf.MeanField | None
+    q_layers: np.ndarray
+    q_law: float
+    tau: float
+    moments: fp.LambdaMoments
+    density: fp.Density
+    log_s_mean: float
+    log_s_std: float
+    mean_mode: bool
+    regime: str
+    notes: tuple[str, ...]
+
+
+def log_lambda_stats(density: fp.Density) -> tuple[float, float]:
+    """Mean and standard deviation of ``ln lambda`` over the non-zero part of a law.
+
+    ``E[ln lambda | lambda > 0] = (int ell rho_log d ell + sum_a w_a ln a) / (1 - w_0)``, with
+    ``rho_log`` the density of ``ell = ln lambda`` (trapezoid on the solver's grid) and the
+    non-zero atoms ``(a, w_a)``; the variance likewise.  For ln s halve both.
+    """
+    ell, r = density.log_x, density.rho_log
+    parts = [(ell, r)] if ell.size >= 2 else []
+    atoms = [(math.log(a), w) for a, w in density.atoms if a > 0]
+    mass = sum(float(np.trapezoid(rr, ee)) for ee, rr in parts) + sum(w for _, w in atoms)
+    if mass <= 0:
+        return math.nan, math.nan
+
+    def moment(k: int) -> float:
+        total = sum(float(np.trapezoid(rr * ee ** k, ee)) for ee, rr in parts)
+        return (total + sum(w * la ** k for la, w in atoms)) / mass
+
+    mean = moment(1)
+    var = max(moment(2) - mean * mean, 0.0)
+    return mean, math.sqrt(var)
+
+
+def _steady_variance(act, sigma_w: float, sigma_b: float, q_star: float,
+                     q_layers: np.ndarray) -> float:
+    """The variance for the plain-stack law: q*, or the layers' own variance when the length
+    map is marginal (V(q) = q for every q: ReLU at sigma_w^2 = 2, linear at sigma_w = 1, no
+    bias), where q* = 0 says nothing about the layers (1.0 if the trajectory is 0 too)."""
+    v = float(q_layers[-1]) if q_layers[-1] > 0 else 1.0
+    if q_star == 0.0 and abs(mf.length_map(act, sigma_w, sigma_b, v) - v) <= 1e-12 * v:
+        return v
+    return float(q_star)
+
+
+def predict(activation: str, weights: str, sigma_w: float, sigma_b: float, depth: int,
+            family: str = "plain", alpha: float = 1.0, input_variance: float | None = None,
+            points: int = 400) -> Prediction:
+    """Predict the spectrum of ``J J^T`` at infinite width for one design.
+
+    Plain stacks: q* and the phase from :func:`~isoscope.theory.mean_field.mean_field`; the law of
+    ``d = phi'(h)^2`` at q*; moments by Lagrange inversion and the density from the master
+    equation ``z M S(M) = 1 + M`` with ``S = S_W^L S_{D^2}^L`` (THEORY.md sec. 3).  The q^l
+    trajectory from the input is computed as well; when it leaves q* by more than 5 % the
+    prediction still uses q* and says so in ``notes``.
+
+    Residual stacks: ``tau`` along ``q^l`` from the input variance
+    (:func:`~isoscope.theory.mean_field.q_trajectory` with the mean-mode recursion), then
+    :func:`~isoscope.theory.free_probability.residual_moments` and ``residual_density``.
+
+    Args:
+      activation: registry name.
+      weights: ``"gaussian"``, ``"orthogonal"`` (``"uniform"`` is predicted as Gaussian: same
+        variance, same infinite-width limit).
+      sigma_w, sigma_b: weight and bias scales (standard deviation times sqrt(fan_in) for W).
+      depth: number of weight layers L >= 1.
+      family: ``"plain"`` or ``"residual"``.
+      alpha: residual branch scale.
+      input_variance: plain stacks: ``None`` for steady-state inputs (every layer at q*; on a
+        marginal length map, where every q is a fixed point, at q = 1), or the mean square
+        ``q0 = |x^0|^2/N`` of the inputs, from which ``q^1 = sigma_w^2 q0 + sigma_b^2``.
+        Residual stacks: the input mean square (default 1.0).
+      points: grid size of the density.
+
+    Returns:
+      :class:`Prediction`.
+
+    Raises:
+      TheoryError: no stable fixed point, an unsupported weights kind, or a solve that failed.
+
+    References:
+      Poole et al. 2016; Schoenholz et al. 2017; Pennington, Schoenholz, Ganguli 2017 (NeurIPS)
+      and 2018 (AISTATS); Tarnowski, Warchol, Jastrzebski, Tabor, Nowak 2019 (AISTATS).
+    """
+    act = get_activation(activation)
+    kind = "gaussian" if weights == "uniform" else weights
+    if kind not in fp.WEIGHT_KINDS:
+        raise TheoryError(f"no prediction for weights = {weights!r}; theory covers "
+                          f"{', '.join(fp.WEIGHT_KINDS)} (and uniform, as Gaussian)")
+    if family == "residual":
+        return _predict_residual(act, kind, sigma_w, sigma_b, depth, alpha,
+                                 1.0 if input_variance is None else input_variance, points)
+    if family != "plain":
+        raise TheoryError(f"no prediction for family = {family!r}; theory covers plain and residual")
+    summary = mf.mean_field(act, sigma_w, sigma_b)
+    q_star = summary.q_star
+    notes: list[str] = []
+    if input_variance is None:   # steady state: every layer at q* (or at 1.0 on a marginal map)
+        q_law = _steady_variance(act, sigma_w, sigma_b, q_star, np.ones(1))
+        q_layers = np.full(int(depth), q_law)
+    else:
+        q_layers = mf.q_trajectory(act, sigma_w, sigma_b, float(input_variance), depth)
+        q_law = _steady_variance(act, sigma_w, sigma_b, q_star, q_layers)
+    off = np.abs(q_layers - q_law) / max(q_law, 1e-300) if q_law > 0 else q_layers
+    if np.max(off) > _STEADY_RTOL:
+        worst = int(np.argmax(off))
+        notes.append(f"inputs are not at the fixed point: layer {worst + 1} has q = "
+                     f"{q_layers[worst]:.4g} against q* = {q_law:.4g}; the prediction takes every "
+                     "layer at q* (feed steady-state inputs for a like-for-like comparison)")
+    law = fp.derivative_law(act, q_law)
+    moments = fp.plain_moments(law, kind, sigma_w, depth)
+    density = fp.plain_density(law, kind, sigma_w, depth, points)
+    mean, std = log_lambda_stats(density)
+    regime = (f"N -> infinity with L = {depth} fixed; every layer at q = {q_law:.6g}; "
+              f"{kind} weights free of the diagonal factors")
+    return Prediction("plain", act.name, kind, float(sigma_w), float(sigma_b), int(depth), 1.0,
+                      summary, q_layers, q_law, math.nan, moments, density, mean / 2.0,
+                      std / 2.0, False, regime, tuple(notes))
+
+
+def _predict_residual(act, kind, sigma_w, sigma_b, depth, alpha, q0, points) -> Prediction:
+    q_layers = mf.q_trajectory(act, sigma_w, sigma_b, q0, depth, family="residual", alpha=alpha)
+    tau = fp.residual_tau(act, sigma_w, q_layers, alpha)
+    moments = fp.residual_moments(tau)
+    density = fp.residual_density(tau, points)
+    mean, std = log_lambda_stats(density)
+    per_block = tau / depth
+    notes = []
+    if per_block > 0.1:
+        notes.append(f"each block contributes alpha^2 sigma_w^2 E[phi'^2] = {per_block:.3g} to tau; "
+                     "the residual law assumes O(1/L) per block (L large), so expect the measured "
+                     "spread to differ (scale sigma_w^2 or alpha^2 like 1/L)")
+    mean_phi = float(np.dot(*_mean_phi(act, q_layers[0])))
+    mean_mode = abs(mean_phi) > 1e-8 * math.sqrt(q_layers[0])
+    if mean_mode:
+        notes.append(f"E[phi(h)] = {mean_phi:.3g} != 0: the stack grows a mean mode, one outlier "
+                     "singular value per draw far above the bulk; the law describes the bulk only")
+    regime = (f"N -> infinity and L -> infinity with tau = {tau:.6g} fixed (O(1/L) branch "
+              f"variance per block); {kind} weights; q^l from input variance {q0:.6g}")
+    return Prediction("residual", act.name, kind, float(sigma_w), float(sigma_b), int(depth),
+                      float(alpha), None, q_layers, math.nan, tau, moments, density,
+                      mean / 2.0, std / 2.0, mean_mode, regime, tuple(notes))
+
+
+def _mean_phi(act, q: float) -> tuple[np.ndarray, np.ndarray]:
+    """(weights, phi(sqrt(q) z)) of the normal rule, for ``E[phi(h)]``."""
+    from isoscope.theory.quadrature import normal_rule
+
+    s = math.sqrt(max(q, 0.0))
+    z, w = normal_rule([k / s for k in act.kinks] if s > 0 else [])
+    return w, np.asarray(act.numpy_pair()[0](s * z), dtype=float)
