@@ -22,13 +22,15 @@ import numpy as np
 from isoscope import jacobian as jac
 from isoscope.errors import InputError, TheoryError
 from isoscope.network import Network, plain_stack, residual_stack
-from isoscope.score import Agreement, Score, agreement, non_finite_score, score_spectrum
+from isoscope.score import (Agreement, Score, agreement, censored_log_stats, non_finite_score,
+                            score_spectrum)
 from isoscope.spec import Spec
 from isoscope.spectrum import Spectrum, from_singular_values
 from isoscope.theory import mean_field
 from isoscope.theory.predict import Prediction, predict
 
-__all__ = ["Analysis", "InputPlan", "analyze", "build_network", "plan_inputs", "prediction_for"]
+__all__ = ["Analysis", "DepthProfile", "InputPlan", "analyze", "build_network", "depth_profile",
+           "plan_inputs", "prediction_for"]
 
 # Relative accuracy of an SVD is about n * eps * s_max: below 10^-(digits) of the largest,
 # small singular values are noise.  Digits usable per dtype (common practice, no source:
@@ -53,6 +55,24 @@ class InputPlan:
 
 
 @dataclasses.dataclass(frozen=True)
+class DepthProfile:
+    """Spread of the spectrum against depth: the first draw's partial Jacobians ``J_l ... J_1``
+    beside the prediction for a stack of depth l.
+
+    Attributes:
+      depths: layer counts l (shape ``(k,)``).
+      measured_log_s_std, predicted_log_s_std: std of ln s above the SVD floor of each depth.
+      measured_log_m1, predicted_log_m1: ``ln E[lambda]``.
+    """
+
+    depths: np.ndarray
+    measured_log_s_std: np.ndarray
+    predicted_log_s_std: np.ndarray
+    measured_log_m1: np.ndarray
+    predicted_log_m1: np.ndarray
+
+
+@dataclasses.dataclass(frozen=True)
 class Analysis:
     """The result of analysing one design.
 
@@ -65,6 +85,7 @@ class Analysis:
       predicted: the infinite-width prediction (``None`` when theory has none: the reason is
         in ``warnings``).
       agreement: measured against predicted (``None`` without both).
+      profile: spread against depth, measured and predicted (``None`` without both).
       warnings: sentences a user must read before trusting the numbers.
       seconds: wall time per stage.
     """
@@ -76,6 +97,7 @@ class Analysis:
     score: Score
     predicted: Prediction | None
     agreement: Agreement | None
+    profile: DepthProfile | None
     warnings: tuple[str, ...]
     seconds: dict[str, float]
 
@@ -174,24 +196,58 @@ def _precision_warnings(spectrum: Spectrum) -> tuple[str, ...]:
     return ()
 
 
+def _input_mean_square(spec: Spec, plan: InputPlan) -> float:
+    """``|x^0|^2/N`` expected for the plan: ``E[phi(h)^2], h ~ N(0, q)`` for steady-state
+    inputs, the variance (or the file's mean square) otherwise."""
+    if plan.kind == "steady-state":
+        return mean_field.length_map(spec.network.activation, 1.0, 0.0, plan.variance)
+    return plan.variance
+
+
 def prediction_for(spec: Spec, plan: InputPlan) -> tuple[Prediction | None, tuple[str, ...]]:
     """The infinite-width prediction for a spec whose inputs follow ``plan``.
 
     Every kind of input enters through its mean square ``q0 = |x^0|^2/N``, from which the q^l
     trajectory starts (``q^1 = sigma_w^2 q0 + sigma_b^2``): steady-state inputs
-    ``x = phi(h), h ~ N(0, q*)`` have ``q0 = E[phi(h)^2]`` and so put every layer at q*.  Without a prediction (no fixed point, a failed solve) the
-    reason comes back as a warning.
+    ``x = phi(h), h ~ N(0, q*)`` have ``q0 = E[phi(h)^2]`` and so put every layer at q*.
+    Without a prediction (no fixed point, a failed solve) the reason comes back as a warning.
     """
     n, i = spec.network, spec.init
-    q0 = plan.variance                       # mean square |x^0|^2/N of Gaussian or file inputs
-    if plan.kind == "steady-state":          # x = phi(h), h ~ N(0, q): mean square E[phi(h)^2]
-        q0 = mean_field.length_map(n.activation, 1.0, 0.0, plan.variance)
     try:
         p = predict(n.activation, i.weights, i.sigma_w, i.sigma_b, n.depth, family=n.family,
-                    alpha=n.alpha, input_variance=q0)
+                    alpha=n.alpha, input_variance=_input_mean_square(spec, plan))
     except TheoryError as e:
         return None, (f"no infinite-width prediction: {e}",)
     return p, p.notes
+
+
+PROFILE_POINTS = 8
+
+
+def depth_profile(spec: Spec, plan: InputPlan, network: Network, params, x) -> DepthProfile:
+    """Measured and predicted spread at up to ``PROFILE_POINTS`` log-spaced depths.
+
+    Measured: singular values of ``J_l ... J_1`` for one draw
+    (:func:`~isoscope.jacobian.partial_singular_values`), std of ln s above the SVD floor
+    ``s > n eps s_max``.  Predicted: :func:`~isoscope.theory.predict.predict` at depth l (a
+    coarser 120-point density), std of ln s of the law restricted to the same floor.  When the
+    stack grows a mean mode (residual, ``E[phi] != 0``) the largest singular value is left out.
+    """
+    n, i = spec.network, spec.init
+    depths = np.unique(np.round(np.geomspace(1, n.depth, min(PROFILE_POINTS, n.depth))).astype(int))
+    s = jac.partial_singular_values(network, params, x, depths)
+    m_std, m_m1, p_std, p_m1 = [], [], [], []
+    for d, row in zip(depths, s):
+        p = predict(n.activation, i.weights, i.sigma_w, i.sigma_b, int(d), family=n.family,
+                    alpha=n.alpha, input_variance=_input_mean_square(spec, plan), points=120)
+        sp = from_singular_values(row[1:] if p.mean_mode else row, spec.analysis.dtype)
+        m_std.append(sp.log_s_std)
+        m_m1.append(math.log(sp.lambda_moment(1)))
+        floor = 2.0 * (math.log(sp.threshold) + float(sp.log_s[0, 0]))
+        p_std.append(censored_log_stats(p.density, floor)[1] / 2.0)
+        p_m1.append(math.log(p.moments.m1))
+    m_std, m_m1 = np.array(m_std), np.array(m_m1)
+    return DepthProfile(depths, m_std, np.array(p_std), m_m1, np.array(p_m1))
 
 
 def analyze(spec: Spec) -> Analysis:
@@ -211,12 +267,13 @@ def analyze(spec: Spec) -> Analysis:
         plan = dataclasses.replace(plan, variance=float(np.mean(file_inputs.astype(np.float64) ** 2)))
     root = jax.random.PRNGKey(spec.analysis.seed)
     seconds = {"jacobian": 0.0, "svd": 0.0}
-    singular, fault = [], None
+    singular, fault, first = [], None, None
     for i in range(spec.analysis.inputs):
         k_params, k_input = jax.random.split(jax.random.fold_in(root, i))
         params = network.init(k_params, dtype)
         x = (jnp.asarray(file_inputs[i]) if file_inputs is not None
              else _draw_input(plan, network, k_input, dtype))
+        first = first or (params, x)
         t = time.perf_counter()
         jmat = jac.dense_jacobian(network, params, x).block_until_ready()
         seconds["jacobian"] += time.perf_counter() - t
@@ -239,11 +296,17 @@ def analyze(spec: Spec) -> Analysis:
     predicted, notes = prediction_for(spec, plan)
     seconds["theory"] = time.perf_counter() - t
     warnings += notes
-    agree = None
+    agree = profile = None
     if predicted is not None and spectrum is not None:
         agree = agreement(spectrum, predicted.density, predicted.moments, spec.network.depth,
                           mean_mode=predicted.mean_mode)
         warnings += agree.warnings
+        t = time.perf_counter()
+        try:
+            profile = depth_profile(spec, plan, network, *first)
+        except TheoryError as e:
+            warnings += (f"no depth profile: {e}",)
+        seconds["profile"] = time.perf_counter() - t
     seconds["total"] = time.perf_counter() - t0
     return Analysis(spec=spec, inputs=plan, spectrum=spectrum, fault=fault, score=score,
-                    predicted=predicted, agreement=agree, warnings=warnings, seconds=seconds)
+                    predicted=predicted, agreement=agree, profile=profile, warnings=warnings, seconds=seconds)

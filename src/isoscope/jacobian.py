@@ -28,7 +28,7 @@ import numpy as np
 from isoscope.network import Network
 
 __all__ = ["dense_jacobian", "layer_product", "qr_log_singular_values", "forward_fault",
-           "jacobian_fault", "Fault", "trace_count"]
+           "jacobian_fault", "Fault", "trace_count", "partial_singular_values"]
 
 _TRACES = {"count": 0}
 
@@ -139,6 +139,51 @@ def jacobian_fault(network: Network, params, x: jax.Array) -> Fault | None:
     return Fault("jacobian", layer,
                  f"the Jacobian product overflows at layer {layer} of {network.depth}"
                  f" in {jnp.asarray(x).dtype}")
+
+
+@functools.lru_cache(maxsize=None)
+def _compiled_partial_spectra(layer):
+    layer_jac = jax.jacfwd(layer, argnums=1)
+
+    def run(slices, x, keep):
+        n = x.shape[0]
+
+        def step(carry, inputs):
+            p, wanted = inputs
+            x, t = carry
+            t = layer_jac(p, x) @ t
+            s = jax.lax.cond(wanted, lambda m: jnp.linalg.svd(m, compute_uv=False),
+                             lambda m: jnp.zeros(n, m.dtype), t)
+            return (layer(p, x), t), s
+
+        _, s = jax.lax.scan(step, (x, jnp.eye(n, dtype=x.dtype)), (slices, keep))
+        return s
+
+    return jax.jit(_counted(run))
+
+
+def partial_singular_values(network: Network, params, x: jax.Array,
+                            depths: np.ndarray) -> np.ndarray:
+    """Singular values of the partial Jacobians ``J_l ... J_1`` at the requested depths l.
+
+    One pass over the layers (the per-layer product of :func:`layer_product`), with an SVD
+    at each requested depth; compiled once per (width, depth, dtype).
+
+    Args:
+      network: a built-in stack (with per-layer structure).
+      params, x: parameters and input.
+      depths: increasing layer counts in ``1..network.depth``.
+
+    Returns:
+      ``(len(depths), N)`` singular values, each row decreasing.
+    """
+    if network.layer is None:
+        raise ValueError("partial_singular_values needs a built-in stack with per-layer structure")
+    depths = np.asarray(depths, dtype=int)
+    keep = np.zeros(network.depth, dtype=bool)
+    keep[depths - 1] = True
+    s = _compiled_partial_spectra(network.layer)(network.layer_slices(params), x, jnp.asarray(keep))
+    return np.asarray(s)[depths - 1]
 
 
 @functools.lru_cache(maxsize=None)

@@ -30,7 +30,7 @@ from scipy.special import logsumexp
 from isoscope.spectrum import Spectrum
 
 __all__ = ["Score", "score_spectrum", "VERDICTS", "GAIN_LIMIT", "ISOMETRIC_SCORE", "Agreement",
-           "agreement", "ks_distance", "KS_LIMIT"]
+           "agreement", "ks_distance", "censored_log_stats", "KS_LIMIT"]
 
 GAIN_LIMIT = 10.0      # convention, see module docstring
 ISOMETRIC_SCORE = 0.8  # convention, see module docstring
@@ -157,7 +157,7 @@ def _predicted_log_cdf(density, ell: np.ndarray) -> np.ndarray:
     return out
 
 
-def _censored_log_stats(density, floor_ell: float) -> tuple[float, float]:
+def censored_log_stats(density, floor_ell: float) -> tuple[float, float]:
     """Mean and std of ``ln lambda`` of the predicted law restricted to ``ln lambda > floor``."""
     e, r = density.log_x, density.rho_log
     pts = [(math.log(a), w) for a, w in density.atoms if a > 0 and math.log(a) > floor_ell]
@@ -256,7 +256,7 @@ def agreement(spectrum: Spectrum, density, moments, depth: int, mean_mode: bool 
     m1_se = float(np.std(m1_draws) / math.sqrt(n_draws) / m1) if n_draws > 1 and m1 > 0 else math.nan
     kept = log_lam[np.isfinite(log_lam)] / 2.0
     measured_stats = ((float(kept.mean()), float(kept.std())) if kept.size else (math.nan, math.nan))
-    pm, ps = _censored_log_stats(density, floor_ell)
+    pm, ps = censored_log_stats(density, floor_ell)
     pred_zero = float(_predicted_log_cdf(density, np.array([floor_ell]))[0])
     meas_zero = float(np.mean(~np.isfinite(log_lam)))
     warnings = []
