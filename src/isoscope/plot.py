@@ -14,7 +14,8 @@ import numpy as np
 
 from isoscope.spectrum import Spectrum
 
-__all__ = ["log_s_figure", "lambda_figure", "comparison_figure", "save"]
+__all__ = ["log_s_figure", "lambda_figure", "comparison_figure", "depth_figure", "critical_figure",
+           "predicted_log10_s_curve", "save"]
 
 MEASURED = "#2f6f73"
 PREDICTED = "#c4512b"
@@ -41,7 +42,8 @@ def _bins(values: np.ndarray, count: int = 60) -> np.ndarray:
     return np.linspace(lo - pad, hi + pad, count + 1)
 
 
-def log_s_figure(spectrum: Spectrum, title: str, predicted: tuple[np.ndarray, np.ndarray] | None = None):
+def log_s_figure(spectrum: Spectrum, title: str, predicted: tuple[np.ndarray, np.ndarray] | None = None,
+                 floor_log10_s: float | None = None):
     """Histogram of log10 s (all draws pooled), density per unit log10 s.
 
     Args:
@@ -49,6 +51,8 @@ def log_s_figure(spectrum: Spectrum, title: str, predicted: tuple[np.ndarray, np
       title: figure title (the design name).
       predicted: optional ``(log10_s, density)`` curve drawn over the histogram; a density
         rho(lambda) transforms as ``p(log10 s) = 2 ln(10) s^2 rho(s^2)``.
+      floor_log10_s: optional SVD floor (log10 s) drawn as a dotted line: below it the
+        measurement cannot resolve singular values.
 
     Numerically zero singular values cannot be placed on a log axis; their fraction is
     written in the corner.
@@ -67,6 +71,9 @@ def log_s_figure(spectrum: Spectrum, title: str, predicted: tuple[np.ndarray, np
     if predicted is not None:
         ax.plot(predicted[0], predicted[1], color=PREDICTED, lw=2.0, label="predicted (N -> infinity)")
     ax.axvline(0.0, color=REFERENCE, ls="--", lw=1.0, label="s = 1 (isometry)")
+    if floor_log10_s is not None and (predicted is not None and predicted[0].size
+                                      and predicted[0][0] < floor_log10_s or spectrum.zero_fraction > 0):
+        ax.axvline(floor_log10_s, color=REFERENCE, ls=":", lw=1.0, label="SVD floor (unresolved below)")
     if spectrum.zero_fraction > 0:
         ax.text(0.02, 0.95, f"{100 * spectrum.zero_fraction:.1f}% numerically zero\n(not shown)",
                 transform=ax.transAxes, va="top", fontsize=9)
@@ -125,6 +132,59 @@ def comparison_figure(spectra: dict[str, Spectrum], title: str):
     ax.set_ylabel("density per unit log10 s")
     ax.set_title(title)
     ax.legend(fontsize=8, frameon=False)
+    return fig
+
+
+def predicted_log10_s_curve(log_x: np.ndarray, rho_log: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """A predicted law of lambda as a density per unit log10 s.
+
+    With ``ell = ln lambda = 2 ln(10) log10 s`` and ``rho_log = lambda rho(lambda)`` the density of
+    ell, ``p(log10 s) = 2 ln(10) s^2 rho(s^2) = 2 ln(10) rho_log``.
+    """
+    return np.asarray(log_x) / (2.0 * math.log(10.0)), 2.0 * math.log(10.0) * np.asarray(rho_log)
+
+
+def depth_figure(depths: np.ndarray, measured: np.ndarray, predicted: np.ndarray, title: str,
+                 width: int):
+    """Spread (std of ln s) against depth: measured partial Jacobians and the prediction."""
+    plt = _pyplot()
+    fig, ax = plt.subplots(figsize=(7.0, 4.0), layout="constrained")
+    ax.plot(depths, predicted, color=PREDICTED, lw=2.0, label="predicted (N -> infinity)")
+    ax.plot(depths, measured, "o", color=MEASURED, ms=6, label=f"measured (width {width}, one draw)")
+    ax.set_xscale("log")
+    if np.nanmax(np.concatenate([measured, predicted])) > 20 * max(np.nanmin(measured), 1e-12):
+        ax.set_yscale("log")
+    ax.set_xlabel("depth l (layers in the partial Jacobian J_l ... J_1)")
+    ax.set_ylabel("std of ln s above the SVD floor")
+    ax.set_title(title)
+    ax.legend(fontsize=8, frameon=False)
+    return fig
+
+
+def critical_figure(sigma_w2: np.ndarray, sigma_b2: np.ndarray, point: tuple[float, float],
+                    title: str, label: str = "this design"):
+    """The critical line chi_1 = 1 in the (sigma_w^2, sigma_b^2) plane with one design marked.
+
+    Below/right of the line (larger sigma_w^2 at fixed sigma_b^2) is the chaotic phase, above/left
+    the ordered one.  A single-point line (homogeneous phi: linear, ReLU) is drawn as a point.
+    """
+    plt = _pyplot()
+    fig, ax = plt.subplots(figsize=(6.0, 4.2), layout="constrained")
+    if sigma_w2.size > 1:
+        ax.plot(sigma_w2, sigma_b2, color=PREDICTED, lw=2.0, label="critical line chi_1 = 1")
+    else:
+        ax.plot(sigma_w2, sigma_b2, "s", color=PREDICTED, ms=8, label="critical point chi_1 = 1")
+    ax.plot([point[0]], [point[1]], "D", color=MEASURED, ms=8, label=label)
+    xs = np.concatenate([sigma_w2, [point[0]]])
+    ys = np.concatenate([sigma_b2, [point[1]]])
+    ax.set_xlim(0.0, 1.15 * float(xs.max()) + 0.1)
+    ax.set_ylim(-0.02 * max(float(ys.max()), 0.05), 1.1 * max(float(ys.max()), 0.05))
+    ax.text(0.97, 0.05, "chaotic (chi_1 > 1)", transform=ax.transAxes, ha="right", fontsize=9)
+    ax.text(0.03, 0.90, "ordered (chi_1 < 1)", transform=ax.transAxes, ha="left", fontsize=9)
+    ax.set_xlabel("sigma_w^2  (weight variance x fan-in)")
+    ax.set_ylabel("sigma_b^2  (bias variance)")
+    ax.set_title(title)
+    ax.legend(fontsize=8, frameon=False, loc="center left")
     return fig
 
 

@@ -22,9 +22,9 @@ from typing import Any
 import numpy as np
 
 from isoscope.analysis import Analysis
-from isoscope.errors import InputError
+from isoscope.errors import InputError, TheoryError
 
-__all__ = ["SCHEMA", "GLOSSARY", "result_dict", "to_json", "write_analysis_folder",
+__all__ = ["SCHEMA", "GLOSSARY", "result_dict", "prediction_dict", "to_json", "write_analysis_folder",
            "write_comparison_folder", "summary_table", "output_folder"]
 
 SCHEMA = "isoscope.result/1"
@@ -50,6 +50,17 @@ GLOSSARY = {
     "score.normalised_variance": "m2/m1^2 - 1: variance of lambda/m1 (0 only if all lambda are equal)",
     "score.log_s_std": "standard deviation of ln s (non-zero s), the spread on a log scale",
     "score.verdict": "isometric | spread | vanishing | exploding | non-finite (see score.reason)",
+    "predicted": "infinite-width prediction (mean field + free probability); predicted.regime says what it assumes",
+    "predicted.q_star, chi, xi_q, xi_c, c_star": "mean field of a plain stack: fixed point q*, chi_1, depth scales, correlation fixed point (null for residual stacks)",
+    "predicted.tau": "residual stacks: sum over blocks of alpha^2 sigma_w^2 E[phi'(h^l)^2]",
+    "predicted.lambda_moments.mK": "K-th moment of lambda at infinite width",
+    "predicted.density": "continuous part of the law of lambda: x (lambda grid), rho (density in lambda), log_x, rho_log (density of ln lambda); atoms listed separately",
+    "predicted.atom_at_zero": "share of lambda exactly 0 (phi'(h) = 0 with positive probability, e.g. ReLU 1/2)",
+    "agreement.ks": "Kolmogorov-Smirnov distance between measured and predicted laws of lambda, above agreement.floor",
+    "agreement.floor": "lambda below which the SVD cannot resolve values; both laws count everything below as one lump",
+    "agreement.m1_rel_error, m2_rel_error": "measured / predicted - 1",
+    "agreement.log_s_mean, log_s_std": "[predicted, measured] mean and std of ln s above the floor",
+    "profile": "std of ln s and ln m1 of the partial Jacobians J_l ... J_1 (one draw) against the prediction at depth l",
     "inputs.variance": "q* for steady-state inputs (h ~ N(0, q*)), the variance for Gaussian ones",
     "seconds": "wall-clock seconds per stage on this machine",
 }
@@ -99,6 +110,52 @@ def _measured(analysis: Analysis) -> dict[str, Any] | None:
     }
 
 
+def prediction_dict(p) -> dict[str, Any]:
+    """A :class:`~isoscope.theory.predict.Prediction` as plain data (also ``predict --json``).
+
+    Scales are given with their squares (``sigma_w`` and ``sigma_w2``); the mean-field numbers
+    sit at the top level (``q_star, chi, xi_q, xi_c, c_star``; null for residual stacks).
+    """
+    mf, d = p.mean_field, p.density
+    return {
+        "family": p.family, "activation": p.activation, "weights": p.weights,
+        "sigma_w": p.sigma_w, "sigma_w2": p.sigma_w ** 2, "sigma_b": p.sigma_b,
+        "sigma_b2": p.sigma_b ** 2, "depth": p.depth,
+        "alpha": p.alpha if p.family == "residual" else None,
+        "regime": p.regime,
+        "q_star": mf.q_star if mf else None, "chi": mf.chi1 if mf else None,
+        "xi_q": mf.xi_q if mf else None, "xi_c": mf.xi_c if mf else None,
+        "c_star": mf.c_star if mf else None, "phase": mf.phase if mf else None,
+        "q_law": p.q_law, "tau": p.tau, "q_layers": p.q_layers,
+        "lambda_moments": p.moments._asdict(),
+        "log_s": {"mean": p.log_s_mean, "std": p.log_s_std},
+        "atom_at_zero": d.atom_at_zero,
+        "atoms": [{"lambda": a, "weight": w} for a, w in d.atoms],
+        "support": list(d.support),
+        "mean_mode": p.mean_mode,
+        "density": {"x": d.x, "rho": d.rho, "log_x": d.log_x, "rho_log": d.rho_log},
+        "notes": list(p.notes),
+    }
+
+
+def _agreement_dict(g) -> dict[str, Any] | None:
+    if g is None:
+        return None
+    out = g._asdict()
+    out["log_s_mean"] = list(g.log_s_mean)
+    out["log_s_std"] = list(g.log_s_std)
+    out["zero_fraction"] = list(g.zero_fraction)
+    return out
+
+
+def _profile_dict(p) -> dict[str, Any] | None:
+    if p is None:
+        return None
+    return {"depths": p.depths, "measured_log_s_std": p.measured_log_s_std,
+            "predicted_log_s_std": p.predicted_log_s_std, "measured_log_m1": p.measured_log_m1,
+            "predicted_log_m1": p.predicted_log_m1}
+
+
 def result_dict(analysis: Analysis) -> dict[str, Any]:
     """The result of one analysis as plain JSON-ready data (schema ``isoscope.result/1``)."""
     f = analysis.fault
@@ -112,6 +169,9 @@ def result_dict(analysis: Analysis) -> dict[str, Any]:
         "measured": _measured(analysis),
         "fault": None if f is None else {"stage": f.stage, "layer": f.layer, "detail": f.detail},
         "score": analysis.score._asdict(),
+        "predicted": None if analysis.predicted is None else prediction_dict(analysis.predicted),
+        "agreement": _agreement_dict(analysis.agreement),
+        "profile": _profile_dict(analysis.profile),
         "warnings": list(analysis.warnings),
         "seconds": analysis.seconds,
         "glossary": GLOSSARY,
@@ -165,14 +225,34 @@ class output_folder:
 
 def _figures(analysis: Analysis, folder: Path, prefix: str = "") -> dict[str, Path]:
     from isoscope import plot
+    from isoscope.theory import mean_field
     if analysis.spectrum is None:
         return {}
-    name = analysis.spec.name
+    name, p = analysis.spec.name, analysis.predicted
     out = {}
-    fig = plot.log_s_figure(analysis.spectrum, f"{name}: singular values s of J (log axis)")
+    curve = None if p is None else plot.predicted_log10_s_curve(p.density.log_x, p.density.rho_log)
+    g = analysis.agreement
+    floor = None if g is None or g.floor <= 0 else 0.5 * math.log10(g.floor)
+    fig = plot.log_s_figure(analysis.spectrum, f"{name}: singular values s of J (log axis)", curve, floor)
     out["log_s"] = plot.save(fig, folder / f"{prefix}spectrum-log-s")[0]
-    fig = plot.lambda_figure(analysis.spectrum, f"{name}: eigenvalues lambda = s^2 of J J^T")
+    curve = None if p is None else (p.density.x, p.density.rho)
+    fig = plot.lambda_figure(analysis.spectrum, f"{name}: eigenvalues lambda = s^2 of J J^T", curve)
     out["lambda"] = plot.save(fig, folder / f"{prefix}spectrum-lambda")[0]
+    if analysis.profile is not None:
+        pr = analysis.profile
+        fig = plot.depth_figure(pr.depths, pr.measured_log_s_std, pr.predicted_log_s_std,
+                                f"{name}: spread against depth", analysis.spectrum.size)
+        out["depth"] = plot.save(fig, folder / f"{prefix}spread-by-depth")[0]
+    n, i = analysis.spec.network, analysis.spec.init
+    if n.family == "plain":
+        try:
+            line = mean_field.critical_line(n.activation)
+        except TheoryError:  # no critical line for this activation: nothing to draw
+            line = None
+        if line is not None:
+            fig = plot.critical_figure(line.sigma_w2, line.sigma_b2, (i.sigma_w ** 2, i.sigma_b ** 2),
+                                       f"{name}: {n.activation} phase diagram")
+            out["critical"] = plot.save(fig, folder / f"{prefix}critical-line")[0]
     return out
 
 
@@ -202,6 +282,12 @@ _ROWS = (
     ("std ln s", lambda r: (r["measured"] or {}).get("log_s", {}).get("std")),
     ("numerically zero s", lambda r: (r["measured"] or {}).get("zero_fraction")),
     ("log10 s_max/s_min", lambda r: (r["measured"] or {}).get("log10_condition")),
+    ("predicted m1 (N -> infinity)", lambda r: (r["predicted"] or {}).get("lambda_moments", {}).get("m1")),
+    ("predicted std ln s", lambda r: (r["predicted"] or {}).get("log_s", {}).get("std")),
+    ("q* (mean field)", lambda r: (r["predicted"] or {}).get("q_star")),
+    ("chi_1 (mean field)", lambda r: (r["predicted"] or {}).get("chi")),
+    ("KS distance measured vs predicted", lambda r: (r["agreement"] or {}).get("ks")),
+    ("m1 error measured/predicted - 1", lambda r: (r["agreement"] or {}).get("m1_rel_error")),
 )
 
 
@@ -283,13 +369,15 @@ def write_comparison_folder(analyses: list[Analysis], out: str | Path, title: st
 
 def summary_table(analyses: list[Analysis]) -> str:
     """A short fixed-width table for the terminal, one row per design."""
-    cols = ("design", "verdict", "isometry", "gain m1", "m2/m1^2-1", "std ln s", "zero s")
+    cols = ("design", "verdict", "isometry", "gain m1", "m2/m1^2-1", "std ln s", "zero s",
+            "KS vs theory")
     rows = []
     for a in analyses:
         sc, sp = a.score, a.spectrum
         rows.append((a.spec.name, sc.verdict, f"{sc.isometry:.3f}", f"{sc.gain:.4g}",
                      f"{sc.normalised_variance:.3g}", f"{sc.log_s_std:.3f}",
-                     f"{100 * sp.zero_fraction:.1f}%" if sp is not None else "—"))
+                     f"{100 * sp.zero_fraction:.1f}%" if sp is not None else "—",
+                     f"{a.agreement.ks:.3f}" if a.agreement is not None else "—"))
     widths = [max(len(c), *(len(r[i]) for r in rows)) for i, c in enumerate(cols)]
     line = lambda r: "  ".join(v.ljust(w) if i < 2 else v.rjust(w) for i, (v, w) in enumerate(zip(r, widths)))
     out = [line(cols), "  ".join("-" * w for w in widths)] + [line(r) for r in rows]
