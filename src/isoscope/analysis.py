@@ -30,7 +30,7 @@ from isoscope.theory import mean_field
 from isoscope.theory.predict import Prediction, predict
 
 __all__ = ["Analysis", "DepthProfile", "InputPlan", "analyze", "build_network", "depth_profile",
-           "plan_inputs", "prediction_for"]
+           "plan_inputs", "predict_spec", "prediction_for"]
 
 # Relative accuracy of an SVD is about n * eps * s_max: below 10^-(digits) of the largest,
 # small singular values are noise.  Digits usable per dtype (common practice, no source:
@@ -204,18 +204,34 @@ def _input_mean_square(spec: Spec, plan: InputPlan) -> float:
     return plan.variance
 
 
-def prediction_for(spec: Spec, plan: InputPlan) -> tuple[Prediction | None, tuple[str, ...]]:
+def predict_spec(spec: Spec, plan: InputPlan | None = None, points: int = 400) -> Prediction:
     """The infinite-width prediction for a spec whose inputs follow ``plan``.
 
     Every kind of input enters through its mean square ``q0 = |x^0|^2/N``, from which the q^l
     trajectory starts (``q^1 = sigma_w^2 q0 + sigma_b^2``): steady-state inputs
     ``x = phi(h), h ~ N(0, q*)`` have ``q0 = E[phi(h)^2]`` and so put every layer at q*.
-    Without a prediction (no fixed point, a failed solve) the reason comes back as a warning.
+
+    Args:
+      spec: the design.
+      plan: the inputs (default: :func:`plan_inputs` of the spec).
+      points: grid size of the predicted density.
+
+    Raises:
+      TheoryError: theory has no prediction (no fixed point, a failed solve).
     """
     n, i = spec.network, spec.init
+    plan = plan_inputs(spec)[0] if plan is None else plan
+    if plan.kind == "file" and not math.isfinite(plan.variance):
+        x = _load_inputs(spec, np.float64)
+        plan = dataclasses.replace(plan, variance=float(np.mean(x ** 2)))
+    return predict(n.activation, i.weights, i.sigma_w, i.sigma_b, n.depth, family=n.family,
+                   alpha=n.alpha, input_variance=_input_mean_square(spec, plan), points=points)
+
+
+def prediction_for(spec: Spec, plan: InputPlan) -> tuple[Prediction | None, tuple[str, ...]]:
+    """:func:`predict_spec`, with its notes, or ``None`` and the reason as a warning."""
     try:
-        p = predict(n.activation, i.weights, i.sigma_w, i.sigma_b, n.depth, family=n.family,
-                    alpha=n.alpha, input_variance=_input_mean_square(spec, plan))
+        p = predict_spec(spec, plan)
     except TheoryError as e:
         return None, (f"no infinite-width prediction: {e}",)
     return p, p.notes

@@ -72,6 +72,155 @@ def _cmd_demo(args) -> int:
     return 0
 
 
+# flag -> spec key, for `predict` and `critical`
+_DESIGN_FLAGS = (("activation", "network", "activation"), ("family", "network", "family"),
+                 ("depth", "network", "depth"), ("alpha", "network", "alpha"),
+                 ("weights", "init", "weights"), ("sigma_w", "init", "sigma_w"),
+                 ("sigma_b", "init", "sigma_b"))
+
+
+def _design_from_flags(args):
+    """A Spec from ``SPEC.toml`` (optional) with the design flags laid over it.
+
+    Flags are validated by the same rules as spec keys (``--sigma-w`` is ``init.sigma_w``).
+    Without a spec, ``--activation``, ``--sigma-w`` and ``--depth`` are required.
+    """
+    from isoscope.spec import load_spec, parse_spec
+
+    given = {flag: getattr(args, flag) for flag, _, _ in _DESIGN_FLAGS if getattr(args, flag) is not None}
+    if args.spec:
+        base = load_spec(args.spec).to_dict()
+        source = f"{args.spec} with command-line flags"
+    else:
+        missing = [f"--{f.replace('_', '-')}" for f in ("activation", "sigma_w", "depth") if f not in given]
+        if missing:
+            raise InputError(f"no spec file and no {', '.join(missing)}",
+                             expected="SPEC.toml, or at least --activation, --sigma-w and --depth",
+                             hint="e.g. isoscope predict --activation tanh --sigma-w 1.01 --depth 100")
+        base = {"name": "command-line design", "network": {}, "init": {}}
+        source = "<command-line flags>"
+    for flag, section, key in _DESIGN_FLAGS:
+        if flag in given:
+            base.setdefault(section, {})[key] = given[flag]
+    if base["network"].get("family", "plain") != "residual":
+        base["network"].pop("alpha", None)
+    return parse_spec(base, source=source)
+
+
+def _fmt(v) -> str:
+    return "inf" if v == float("inf") else ("-" if v is None else f"{v:.6g}")
+
+
+def _prediction_text(p) -> str:
+    mf, m, d = p.mean_field, p.moments, p.density
+    lines = [f"prediction for a {p.family} stack: {p.activation}, {p.weights} weights, depth {p.depth}, "
+             f"sigma_w = {p.sigma_w:.6g} (sigma_w^2 = {p.sigma_w ** 2:.6g}), sigma_b = {p.sigma_b:.6g} "
+             f"(sigma_b^2 = {p.sigma_b ** 2:.6g})" + (f", alpha = {p.alpha:g}" if p.family == "residual" else "")]
+    lines.append(f"assumes: {p.regime}")
+    if mf is not None:
+        lines.append(f"mean field: q* = {_fmt(mf.q_star)}, chi_1 = {mf.chi1:.10g} ({mf.phase}), "
+                     f"xi_q = {_fmt(mf.xi_q)}, xi_c = {_fmt(mf.xi_c)}, c* = {_fmt(mf.c_star)}")
+    else:
+        lines.append(f"residual law: tau = {_fmt(p.tau)} (q^1 = {_fmt(p.q_layers[0])}, "
+                     f"q^L = {_fmt(p.q_layers[-1])})")
+    nvar = m.m2 / m.m1 ** 2 - 1.0 if m.m1 > 0 else float("nan")
+    lines.append(f"lambda = s^2 moments: m1 = {_fmt(m.m1)}, m2 = {_fmt(m.m2)}, m3 = {_fmt(m.m3)}, "
+                 f"m4 = {_fmt(m.m4)}; m2/m1^2 - 1 = {_fmt(nvar)}")
+    lines.append(f"ln s over the non-zero part: mean {_fmt(p.log_s_mean)}, std {_fmt(p.log_s_std)}")
+    lines.append(f"support of lambda: [{_fmt(d.support[0])}, {_fmt(d.support[1])}]; "
+                 f"atom at zero: {_fmt(d.atom_at_zero)}"
+                 + "".join(f"; atom at {_fmt(a)} of weight {_fmt(w)}" for a, w in d.atoms if a > 0))
+    lines += [f"! {n}" for n in p.notes]
+    return "\n".join(lines)
+
+
+def _cmd_predict(args) -> int:
+    from isoscope.analysis import predict_spec
+    from isoscope.report import prediction_dict, to_json
+
+    spec = _design_from_flags(args)
+    p = predict_spec(spec, points=args.points)
+    if args.json:
+        sys.stdout.write(to_json({"schema": "isoscope.prediction/1", **prediction_dict(p)}))
+    else:
+        print(_prediction_text(p))
+    return 0
+
+
+def _cmd_critical(args) -> int:
+    from isoscope.activations import get_activation
+    from isoscope.report import to_json
+    from isoscope.theory import mean_field as mf
+
+    try:
+        act = get_activation(args.activation)
+    except (KeyError, ValueError) as e:
+        raise InputError(str(e), expected="a registered activation name") from None
+    crit = mf.critical_point(act, args.sigma_b)
+    sigma_w = crit.sigma_w if args.sigma_w is None else args.sigma_w
+    point = mf.mean_field(act, sigma_w, args.sigma_b)
+    line = mf.critical_line(act)
+    if args.plot:
+        from isoscope import plot
+        fig = plot.critical_figure(line.sigma_w2, line.sigma_b2, (sigma_w ** 2, args.sigma_b ** 2),
+                                   f"{act.name}: critical line", label=f"sigma_w = {sigma_w:.4g}, "
+                                   f"sigma_b = {args.sigma_b:.4g}")
+        _save_figure(fig, Path(args.plot))
+    trainable = None if args.depth is None else bool(args.depth <= 6.0 * point.xi_c)
+    if args.json:
+        sys.stdout.write(to_json({
+            "schema": "isoscope.critical/1", "activation": act.name,
+            "sigma_b": args.sigma_b, "sigma_b2": args.sigma_b ** 2,
+            "sigma_w": crit.sigma_w, "sigma_w2": crit.sigma_w2, "q_star": crit.q_star,
+            "point": point._asdict(), "depth": args.depth, "depth_within_6_xi_c": trainable,
+            "line": {"sigma_w2": line.sigma_w2, "sigma_b2": line.sigma_b2, "q_star": line.q_star}}))
+        return 0
+    print(f"{act.name}, sigma_b = {args.sigma_b:.6g} (sigma_b^2 = {args.sigma_b ** 2:.6g}): critical "
+          f"sigma_w = {crit.sigma_w:.10g} (sigma_w^2 = {crit.sigma_w2:.10g}), q* = {crit.q_star:.6g}")
+    print(f"at sigma_w = {sigma_w:.6g}: q* = {_fmt(point.q_star)}, chi_1 = {point.chi1:.10g} "
+          f"({point.phase}), xi_q = {_fmt(point.xi_q)}, xi_c = {_fmt(point.xi_c)}, c* = {_fmt(point.c_star)}")
+    if trainable is not None:
+        print(f"depth {args.depth} is {'within' if trainable else 'beyond'} 6 xi_c = {_fmt(6 * point.xi_c)} "
+              "(common practice: signals propagate through about 6 xi_c layers)")
+    print(f"critical line: {line.sigma_w2.size} points, sigma_w^2 from {line.sigma_w2.min():.4g} to "
+          f"{line.sigma_w2.max():.4g}, sigma_b^2 up to {line.sigma_b2.max():.4g} (--json for the table)")
+    return 0
+
+
+def _save_figure(fig, path: Path) -> None:
+    """Save one figure atomically (a temporary file renamed into place); PNG or SVG by suffix."""
+    import os
+    import tempfile
+
+    from isoscope import plot
+    fmt = path.suffix.lower().lstrip(".")
+    if fmt not in ("png", "svg"):
+        raise InputError(f"--plot {str(path)!r} has suffix {path.suffix!r}", expected=".png or .svg")
+    if not path.parent.exists():
+        raise InputError(f"--plot {str(path)!r}: folder {str(path.parent)!r} does not exist",
+                         expected="a path in an existing folder")
+    fd, tmp = tempfile.mkstemp(suffix=path.suffix, dir=path.parent)
+    os.close(fd)
+    try:
+        fig.savefig(tmp, dpi=130, format=fmt)
+        os.replace(tmp, path)
+    finally:
+        if os.path.exists(tmp):
+            os.remove(tmp)
+        plot._pyplot().close(fig)
+
+
+def _add_design_flags(p: argparse.ArgumentParser) -> None:
+    p.add_argument("spec", metavar="SPEC.toml", nargs="?", help="a design (flags override its keys)")
+    p.add_argument("--activation", help="activation name (network.activation)")
+    p.add_argument("--weights", help="gaussian | orthogonal | uniform (init.weights; default orthogonal)")
+    p.add_argument("--sigma-w", dest="sigma_w", type=float, help="weight scale, std x sqrt(fan_in) (init.sigma_w)")
+    p.add_argument("--sigma-b", dest="sigma_b", type=float, help="bias scale, a std (init.sigma_b; default 0)")
+    p.add_argument("--depth", type=int, help="number of weight layers (network.depth)")
+    p.add_argument("--family", help="plain | residual (network.family; default plain)")
+    p.add_argument("--alpha", type=float, help="residual branch scale (network.alpha; default 1)")
+
+
 def build_parser() -> argparse.ArgumentParser:
     """The argument parser (exposed for documentation and tests)."""
     p = argparse.ArgumentParser(
@@ -91,6 +240,27 @@ def build_parser() -> argparse.ArgumentParser:
     d.add_argument("--out", metavar="DIR", default="isoscope-demo", help="output folder (default isoscope-demo)")
     d.add_argument("--json", action="store_true", help="print the results JSON to stdout")
     d.set_defaults(run=_cmd_demo)
+
+    pr = sub.add_parser("predict", help="theory only: mean field and the predicted spectrum",
+                        description="Predict the Jacobian spectrum of a design at infinite width "
+                                    "(no network is built). Give a spec, flags, or both.")
+    _add_design_flags(pr)
+    pr.add_argument("--points", type=int, default=400, help="grid size of the density (default 400)")
+    pr.add_argument("--json", action="store_true", help="print the prediction JSON to stdout")
+    pr.set_defaults(run=_cmd_predict)
+
+    c = sub.add_parser("critical", help="critical sigma_w for a sigma_b, the critical line, depth scales",
+                       description="Where chi_1 = 1 for an activation: the critical weight scale at "
+                                   "the given bias scale, the whole critical line, and the depth "
+                                   "scales at your point.")
+    c.add_argument("--activation", required=True, help="activation name")
+    c.add_argument("--sigma-b", dest="sigma_b", type=float, default=0.0, help="bias scale (default 0)")
+    c.add_argument("--sigma-w", dest="sigma_w", type=float,
+                   help="your weight scale, for the depth scales (default: the critical one)")
+    c.add_argument("--depth", type=int, help="your depth, compared with 6 xi_c")
+    c.add_argument("--plot", metavar="FILE.png", help="write the critical-line figure (PNG or SVG)")
+    c.add_argument("--json", action="store_true", help="print the result JSON to stdout")
+    c.set_defaults(run=_cmd_critical)
     return p
 
 
