@@ -53,6 +53,11 @@ class Prediction:
       density: the law of lambda (continuous part on a grid, atoms separate).
       log_s_mean, log_s_std: mean and standard deviation of ln s = (ln lambda)/2 over the
         non-zero part of the law (comparable with the measured statistics over non-zero s).
+      length_mode_s: plain stacks: the singular value of the one direction along the input,
+        which follows the length map rather than the bulk law: a relative change of |x^0|
+        reaches the output multiplied by ``V'(q*)^L`` (``V'`` the slope of the length map at q*,
+        Poole et al. 2016; ``= exp(-L/xi_q)``).  It is invisible at N -> infinity (one value out
+        of N) but shows as an isolated value per draw at finite width.  NaN for residual stacks.
       mean_mode: True for a residual stack whose branch has ``E[phi(h)] != 0``: one singular
         value per draw (the mean mode) sits far above the bulk the law describes.
       regime: the assumptions the prediction rests on.
@@ -74,6 +79,7 @@ class Prediction:
     density: fp.Density
     log_s_mean: float
     log_s_std: float
+    length_mode_s: float
     mean_mode: bool
     regime: str
     notes: tuple[str, ...]
@@ -185,7 +191,14 @@ def predict(activation: str, weights: str, sigma_w: float, sigma_b: float, depth
               f"{kind} weights free of the diagonal factors")
     return Prediction("plain", act.name, kind, float(sigma_w), float(sigma_b), int(depth), 1.0,
                       summary, q_layers, q_law, math.nan, moments, density, mean / 2.0,
-                      std / 2.0, False, regime, tuple(notes))
+                      std / 2.0, _length_mode(act, sigma_w, q_law, depth), False, regime,
+                      tuple(notes))
+
+
+def _length_mode(act, sigma_w: float, q: float, depth: int) -> float:
+    """``V'(q)^L``, the gain of the input-length direction (see ``Prediction.length_mode_s``)."""
+    slope = mf.length_map_slope(act, sigma_w, q) if q > 0 else math.nan
+    return math.exp(depth * math.log(slope)) if slope > 0 and math.isfinite(slope) else math.nan
 
 
 def _predict_residual(act, kind, sigma_w, sigma_b, depth, alpha, q0, points) -> Prediction:
@@ -209,7 +222,7 @@ def _predict_residual(act, kind, sigma_w, sigma_b, depth, alpha, q0, points) -> 
               f"variance per block); {kind} weights; q^l from input variance {q0:.6g}")
     return Prediction("residual", act.name, kind, float(sigma_w), float(sigma_b), int(depth),
                       float(alpha), None, q_layers, math.nan, tau, moments, density,
-                      mean / 2.0, std / 2.0, mean_mode, regime, tuple(notes))
+                      mean / 2.0, std / 2.0, math.nan, mean_mode, regime, tuple(notes))
 
 
 def _mean_phi(act, q: float) -> tuple[np.ndarray, np.ndarray]:
