@@ -200,8 +200,8 @@ def ks_distance(sample_log_lam: np.ndarray, density, floor_ell: float = -math.in
     f = _predicted_log_cdf(density, xs)
     ranks = np.arange(i0 + 1, n + 1) / n
     d = max(np.max(np.abs(ranks - f), initial=0.0), np.max(np.abs(ranks - 1.0 / n - f), initial=0.0))
-    if math.isfinite(floor_ell):
-        d = max(d, abs(i0 / n - float(_predicted_log_cdf(density, np.array([floor_ell]))[0])))
+    # the lump at the floor (at -inf: exact zeros against the atom at zero)
+    d = max(d, abs(i0 / n - float(_predicted_log_cdf(density, np.array([floor_ell]))[0])))
     return float(d)
 
 
