@@ -134,3 +134,95 @@ def test_float32_overflow_is_reported_not_garbage(tmp_path, capsys):
 def test_module_entry_point_help():
     p = subprocess.run([sys.executable, "-m", "isoscope", "--help"], capture_output=True, text=True)
     assert p.returncode == 0 and "analyze" in p.stdout and "demo" in p.stdout
+
+
+def test_predict_json_from_flags(capsys):
+    code, out, _ = _run(["predict", "--activation", "tanh", "--weights", "orthogonal",
+                         "--sigma-w", 1.2, "--sigma-b", 0.1, "--depth", 10, "--points", 64,
+                         "--json"], capsys)
+    assert code == 0
+    r = json.loads(out)
+    assert r["schema"] == "isoscope.prediction/1"
+    for key in ("q_star", "chi", "xi_q", "xi_c", "c_star", "atom_at_zero"):
+        assert isinstance(r[key], float), key
+    assert set(r["lambda_moments"]) == {"m1", "m2", "m3", "m4"}
+    assert len(r["density"]["x"]) == len(r["density"]["rho"]) == 64
+    assert r["sigma_w2"] == pytest.approx(1.44) and r["sigma_b2"] == pytest.approx(0.01)
+    # tanh q* solves q = sigma_w^2 E[tanh(sqrt(q) z)^2] + sigma_b^2 (Poole et al. 2016, eq. 3),
+    # the expectation checked here with scipy.integrate.quad
+    from scipy import integrate, stats
+    q = r["q_star"]
+    e = integrate.quad(lambda z: np.tanh(np.sqrt(q) * z) ** 2 * stats.norm.pdf(z), -12, 12)[0]
+    assert 1.44 * e + 0.01 == pytest.approx(q, rel=1e-9)
+
+
+def test_predict_from_a_spec_with_a_flag_override(tmp_path, capsys):
+    spec = _write(tmp_path, GOOD)
+    code, out, _ = _run(["predict", spec, "--depth", 12, "--points", 64, "--json"], capsys)
+    r = json.loads(out)
+    assert code == 0 and r["depth"] == 12 and r["sigma_w"] == 1.1 and r["activation"] == "tanh"
+
+
+@pytest.mark.parametrize("args,needle", [
+    (["--activation", "tanh", "--depth", 5], "--sigma-w"),
+    (["--activation", "tahn", "--sigma-w", 1.0, "--depth", 5], "unknown activation 'tahn'"),
+    (["--activation", "tanh", "--sigma-w", 1.0, "--depth", 0], "depth.*0.*>= 1"),
+    (["--activation", "gelu", "--sigma-w", 2.0, "--sigma-b", 0.1, "--depth", 4],
+     "no finite stable fixed point"),
+])
+def test_predict_bad_requests_exit_2(capsys, args, needle):
+    import re
+    code, out, err = _run(["predict", *args], capsys)
+    assert code == 2 and out == "" and re.search(needle, err), err
+
+
+def test_critical_json_matches_the_tanh_check_value(tmp_path, capsys):
+    # THEORY.md sec. 2 check value: tanh at sigma_b^2 = 0.05 is critical at sigma_w^2 = 1.760954639607,
+    # q* = 0.570047881641 (Schoenholz et al. 2017 show about 1.76)
+    fig = tmp_path / "line.png"
+    code, out, _ = _run(["critical", "--activation", "tanh", "--sigma-b", 0.05 ** 0.5,
+                         "--sigma-w", 1.0, "--depth", 50, "--plot", fig, "--json"], capsys)
+    assert code == 0
+    r = json.loads(out)
+    assert r["schema"] == "isoscope.critical/1"
+    assert r["sigma_w2"] == pytest.approx(1.760954639607, abs=1e-9)
+    assert r["sigma_w"] == pytest.approx(1.760954639607 ** 0.5, abs=1e-9)
+    assert r["q_star"] == pytest.approx(0.570047881641, abs=1e-9)
+    # the user's point sigma_w^2 = 1, sigma_b^2 = 0.05 (THEORY.md sec. 2):
+    # q* = 0.193593, chi_1 = 0.759032, xi_q = 1.7476, xi_c = 3.6270; ordered, 50 > 6 xi_c
+    pt = r["point"]
+    assert pt["q_star"] == pytest.approx(0.193593, abs=1e-6)
+    assert pt["chi1"] == pytest.approx(0.759032, abs=1e-6)
+    assert pt["xi_q"] == pytest.approx(1.7476, abs=1e-4)
+    assert pt["xi_c"] == pytest.approx(3.6270, abs=1e-4)
+    assert r["depth_within_6_xi_c"] is False
+    assert fig.stat().st_size > 0 and not [p for p in tmp_path.iterdir() if "partial" in p.name]
+
+
+@pytest.mark.parametrize("args,needle", [
+    (["--activation", "relu", "--sigma-b", 0.1], "no critical point at sigma_b = 0.1"),
+    (["--activation", "tanh", "--sigma-b", -1], "sigma_b = -1.0 is out of range"),
+    (["--activation", "tanh", "--plot", "line.txt"], "suffix '.txt'.*png or .svg"),
+])
+def test_critical_bad_requests_exit_2(capsys, args, needle):
+    import re
+    code, out, err = _run(["critical", *args], capsys)
+    assert code == 2 and out == "" and re.search(needle, err), err
+
+
+def test_analyze_result_carries_prediction_agreement_and_profile(tmp_path, capsys):
+    spec = _write(tmp_path, GOOD)
+    code, out, _ = _run(["analyze", spec, "--out", tmp_path / "res", "--json"], capsys)
+    assert code == 0
+    r = json.loads(out)
+    assert r["predicted"]["lambda_moments"]["m1"] > 0 and r["predicted"]["q_star"] > 0
+    a = r["agreement"]
+    assert 0.0 <= a["ks"] <= 1.0 and a["m1_rel_error"] is not None
+    # width 24 at depth 6 with 48 pooled values: the KS distance is far above its sampling scale
+    # (~1/sqrt(48) = 0.14, Kolmogorov distribution) only if it disagrees, and then it must say
+    # why: sqrt(L/N) = 0.5 > 0.3 names finite width
+    if a["ks"] > 0.05:
+        assert any("finite width" in w and "sqrt(L/N) = 0.50" in w for w in a["warnings"])
+    assert len(r["profile"]["depths"]) == len(r["profile"]["measured_log_s_std"])
+    for f in ("spread-by-depth.png", "critical-line.png"):
+        assert (tmp_path / "res" / f).stat().st_size > 0

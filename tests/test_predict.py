@@ -125,12 +125,6 @@ def test_prediction_refuses_what_theory_does_not_cover(kwargs, match):
         predict(**base)
 
 
-def test_prediction_without_fixed_point_is_an_error():
-    # ReLU with sigma_w^2 = 4: V(q) = 2q + sigma_b^2 grows without bound (THEORY.md sec. 2)
-    with pytest.raises(TheoryError, match="fixed point"):
-        predict("relu", "gaussian", 2.0, 0.3, 10)
-
-
 def test_agreement_excludes_the_mean_mode_and_warns():
     # a sample drawn from the predicted law itself, plus one huge value per draw
     p = predict("relu", "gaussian", math.sqrt(2.0), 0.0, 64, family="residual", alpha=0.125)
@@ -147,3 +141,21 @@ def test_agreement_excludes_the_mean_mode_and_warns():
     assert any("mean mode" in w for w in g.warnings)
     g_all = agreement(spec, p.density, p.moments, 64, mean_mode=False)
     assert g_all.m1_rel_error > 1.0                 # the outlier dominates m1 when kept
+
+
+def test_unbounded_variance_with_a_q_free_law_is_still_predicted():
+    # linear, sigma_w = 1.2, sigma_b = 0.1: V(q) = 1.44 q + 0.01 has no finite fixed point, yet
+    # J = W^L...W^1 does not depend on the inputs. Product of L Ginibre matrices (Penson &
+    # Zyczkowski 2011, Phys. Rev. E 83, 061118): m1 = sigma_w^{2L}, m2/m1^2 = L + 1
+    p = predict("linear", "gaussian", 1.2, 0.1, 4)
+    assert p.mean_field is None and p.family == "plain"
+    assert p.moments.m1 == pytest.approx(1.44 ** 4, rel=1e-12)
+    assert p.moments.m2 / p.moments.m1 ** 2 == pytest.approx(5.0, rel=1e-12)
+    assert p.q_layers[-1] > p.q_layers[0]
+    assert any("no finite fixed point" in n and "prediction stands" in n for n in p.notes)
+
+
+def test_unbounded_variance_with_a_q_dependent_law_is_refused():
+    # GELU's phi' law depends on q, and q grows without bound at sigma_w^2 = 4: no number
+    with pytest.raises(TheoryError, match="no finite stable fixed point"):
+        predict("gelu", "gaussian", 2.0, 0.1, 4)

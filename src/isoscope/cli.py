@@ -120,7 +120,7 @@ def _prediction_text(p) -> str:
     if mf is not None:
         lines.append(f"mean field: q* = {_fmt(mf.q_star)}, chi_1 = {mf.chi1:.10g} ({mf.phase}), "
                      f"xi_q = {_fmt(mf.xi_q)}, xi_c = {_fmt(mf.xi_c)}, c* = {_fmt(mf.c_star)}")
-    else:
+    elif p.family == "residual":
         lines.append(f"residual law: tau = {_fmt(p.tau)} (q^1 = {_fmt(p.q_layers[0])}, "
                      f"q^L = {_fmt(p.q_layers[-1])})")
     nvar = m.m2 / m.m1 ** 2 - 1.0 if m.m1 > 0 else float("nan")

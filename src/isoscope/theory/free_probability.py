@@ -761,35 +761,59 @@ class _Pushforward:
     """Density of ``ln(sigma_w^2 phi'(h)^2)``, h ~ N(0, q): one orthogonal layer, smooth phi.
 
     With ``J J^T = sigma_w^2 D^2`` exactly, the spectrum is the law of ``sigma_w^2 d``; its
-    density is ``sum over roots h of d(h) = s of phi_q(h) / |d ln d / dh|`` (in ln s).  d is
-    sampled on a fine grid, split into monotone pieces, inverted by interpolation and refined by
-    Newton steps.  Pieces where d is constant (a linear piece of phi) are atoms, not density.
+    density in ``t = ln d`` is ``sum over roots h of ln d(h) = t of phi_q(h) / |d ln d / dh|``.
+    ``ln d`` is sampled on a fine grid of h and cut into monotone pieces at its turning points
+    (zeros of phi'', refined by Brent's method so that the extreme values -- the support
+    edges -- are exact), at the kinks and at zeros of phi'.  Neighbouring pieces share their
+    turning point, so no sliver of h is lost there (at a maximum of d the density has an
+    integrable ``1/sqrt`` singularity and the mass near it is not small).  A root is found by
+    Newton's method safeguarded by bisection inside its sample cell.  Pieces where d is
+    constant (a linear piece of phi) are atoms, not density.
     """
 
     def __init__(self, act: Activation, q: float, sigma: float):
+        from scipy import optimize
+
         _, self.dphi = act.numpy_pair()
         self.d2phi = _second_derivative(act.name)
         self.q, self.log_s2 = q, 2.0 * math.log(sigma)
         sq = math.sqrt(q)
-        h = np.union1d(np.linspace(-12.0 * sq, 12.0 * sq, 6001), [k for k in act.kinks])
+        kinks = [k for k in act.kinks if abs(k) < 12.0 * sq]
+        h = np.union1d(np.linspace(-12.0 * sq, 12.0 * sq, 6001), kinks)
         p1 = self.dphi(h)
-        dlog = 2.0 * self.d2phi(h) / p1                    # d ln d / dh
-        logd = 2.0 * np.log(np.abs(p1))
-        cuts = np.flatnonzero((np.sign(dlog[1:]) != np.sign(dlog[:-1]))
-                              | np.isin(h[1:], act.kinks))
-        bounds = np.concatenate([[0], cuts + 1, [h.size]])
+        p2 = self.d2phi(h)
+        # turning points of ln d: phi'' changes sign while phi' keeps its sign
+        breaks = [h[0], h[-1], *kinks]
+        for i in np.flatnonzero(p2 == 0.0):
+            if p1[i] != 0.0:
+                breaks.append(float(h[i]))
+        change = np.flatnonzero((p2[1:] * p2[:-1] < 0) & (p1[1:] * p1[:-1] > 0))
+        for i in change:
+            if h[i] in kinks or h[i + 1] in kinks:
+                continue
+            breaks.append(optimize.brentq(lambda x: float(self.d2phi(np.array([x]))[0]),
+                                          h[i], h[i + 1], xtol=1e-15, rtol=4 * _EPS))
+        # zeros of phi' (ln d -> -inf) also separate monotone pieces
+        for i in np.flatnonzero(p1[1:] * p1[:-1] < 0):
+            breaks.append(0.5 * (h[i] + h[i + 1]))
+        breaks = np.unique(breaks)
+        h = np.union1d(h, breaks)
+        with np.errstate(divide="ignore"):
+            logd = 2.0 * np.log(np.abs(self.dphi(h)))
         self.pieces, self.constant_logd = [], []
-        for a, b in zip(bounds[:-1], bounds[1:]):
-            hh, ll = h[a:b], logd[a:b]
-            ok = np.isfinite(ll)
-            hh, ll = hh[ok], ll[ok]
+        for a, b in zip(breaks[:-1], breaks[1:]):
+            m = (h >= a) & (h <= b) & np.isfinite(logd)
+            hh, ll = h[m], logd[m]
             if hh.size < 2:
                 continue
             if np.ptp(ll) < 1e-12:
                 self.constant_logd.append(float(ll[0]))
                 continue
-            order = np.argsort(ll)
-            self.pieces.append((hh[order], ll[order]))
+            if ll[-1] < ll[0]:
+                hh, ll = hh[::-1], ll[::-1]
+            # rounding can leave ties next to a turning point: keep ll strictly increasing
+            keep = np.concatenate([[True], np.diff(ll) > 0])
+            self.pieces.append((hh[keep], ll[keep]))
         self.log_top = max(p[1][-1] for p in self.pieces) + self.log_s2
 
     def __call__(self, ell: np.ndarray) -> np.ndarray:
@@ -800,14 +824,28 @@ class _Pushforward:
             if not inside.any():
                 continue
             t = target[inside]
+            k = np.clip(np.searchsorted(ll, t), 1, ll.size - 1)
+            lo, hi = hh[k - 1], hh[k]             # ln d(lo) <= t <= ln d(hi), lo < hi or not
             x = np.interp(t, ll, hh)
-            for _ in range(4):
+            for _ in range(60):
                 p1 = self.dphi(x)
-                x = x - (2.0 * np.log(np.abs(p1)) - t) / (2.0 * self.d2phi(x) / p1)
-                x = np.clip(x, min(hh[0], hh[-1]), max(hh[0], hh[-1]))
+                g = 2.0 * np.log(np.abs(p1)) - t
+                # keep the bracket: g < 0 on the lo side
+                below = g < 0
+                lo, hi = np.where(below, x, lo), np.where(below, hi, x)
+                slope = 2.0 * self.d2phi(x) / p1
+                with np.errstate(divide="ignore", invalid="ignore"):
+                    step = x - g / slope
+                bad = ~np.isfinite(step) | ((step - lo) * (step - hi) > 0)
+                new = np.where(bad, 0.5 * (lo + hi), step)
+                if np.all(np.abs(new - x) <= 4 * _EPS * np.maximum(np.abs(x), 1e-300)):
+                    x = new
+                    break
+                x = new
             slope = np.abs(2.0 * self.d2phi(x) / self.dphi(x))
             dens = np.exp(-0.5 * x * x / self.q) / math.sqrt(2.0 * math.pi * self.q)
-            out[inside] += dens / slope
+            with np.errstate(divide="ignore"):
+                out[inside] += dens / slope
         return out
 
 
@@ -859,19 +897,35 @@ def _runs(mask: np.ndarray) -> list[tuple[int, int]]:
     return list(zip(np.flatnonzero(edges == 1), np.flatnonzero(edges == -1) - 1))
 
 
-def _monitor_cdf(e: np.ndarray, r: np.ndarray, norms) -> np.ndarray:
-    """Cumulative monitor on sorted points e (values r of rho_log).
+def _curvature_root(e: np.ndarray, f: np.ndarray) -> np.ndarray:
+    """``|f''|^{1/3}`` at sorted points e from three-point divided differences.
 
-    Four equal shares: length in ``ln lambda`` and the cube roots of the integrands of the
-    mass, first and second moment (``f_k = rho_log e^{k ell}``).  The trapezoid error of a cell
-    of width h is about ``h^3 f''/12`` with ``f'' ~ f`` here, so spacing ``h ~ f^{-1/3}``
-    spreads the error evenly; equidistributing f itself would starve the cells where f is
-    small but growing fast.  ``norms[k] = (top_k, int f_k^{1/3})``.
+    The value at each point is the largest of its own and its neighbours' estimates, so that a
+    zero crossing of f'' (an inflexion) does not leave a cell without points.
     """
-    g = np.full(e.shape, 1.0 / max(e[-1] - e[0], 1e-300))
-    for k, (top, norm) in enumerate(norms):
-        g = g + np.cbrt(r * np.exp(k * e - top)) / norm
-    return np.concatenate([[0.0], np.cumsum(0.5 * (g[1:] + g[:-1]) * np.diff(e))])
+    if e.size < 3:
+        return np.zeros(e.shape)
+    h = np.diff(e)
+    slope = np.diff(f) / h
+    second = np.abs(2.0 * np.diff(slope) / (h[1:] + h[:-1]))
+    c = np.concatenate([[second[0]], second, [second[-1]]])
+    c = np.maximum(c, np.maximum(np.concatenate([[0.0], c[:-1]]), np.concatenate([c[1:], [0.0]])))
+    return np.cbrt(c)
+
+
+def _monitor_cdf(e: np.ndarray, g: list[np.ndarray], norms: list[float], width: float) -> np.ndarray:
+    """Cumulative monitor on sorted points e.
+
+    Four equal shares: length in ``ln lambda`` and ``|f_k''|^{1/3}`` for the integrands of the
+    mass, first and second moment (``f_k = rho_log e^{k ell}``, given in g with their
+    integrals in norms).  The trapezoid error of a cell of width h is ``h^3 |f''|/12``, so the
+    spacing ``h ~ |f''|^{-1/3}`` spreads it evenly (de Boor's equidistribution); near an edge
+    where the density behaves like a power, the grid becomes nearly geometric.
+    """
+    m = np.full(e.shape, 1.0 / max(width, 1e-300))
+    for gk, norm in zip(g, norms):
+        m = m + gk / norm
+    return np.concatenate([[0.0], np.cumsum(0.5 * (m[1:] + m[:-1]) * np.diff(e))])
 
 
 def _tabulate(rho_log: Callable[..., np.ndarray], ell_top: float, mass: float, span: float,
@@ -973,19 +1027,20 @@ def _tabulate(rho_log: Callable[..., np.ndarray], ell_top: float, mass: float, s
         segs = []
         for lo, hi in intervals:
             m = (e_all > lo) & (e_all < hi)
-            e = np.concatenate([[lo], e_all[m], [hi]])
-            r = np.concatenate([[0.0], r_all[m], [0.0]])
-            order = np.argsort(e)
-            e, r = e[order], r[order]
-            if e.size > 2:
-                r[0], r[-1] = r[1], r[-2]
+            e, idx = np.unique(e_all[m], return_index=True)
+            r = r_all[m][idx]
+            e = np.concatenate([[lo], e, [hi]])
+            r = np.concatenate([[r[0] if r.size else 0.0], r, [r[-1] if r.size else 0.0]])
             segs.append((e, r))
-        norms = []
+        width = sum(hi - lo for lo, hi in intervals)
+        curv, norms = [[] for _ in segs], []
         for k in (0, 1, 2):
             top = max(float(np.max(k * e + np.log(np.maximum(r, 1e-300)))) for e, r in segs)
-            val = sum(np.trapezoid(np.cbrt(r * np.exp(k * e - top)), e) for e, r in segs)
-            norms.append((top, max(val, 1e-300)))
-        cums = [_monitor_cdf(e, r, norms) for e, r in segs]
+            for j, (e, r) in enumerate(segs):
+                curv[j].append(_curvature_root(e, r * np.exp(k * e - top)))
+            val = sum(np.trapezoid(c[k], e) for c, (e, _) in zip(curv, segs))
+            norms.append(max(val, 1e-300))
+        cums = [_monitor_cdf(e, c, norms, width) for (e, _), c in zip(segs, curv)]
         shares = np.array([c[-1] for c in cums])
         alloc = np.maximum(12, np.floor(shares / shares.sum() * n_total)).astype(int)
         while alloc.sum() > n_total and alloc.max() > 12:

@@ -45,7 +45,9 @@ class Prediction:
       depth: number of weight layers L.
       alpha: residual branch scale (1.0 for plain stacks, where it is unused).
       mean_field: :class:`~isoscope.theory.mean_field.MeanField` at (sigma_w, sigma_b): q*, chi_1,
-        c*, xi_q, xi_c, phase.  ``None`` for residual stacks (no fixed point: q grows).
+        c*, xi_q, xi_c, phase.  ``None`` for residual stacks (no fixed point: q grows) and for
+        plain stacks whose variance grows without bound while the law of phi'^2 does not
+        depend on it (linear with sigma_w > 1, ReLU with a bias at sigma_w^2 = 2, ...).
       q_layers: the variance q^l of each layer the law was built from (shape ``(L,)``).
       q_law: the variance at which the law of phi'(h)^2 was taken (plain stacks), else NaN.
       tau: ``sum_l alpha^2 sigma_w^2 E[phi'(h^l)^2]`` (residual stacks), else NaN.
@@ -168,7 +170,12 @@ def predict(activation: str, weights: str, sigma_w: float, sigma_b: float, depth
                                  1.0 if input_variance is None else input_variance, points)
     if family != "plain":
         raise TheoryError(f"no prediction for family = {family!r}; theory covers plain and residual")
-    summary = mf.mean_field(act, sigma_w, sigma_b)
+    try:
+        summary = mf.mean_field(act, sigma_w, sigma_b)
+    except TheoryError:
+        if not _law_free_of_q(act):
+            raise
+        return _predict_unbounded(act, kind, sigma_w, sigma_b, depth, input_variance, points)
     q_star = summary.q_star
     notes: list[str] = []
     if input_variance is None:   # steady state: every layer at q* (or at 1.0 on a marginal map)
@@ -193,6 +200,34 @@ def predict(activation: str, weights: str, sigma_w: float, sigma_b: float, depth
                       summary, q_layers, q_law, math.nan, moments, density, mean / 2.0,
                       std / 2.0, _length_mode(act, sigma_w, q_law, depth), False, regime,
                       tuple(notes))
+
+
+def _law_free_of_q(act) -> bool:
+    """True when the law of ``phi'(h)^2``, ``h ~ N(0, q)``, is the same for every q > 0:
+    phi' piecewise constant with its only kink at 0 (linear, ReLU, leaky ReLU)."""
+    return act.derivative_values is not None and all(k == 0.0 for k in act.kinks)
+
+
+def _predict_unbounded(act, kind, sigma_w, sigma_b, depth, input_variance, points) -> Prediction:
+    """Plain stack whose variance has no finite fixed point but whose Jacobian law does not
+    depend on q (see :func:`_law_free_of_q`): the spectrum is predicted exactly as at a fixed
+    point, with q taken anywhere (q = 1) and a note that the forward pass grows."""
+    q0 = 1.0 if input_variance is None else float(input_variance)
+    q_layers = mf.q_trajectory(act, sigma_w, sigma_b, q0, depth)
+    law = fp.derivative_law(act, 1.0)
+    moments = fp.plain_moments(law, kind, sigma_w, depth)
+    density = fp.plain_density(law, kind, sigma_w, depth, points)
+    mean, std = log_lambda_stats(density)
+    notes = (f"no finite fixed point of the length map: the pre-activation variance grows "
+             f"without bound, from q^1 = {q_layers[0]:.4g} to q^L = {q_layers[-1]:.4g}, but phi' of "
+             f"{act.name} has the same law at every variance, so the Jacobian spectrum does not "
+             "depend on it and the prediction stands; the forward pass itself may overflow in "
+             "float32 at large depth",)
+    regime = (f"N -> infinity with L = {depth} fixed; the law of phi'(h)^2 is the same at every "
+              f"q^l; {kind} weights free of the diagonal factors")
+    return Prediction("plain", act.name, kind, float(sigma_w), float(sigma_b), int(depth), 1.0,
+                      None, q_layers, math.nan, math.nan, moments, density, mean / 2.0,
+                      std / 2.0, math.nan, False, regime, notes)
 
 
 def _length_mode(act, sigma_w: float, q: float, depth: int) -> float:
