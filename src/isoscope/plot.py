@@ -43,7 +43,7 @@ def _bins(values: np.ndarray, count: int = 60) -> np.ndarray:
 
 
 def log_s_figure(spectrum: Spectrum, title: str, predicted: tuple[np.ndarray, np.ndarray] | None = None,
-                 floor_log10_s: float | None = None):
+                 floor_log10_s: float | None = None, length_mode_log10_s: float | None = None):
     """Histogram of log10 s (all draws pooled), density per unit log10 s.
 
     Args:
@@ -53,6 +53,8 @@ def log_s_figure(spectrum: Spectrum, title: str, predicted: tuple[np.ndarray, np
         rho(lambda) transforms as ``p(log10 s) = 2 ln(10) s^2 rho(s^2)``.
       floor_log10_s: optional SVD floor (log10 s) drawn as a dotted line: below it the
         measurement cannot resolve singular values.
+      length_mode_log10_s: optional predicted singular value of the input-length direction
+        (``V'(q*)^L``, one value per draw), drawn as a dash-dot line when given.
 
     Numerically zero singular values cannot be placed on a log axis; their fraction is
     written in the corner.
@@ -74,6 +76,9 @@ def log_s_figure(spectrum: Spectrum, title: str, predicted: tuple[np.ndarray, np
     if floor_log10_s is not None and (predicted is not None and predicted[0].size
                                       and predicted[0][0] < floor_log10_s or spectrum.zero_fraction > 0):
         ax.axvline(floor_log10_s, color=REFERENCE, ls=":", lw=1.0, label="SVD floor (unresolved below)")
+    if length_mode_log10_s is not None:
+        ax.axvline(length_mode_log10_s, color=PREDICTED, ls="-.", lw=1.0,
+                   label=f"input-length direction, 1 per draw (s = {10 ** length_mode_log10_s:.3g})")
     if spectrum.zero_fraction > 0:
         ax.text(0.02, 0.95, f"{100 * spectrum.zero_fraction:.1f}% numerically zero\n(not shown)",
                 transform=ax.transAxes, va="top", fontsize=9)

@@ -225,6 +225,18 @@ class output_folder:
         return False
 
 
+def _separate_length_mode(p) -> float | None:
+    """log10 of the predicted input-length singular value when it lies outside the predicted
+    bulk by more than 5 % in s (inside, it is one value among N and not worth a line)."""
+    if p is None or not (p.length_mode_s > 0 and math.isfinite(p.length_mode_s)):
+        return None
+    lo, hi = p.density.support
+    s = p.length_mode_s
+    if lo ** 0.5 / 1.05 <= s <= 1.05 * hi ** 0.5:
+        return None
+    return math.log10(s)
+
+
 def _figures(analysis: Analysis, folder: Path, prefix: str = "") -> dict[str, Path]:
     from isoscope import plot
     from isoscope.theory import mean_field
@@ -235,7 +247,8 @@ def _figures(analysis: Analysis, folder: Path, prefix: str = "") -> dict[str, Pa
     curve = None if p is None else plot.predicted_log10_s_curve(p.density.log_x, p.density.rho_log)
     g = analysis.agreement
     floor = None if g is None or g.floor <= 0 else 0.5 * math.log10(g.floor)
-    fig = plot.log_s_figure(analysis.spectrum, f"{name}: singular values s of J (log axis)", curve, floor)
+    fig = plot.log_s_figure(analysis.spectrum, f"{name}: singular values s of J (log axis)", curve, floor,
+                            _separate_length_mode(p))
     out["log_s"] = plot.save(fig, folder / f"{prefix}spectrum-log-s")[0]
     curve = None if p is None else (p.density.x, p.density.rho)
     fig = plot.lambda_figure(analysis.spectrum, f"{name}: eigenvalues lambda = s^2 of J J^T", curve)

@@ -58,14 +58,19 @@ WEIGHT_KINDS = ("gaussian", "orthogonal")
 ETA = 1e-9
 # Start of the path: y0 = START * max(scale, lambda), far outside the spectrum (M ~ m1/z there).
 START = 1e3
-# Densities below THRESHOLD * max(rho_log) count as outside the support when the solver
-# looks for the support (the smearing by ETA outside a square-root edge is far below this).
+# Densities below max(THRESHOLD * max(rho_log), FLOOR) count as outside the support when the
+# solver looks for the support.  FLOOR sits 30 times above the smearing by ETA: below a
+# spectrum, rho_log(lambda(1 + i ETA)) ~ (ETA/pi) lambda E[1/t] <= ETA/pi ~ 3e-10, which a
+# purely relative threshold mistakes for density when rho_log is broad and low (its peak
+# ~ 1e-3 at depth 1000).
 THRESHOLD = 1e-8
+FLOOR = 30.0 * ETA / math.pi
 # Atoms lighter than this are dropped (1 - L(1 - p) = 0 exactly at L(1 - p) = 1).
 ATOM_FLOOR = 1e-12
 # Largest relative change of M, 1 + M or the unknown allowed in one continuation step.
 MAX_CHANGE = 1.0
 _EPS = float(np.finfo(float).eps)
+_LENGTH_SHARE = 0.1
 
 
 # ----------------------------------------------------------------------------------------
@@ -897,8 +902,8 @@ def _runs(mask: np.ndarray) -> list[tuple[int, int]]:
     return list(zip(np.flatnonzero(edges == 1), np.flatnonzero(edges == -1) - 1))
 
 
-def _curvature_root(e: np.ndarray, f: np.ndarray) -> np.ndarray:
-    """``|f''|^{1/3}`` at sorted points e from three-point divided differences.
+def _curvature(e: np.ndarray, f: np.ndarray) -> np.ndarray:
+    """``|f''|`` at sorted points e from three-point divided differences.
 
     The value at each point is the largest of its own and its neighbours' estimates, so that a
     zero crossing of f'' (an inflexion) does not leave a cell without points.
@@ -909,22 +914,20 @@ def _curvature_root(e: np.ndarray, f: np.ndarray) -> np.ndarray:
     slope = np.diff(f) / h
     second = np.abs(2.0 * np.diff(slope) / (h[1:] + h[:-1]))
     c = np.concatenate([[second[0]], second, [second[-1]]])
-    c = np.maximum(c, np.maximum(np.concatenate([[0.0], c[:-1]]), np.concatenate([c[1:], [0.0]])))
-    return np.cbrt(c)
+    return np.maximum(c, np.maximum(np.concatenate([[0.0], c[:-1]]), np.concatenate([c[1:], [0.0]])))
 
 
-def _monitor_cdf(e: np.ndarray, g: list[np.ndarray], norms: list[float], width: float) -> np.ndarray:
-    """Cumulative monitor on sorted points e.
+def _monitor_cdf(e: np.ndarray, curv: np.ndarray, norm: float, width: float) -> np.ndarray:
+    """Cumulative monitor on sorted points e: half length in ``ln lambda``, half error.
 
-    Four equal shares: length in ``ln lambda`` and ``|f_k''|^{1/3}`` for the integrands of the
-    mass, first and second moment (``f_k = rho_log e^{k ell}``, given in g with their
-    integrals in norms).  The trapezoid error of a cell of width h is ``h^3 |f''|/12``, so the
-    spacing ``h ~ |f''|^{-1/3}`` spreads it evenly (de Boor's equidistribution); near an edge
-    where the density behaves like a power, the grid becomes nearly geometric.
+    The trapezoid error of a cell of width h is ``h^3 |f''|/12``; the error part is
+    ``(sum_k |f_k''| / int f_k)^{1/3}`` over the integrands of the mass, first and second
+    moment (``f_k = rho_log e^{k ell}``, curv holds the sum), so that spacing
+    ``h ~ curv^{-1/3}`` spreads the sum of the relative errors evenly over the cells
+    (equidistribution, de Boor 1973).  Near an edge where the density behaves like a power,
+    the grid becomes nearly geometric.  ``norm`` is the integral of ``curv^{1/3}``.
     """
-    m = np.full(e.shape, 1.0 / max(width, 1e-300))
-    for gk, norm in zip(g, norms):
-        m = m + gk / norm
+    m = _LENGTH_SHARE / max(width, 1e-300) + (1.0 - _LENGTH_SHARE) * np.cbrt(curv) / norm
     return np.concatenate([[0.0], np.cumsum(0.5 * (m[1:] + m[:-1]) * np.diff(e))])
 
 
@@ -936,7 +939,7 @@ def _tabulate(rho_log: Callable[..., np.ndarray], ell_top: float, mass: float, s
     1. Scan ``[ell_top - span, ell_top]``, half the points uniform, half geometric towards the
        top edge; while the density at the bottom (or the tail it implies) is not negligible,
        scan further down.  Failed points below all of the support count as outside it.
-    2. Split into support intervals where ``rho_log > THRESHOLD * max``; refine every edge not
+    2. Split into support intervals where ``rho_log > max(THRESHOLD * max, FLOOR)``; refine every edge not
        known exactly by multisection (15 points per round, 5 rounds).
     3. Two refinement rounds (60 then 120 points) place points at Chebyshev nodes of a monitor
        built from everything evaluated so far: equal shares of ln-lambda length, mass, first
@@ -965,7 +968,7 @@ def _tabulate(rho_log: Callable[..., np.ndarray], ell_top: float, mass: float, s
         for _ in range(8):
             peak = np.nanmax(rl) if np.any(rl > 0) else 0.0
             low, nxt = rl[0], rl[1]
-            if not peak > 0 or not np.isfinite(low) or low <= THRESHOLD * peak:
+            if not peak > 0 or not np.isfinite(low) or low <= max(THRESHOLD * peak, FLOOR):
                 break
             decay = math.log(nxt / low) / (ell[1] - ell[0]) if nxt > low > 0 else 0.0
             if decay > 0 and low / decay < 1e-9 * mass:
@@ -985,7 +988,7 @@ def _tabulate(rho_log: Callable[..., np.ndarray], ell_top: float, mass: float, s
                           f"{math.exp(ell[k]):.6g}, inside the spectrum; try a smaller depth or "
                           "a chi_1 closer to 1, and report the case if it persists")
     rl = np.where(bad, 0.0, rl)
-    thr = THRESHOLD * float(rl.max())
+    thr = max(THRESHOLD * float(rl.max()), FLOOR)
     pos = rl > thr
 
     # 2. intervals and their edges
@@ -1033,14 +1036,16 @@ def _tabulate(rho_log: Callable[..., np.ndarray], ell_top: float, mass: float, s
             r = np.concatenate([[r[0] if r.size else 0.0], r, [r[-1] if r.size else 0.0]])
             segs.append((e, r))
         width = sum(hi - lo for lo, hi in intervals)
-        curv, norms = [[] for _ in segs], []
+        curv = [np.zeros(e.shape) for e, _ in segs]
         for k in (0, 1, 2):
             top = max(float(np.max(k * e + np.log(np.maximum(r, 1e-300)))) for e, r in segs)
-            for j, (e, r) in enumerate(segs):
-                curv[j].append(_curvature_root(e, r * np.exp(k * e - top)))
-            val = sum(np.trapezoid(c[k], e) for c, (e, _) in zip(curv, segs))
-            norms.append(max(val, 1e-300))
-        cums = [_monitor_cdf(e, c, norms, width) for (e, _), c in zip(segs, curv)]
+            fk = [r * np.exp(k * e - top) for e, r in segs]
+            total = max(sum(float(np.trapezoid(f, e)) for f, (e, _) in zip(fk, segs)), 1e-300)
+            for j, (e, _) in enumerate(segs):
+                curv[j] = curv[j] + _curvature(e, fk[j]) / total
+        norm = max(sum(float(np.trapezoid(np.cbrt(c), e)) for c, (e, _) in zip(curv, segs)),
+                   1e-300)
+        cums = [_monitor_cdf(e, c, norm, width) for (e, _), c in zip(segs, curv)]
         shares = np.array([c[-1] for c in cums])
         alloc = np.maximum(12, np.floor(shares / shares.sum() * n_total)).astype(int)
         while alloc.sum() > n_total and alloc.max() > 12:
