@@ -101,25 +101,29 @@ def _check_scale(name: str, value: Any) -> float:
 
 
 # ----------------------------------------------------------------------------- forward passes
-def _layer_fn(family: str, phi: Callable) -> Callable:
+def _layer_fns(family: str, phi: Callable) -> tuple[Callable, Callable]:
+    """``(layer(p, x), output(p, x, h))``: one layer, and its output given ``h = W x + b``."""
     if family == "plain":
-        def layer(p, x):
-            return phi(p["W"] @ x + p["b"])
+        def output(p, x, h):
+            return phi(h)
     else:
-        def layer(p, x):
-            return x + p["alpha"] * phi(p["W"] @ x + p["b"])
-    return layer
+        def output(p, x, h):
+            return x + p["alpha"] * phi(h)
+
+    def layer(p, x):
+        return output(p, x, p["W"] @ x + p["b"])
+    return layer, output
 
 
 @functools.lru_cache(maxsize=None)
 def _forward(family: str, activation: str):
     """Cached ``(layer, apply, trace)`` for a family and activation (one object per key)."""
     phi = get_activation(activation).fn
-    layer = _layer_fn(family, phi)
+    layer, output = _layer_fns(family, phi)
 
     def step(x, p):
         h = p["W"] @ x + p["b"]
-        return layer(p, x), h
+        return output(p, x, h), h
 
     def trace(params, x):
         y, hs = jax.lax.scan(step, x, _slices(params))

@@ -67,8 +67,13 @@ THRESHOLD = 1e-8
 FLOOR = 30.0 * ETA / math.pi
 # Atoms lighter than this are dropped (1 - L(1 - p) = 0 exactly at L(1 - p) = 1).
 ATOM_FLOOR = 1e-12
+# Relative accuracy of the solved lambda G next to an atom (final Newton tolerance 1e-12,
+# times a margin for the conditioning): see _solved.
+ATOM_NOISE = 1e-9
 # Largest relative change of M, 1 + M or the unknown allowed in one continuation step.
 MAX_CHANGE = 1.0
+# Largest change of a logarithm in one step even on a pure power law (keeps exp() finite).
+MAX_LOG_STEP = 100.0
 _EPS = float(np.finfo(float).eps)
 _LENGTH_SHARE = 0.1
 
@@ -156,15 +161,57 @@ class DerivativeLaw:
         im3 = -2.0 * ((xd * yden) @ ad)          # Im sum a d r^2
         return m, one_m, -(re3 + 1j * im3)
 
-def _check_q(q) -> float:
+# ----------------------------------------------------------------------------------------
+# Argument checks (one place; every public function goes through these)
+# ----------------------------------------------------------------------------------------
+
+def _real(name: str, value, *, positive: bool, what: str) -> float:
+    """A finite float, > 0 (positive) or >= 0, else TheoryError naming what it should be."""
     try:
-        q = float(q)
+        x = float(value)
     except (TypeError, ValueError):
-        raise TheoryError(f"variance q must be a number, received {q!r}") from None
-    if not math.isfinite(q) or q < 0:
-        raise TheoryError(f"variance q must be finite and >= 0, received {q!r}; pass the "
-                          "mean-field fixed point q* (a variance)")
-    return q
+        raise TheoryError(f"{name} must be a number, received {value!r}; {what}") from None
+    if not math.isfinite(x) or (x <= 0 if positive else x < 0):
+        raise TheoryError(f"{name} must be finite and {'> 0' if positive else '>= 0'}, "
+                          f"received {value!r}; {what}")
+    return x
+
+
+def _integer(name: str, value, minimum: int, what: str) -> int:
+    """An integer >= minimum (bools refused), else TheoryError."""
+    if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < minimum:
+        raise TheoryError(f"{name} must be an integer >= {minimum} ({what}), received {value!r}")
+    return int(value)
+
+
+def _check_q(q) -> float:
+    return _real("variance q", q, positive=False,
+                 what="pass the mean-field fixed point q* (a variance)")
+
+
+def _check_tau(value, name: str = "tau") -> float:
+    return _real(name, value, positive=False,
+                 what="it is a sum of alpha^2 sigma_w^2 E[phi'^2] over layers"
+                 if name == "tau" else "c = L (mu_2/mu_1^2 - 1)")
+
+
+def _check_points(points) -> int:
+    return _integer("points", points, 32, "grid size of the density")
+
+
+def _check_stack(law, weights, sigma_w, depth) -> tuple[str, float, int]:
+    """Checks shared by :func:`plain_moments` and :func:`plain_density`."""
+    if not isinstance(law, DerivativeLaw):
+        raise TheoryError(f"law must be a DerivativeLaw (from derivative_law(activation, q)), "
+                          f"received {type(law).__name__}")
+    kind = str(weights).lower() if isinstance(weights, str) else weights
+    if kind not in WEIGHT_KINDS:
+        raise TheoryError(f"unknown weights kind {weights!r}; expected one of "
+                          f"{', '.join(WEIGHT_KINDS)} (uniform weights: use 'gaussian', their "
+                          "spectrum has the same infinite-width limit)")
+    sigma = _real("sigma_w", sigma_w, positive=True, what="the weight scale, not its square")
+    depth = _integer("depth", depth, 1, "the number of weight layers")
+    return kind, sigma, depth
 
 
 def _piece_probability(a: float, b: float, s: float) -> float:
@@ -326,33 +373,6 @@ def _inverse_s_series(law: DerivativeLaw, kind: str) -> tuple[float, np.ndarray]
     return math.log(mu[0]), inv_s
 
 
-def _check_kind(weights: str) -> str:
-    kind = str(weights).lower() if isinstance(weights, str) else weights
-    if kind not in WEIGHT_KINDS:
-        raise TheoryError(f"unknown weights kind {weights!r}; expected one of "
-                          f"{', '.join(WEIGHT_KINDS)} (uniform weights: use 'gaussian', their "
-                          "spectrum has the same infinite-width limit)")
-    return kind
-
-
-def _check_depth(depth) -> int:
-    if isinstance(depth, bool) or not isinstance(depth, (int, np.integer)) or depth < 1:
-        raise TheoryError(f"depth must be an integer >= 1 (the number of weight layers), "
-                          f"received {depth!r}")
-    return int(depth)
-
-
-def _check_sigma(sigma_w) -> float:
-    try:
-        s = float(sigma_w)
-    except (TypeError, ValueError):
-        raise TheoryError(f"sigma_w must be a positive number, received {sigma_w!r}") from None
-    if not math.isfinite(s) or s <= 0:
-        raise TheoryError(f"sigma_w must be a positive finite number (the weight scale, not "
-                          f"its square), received {sigma_w!r}")
-    return s
-
-
 def _lagrange_moments(log_scale: float, log_t: np.ndarray) -> LambdaMoments:
     """``m_k = (1/k)[z^{k-1}] ((1+z)/S(z))^k`` for ``1/S = exp(log_scale + log_t(z))``.
 
@@ -393,9 +413,7 @@ def plain_moments(law: DerivativeLaw, weights: str, sigma_w: float, depth: int) 
       Pennington, Schoenholz, Ganguli 2017 (NeurIPS), sec. 2.3 (moments by Lagrange
       inversion); THEORY.md sec. 3.
     """
-    kind = _check_kind(weights)
-    sigma = _check_sigma(sigma_w)
-    depth = _check_depth(depth)
+    kind, sigma, depth = _check_stack(law, weights, sigma_w, depth)
     if law.positive_weight <= 0:
         return LambdaMoments(0.0, 0.0, 0.0, 0.0)
     log_mu1, t = _inverse_s_series(law, kind)
@@ -466,9 +484,10 @@ class _PlainProblem:
 
     @staticmethod
     def relative_change(w, dw, aux):
+        """Changes of ``ln w``, ``ln M`` and ``ln(1 + M)`` for a step dw (shape ``(3, n)``)."""
         m, one_m, dm, _ = aux
         d_m = dm * dw
-        return np.maximum.reduce([np.abs(dw / w), np.abs(d_m / m), np.abs(d_m / one_m)])
+        return np.stack([dw / w, d_m / m, d_m / one_m])
 
     def initial(self, log_z):
         # far from the spectrum M ~ m1/z, and M_{D^2}(w) = mu1/w + mu2/w^2 + ... inverts to
@@ -512,7 +531,8 @@ class _ExponentialProblem:
 
     @staticmethod
     def relative_change(m, dm, aux):
-        return np.maximum(np.abs(dm / m), np.abs(dm / aux[1]))
+        """Changes of ``ln M`` and ``ln(1 + M)`` for a step dm (shape ``(2, n)``)."""
+        return np.stack([dm / m, dm / aux[1]])
 
     def initial(self, log_z):
         m = np.exp(self.log_m1 - log_z)
@@ -545,7 +565,8 @@ def _newton(problem, u, log_z, max_iter=40, tol=1e-12, state=None):
         if idx.size == 0:
             break
         step = -f[idx] / df[idx]
-        small = ((problem.relative_change(u[idx], step, _take(aux, idx)) < tol[idx])
+        change = np.max(np.abs(problem.relative_change(u[idx], step, _take(aux, idx))), axis=0)
+        small = ((change < tol[idx])
                  | (np.abs(f[idx]) <= 4.0 * aux[-1][idx]))
         t = np.ones(idx.size)
         pending = np.arange(idx.size)
@@ -573,10 +594,14 @@ def _continue(problem, ell: np.ndarray, s_top: np.ndarray, eta: float = ETA,
               max_rounds: int = 3000):
     """Follow ``z = lambda + i y`` from ``y = e^{s_top}`` down to ``y = eta lambda``.
 
-    Every point has its own step in ``ln y``: an Euler predictor in ``log z``, a Newton
-    corrector (loose on the way, tight at the last point); a step that would change M,
-    1 + M or the unknown by more than 30 % is shortened, a step whose corrector fails is
-    cut by 4, a good step doubles the next one.
+    Every point has its own step in ``ln y``: an Euler predictor applied to ``log u``, a Newton
+    corrector (loose on the way, tight at the last point).  Step control: the Euler changes of
+    ``ln u``, ``ln M``, ``ln(1 + M)`` and of ``log z`` itself are compared with the log-slopes
+    of the last accepted step; a step whose departure from them exceeds MAX_CHANGE is
+    shortened (so power-law stretches, far above or below the spectrum, are crossed in a few
+    long steps, while the turn of ``log z`` where y passes lambda and the approach to the
+    spectrum are taken slowly); a step whose corrector fails or jumps is cut by 4, a good step
+    doubles the next one.  No logarithm may change by more than MAX_LOG_STEP in one step.
 
     Returns:
       ``(u, failed)``: the solution at ``y = eta lambda`` and a mask of points that failed.
@@ -589,16 +614,29 @@ def _continue(problem, ell: np.ndarray, s_top: np.ndarray, eta: float = ETA,
     u, (f, df, aux), ok = _newton(problem, problem.initial(log_z), log_z)
     failed = ~ok
     h = np.ones(n)
+    rate = None      # d(log quantities)/d(ln y) at the start of the last accepted step
     for _ in range(max_rounds):
         idx = np.flatnonzero((s > s_end) & ~failed)
         if idx.size == 0:
             break
         s_new = np.maximum(s[idx] - h[idx], s_end[idx])
+        hstep = s[idx] - s_new
         lz_new = _log_z(ell[idx], s_new)
         du = -(lz_new - log_z[idx] + f[idx]) / df[idx]
-        rel = problem.relative_change(u[idx], du, _take(aux, idx))
-        big = rel > MAX_CHANGE
-        h[idx[big]] *= np.maximum(0.7 * MAX_CHANGE / rel[big], 1e-3)
+        # changes of the logarithms of u, M, 1 + M, and of log z itself (which turns from
+        # -1 per unit of ln y to 0 where y passes lambda)
+        inc = np.concatenate([problem.relative_change(u[idx], du, _take(aux, idx)),
+                              (lz_new - log_z[idx])[None]])
+        if rate is None:
+            rate = np.zeros((inc.shape[0], n), dtype=complex)
+        # The predictor is linear in log u, exact where u, M and 1 + M follow powers of z (far
+        # from the spectrum, or below it); what must stay small is the departure from the
+        # last log-slopes, not the change of the logarithms itself.
+        dev = np.max(np.abs(inc - rate[:, idx] * hstep), axis=0)
+        rel = np.maximum(dev, np.max(np.abs(inc[:-1]), axis=0) / MAX_LOG_STEP)
+        big = ~(rel <= MAX_CHANGE)
+        h[idx[big]] *= np.maximum(0.7 * MAX_CHANGE / np.where(np.isfinite(rel[big]), rel[big], 1e300),
+                                  1e-3)
         go = np.flatnonzero(~big)
         if go.size:
             gi = idx[go]
@@ -617,6 +655,7 @@ def _continue(problem, ell: np.ndarray, s_top: np.ndarray, eta: float = ETA,
             f[ga], df[ga] = fn[acc], dfn[acc]
             for a, an in zip(aux, auxn):
                 a[ga] = an[acc]
+            rate[:, ga] = inc[:, go[acc]] / hstep[go[acc]]
             h[ga] = np.minimum(h[ga] * 2.0, 50.0 + 0.5 * np.abs(s[ga] - s_end[ga]))
             h[gi[~acc]] *= 0.25
         failed |= h < 1e-9
@@ -875,10 +914,16 @@ def _solved(problem, ell: np.ndarray, s_top: np.ndarray, atoms, what: str,
     with np.errstate(all="ignore"):
         u, failed = _continue(problem, ell, s_top)
         lg = problem.lambda_g(u, ETA)
+        noise = np.zeros(ell.shape)
         for log_a, w in atoms:
             if math.isfinite(log_a):
-                lg = lg - w / (1.0 + 1j * ETA - np.exp(log_a - ell))
-        out = np.maximum(-lg.imag / math.pi, 0.0)
+                term = w / (1.0 + 1j * ETA - np.exp(log_a - ell))
+                lg = lg - term
+                noise = noise + ATOM_NOISE * np.abs(term)
+        out = -lg.imag / math.pi
+        # next to an atom, G is the difference of two large terms: what is left below the
+        # solve's accuracy times the atom's term is rounding, not density
+        out = np.where(out > noise, out, 0.0)
     failed |= ~np.isfinite(out)
     if failed.any() and strict:
         bad = np.exp(ell[failed])
@@ -1064,13 +1109,6 @@ def _tabulate(rho_log: Callable[..., np.ndarray], ell_top: float, mass: float, s
     return ell_final, rho_log(ell_final, True), [(lo, hi) for lo, hi in intervals]
 
 
-def _check_points(points) -> int:
-    if isinstance(points, bool) or not isinstance(points, (int, np.integer)) or points < 32:
-        raise TheoryError(f"points must be an integer >= 32 (grid size of the density), "
-                          f"received {points!r}")
-    return int(points)
-
-
 def _make_density(ell, rl, atoms, intervals, regime) -> Density:
     ell = np.asarray(ell, dtype=float)
     rl = np.asarray(rl, dtype=float)
@@ -1132,9 +1170,7 @@ def plain_density(law: DerivativeLaw, weights: str, sigma_w: float, depth: int,
       Pennington, Schoenholz, Ganguli 2017 (NeurIPS), sec. 2.3 and 2018 (AISTATS); the solver
       is described in docs/theory-free-probability.md.
     """
-    kind = _check_kind(weights)
-    sigma = _check_sigma(sigma_w)
-    depth = _check_depth(depth)
+    kind, sigma, depth = _check_stack(law, weights, sigma_w, depth)
     points = _check_points(points)
     atoms = _plain_atoms(law, kind, sigma, depth)
     if kind == "orthogonal" and depth == 1 and not law.exact:
@@ -1181,17 +1217,6 @@ def plain_density(law: DerivativeLaw, weights: str, sigma_w: float, depth: int,
 # Residual stacks and the large-depth orthogonal law
 # ----------------------------------------------------------------------------------------
 
-def _check_tau(tau) -> float:
-    try:
-        tau = float(tau)
-    except (TypeError, ValueError):
-        raise TheoryError(f"tau must be a number, received {tau!r}") from None
-    if not math.isfinite(tau) or tau < 0:
-        raise TheoryError(f"tau must be finite and >= 0 (a sum of alpha^2 sigma_w^2 E[phi'^2] "
-                          f"over layers), received {tau!r}")
-    return tau
-
-
 def residual_tau(activation: str | Activation, sigma_w: float, q_trajectory: Sequence[float],
                  alpha: float = 1.0) -> float:
     """``tau = sum_l alpha^2 sigma_w^2 E[phi'(h^l)^2]``, ``h^l ~ N(0, q^l)``, of a residual stack.
@@ -1213,7 +1238,7 @@ def residual_tau(activation: str | Activation, sigma_w: float, q_trajectory: Seq
       Tarnowski, Warchol, Jastrzebski, Tabor, Nowak 2019 (AISTATS); THEORY.md sec. 4.
     """
     act = get_activation(activation)
-    sigma = _check_sigma(sigma_w)
+    sigma = _real("sigma_w", sigma_w, positive=True, what="the weight scale, not its square")
     try:
         qs = np.asarray(q_trajectory, dtype=float).reshape(-1)
         alpha = float(alpha)
@@ -1303,7 +1328,7 @@ def plain_limit_edges(c: float) -> tuple[float, float]:
     References:
       Pennington, Schoenholz, Ganguli 2018 (AISTATS); THEORY.md sec. 3 (*derived*).
     """
-    c = _check_tau(c)
+    c = _check_tau(c, "c")
     if c == 0.0:
         return 1.0, 1.0
     lo, hi = _exp_law_edges(c)
