@@ -21,6 +21,7 @@ test: $(STAMP)
 
 bench: $(STAMP)
 	$(BIN)/python benchmarks/jacobian.py
+	$(BIN)/python benchmarks/theory.py
 
 clean:
 	rm -rf $(VENV) isoscope-demo

@@ -88,9 +88,15 @@ class Spec:
     source: str | None = None
 
     def to_dict(self) -> dict[str, Any]:
-        """The resolved spec (every default filled in) as plain data."""
+        """The resolved spec (every default filled in) as plain data; ``parse_spec`` reads it
+        back to an equal spec (keys that apply only to another family or input kind, such as
+        ``network.alpha`` of a plain stack, are left out)."""
         d = dataclasses.asdict(self)
         d.pop("source")
+        if self.network.family != "residual":
+            d["network"].pop("alpha")
+        if d["analysis"]["input_file"] is None:
+            d["analysis"].pop("input_file")
         return d
 
     def replace(self, **sections: dict[str, Any]) -> "Spec":
