@@ -13,24 +13,15 @@ from __future__ import annotations
 import argparse
 import json
 import resource
-import statistics
 import time
 
 import jax
 import jax.numpy as jnp
 
 import isoscope  # noqa: F401  (float64 on)
+from _timing import median_time  # benchmarks/ is on sys.path when a script runs
 from isoscope import jacobian as jac
 from isoscope.network import plain_stack
-
-
-def _median_time(fn, repeats):
-    times = []
-    for _ in range(repeats):
-        t = time.perf_counter()
-        fn()
-        times.append(time.perf_counter() - t)
-    return statistics.median(times)
 
 
 def run_case(n: int, depth: int, dtype) -> dict:
@@ -41,16 +32,16 @@ def run_case(n: int, depth: int, dtype) -> dict:
     jac.dense_jacobian(net, params, x).block_until_ready()
     first = time.perf_counter() - t
     repeats = 5 if n <= 512 else 3
-    t_jac = _median_time(lambda: jac.dense_jacobian(net, params, x).block_until_ready(), repeats)
+    t_jac = median_time(lambda: jac.dense_jacobian(net, params, x).block_until_ready(), repeats)
     a = jax.random.normal(jax.random.PRNGKey(2), (n, n), dtype)
     b = jax.random.normal(jax.random.PRNGKey(3), (n, n), dtype)
     mm = jax.jit(jnp.matmul)
     mm(a, b).block_until_ready()
-    t_mm = _median_time(lambda: mm(a, b).block_until_ready(), 20)
+    t_mm = median_time(lambda: mm(a, b).block_until_ready(), 20)
     j = jac.dense_jacobian(net, params, x)
     svd = jax.jit(lambda m: jnp.linalg.svd(m, compute_uv=False))
     svd(j).block_until_ready()
-    t_svd = _median_time(lambda: svd(j).block_until_ready(), repeats)
+    t_svd = median_time(lambda: svd(j).block_until_ready(), repeats)
     jac_rate = 2.0 * depth * n ** 3 / t_jac
     mm_rate = 2.0 * n ** 3 / t_mm
     return {"N": n, "L": depth, "dtype": jnp.dtype(dtype).name,

@@ -37,6 +37,7 @@ import numpy as np
 import scipy
 
 import isoscope  # noqa: F401  (float64 on)
+from _timing import median_time  # benchmarks/ is on sys.path when a script runs
 from isoscope import jacobian as jac
 from isoscope.network import plain_stack
 from isoscope.theory import mean_field
@@ -59,15 +60,6 @@ def designs() -> list[dict]:
     ]
 
 
-def _median(fn, repeats: int) -> float:
-    times = []
-    for _ in range(repeats):
-        t = time.perf_counter()
-        fn()
-        times.append(time.perf_counter() - t)
-    return statistics.median(times)
-
-
 def time_prediction(d: dict, depth: int, repeats: int) -> dict:
     """Median seconds of ``predict`` (moments + 400-point density) after one warm call."""
     # steady-state inputs x = phi(h), h ~ N(0, q): mean square E[phi(h)^2] puts layer 1 at q
@@ -77,7 +69,7 @@ def time_prediction(d: dict, depth: int, repeats: int) -> dict:
     t = time.perf_counter()
     p = call()
     first = time.perf_counter() - t
-    return {"predict_s": _median(call, repeats), "predict_first_s": first,
+    return {"predict_s": median_time(call, repeats), "predict_first_s": first,
             "predicted_m1": p.moments.m1, "predicted_log_s_std": p.log_s_std}
 
 

@@ -189,10 +189,13 @@ def _check_q(q) -> float:
                  what="pass the mean-field fixed point q* (a variance)")
 
 
-def _check_tau(value, name: str = "tau") -> float:
-    return _real(name, value, positive=False,
-                 what="it is a sum of alpha^2 sigma_w^2 E[phi'^2] over layers"
-                 if name == "tau" else "c = L (mu_2/mu_1^2 - 1)")
+def _check_tau(tau) -> float:
+    return _real("tau", tau, positive=False,
+                 what="it is a sum of alpha^2 sigma_w^2 E[phi'^2] over layers")
+
+
+def _check_sigma(sigma_w) -> float:
+    return _real("sigma_w", sigma_w, positive=True, what="the weight scale, not its square")
 
 
 def _check_points(points) -> int:
@@ -209,7 +212,7 @@ def _check_stack(law, weights, sigma_w, depth) -> tuple[str, float, int]:
         raise TheoryError(f"unknown weights kind {weights!r}; expected one of "
                           f"{', '.join(WEIGHT_KINDS)} (uniform weights: use 'gaussian', their "
                           "spectrum has the same infinite-width limit)")
-    sigma = _real("sigma_w", sigma_w, positive=True, what="the weight scale, not its square")
+    sigma = _check_sigma(sigma_w)
     depth = _integer("depth", depth, 1, "the number of weight layers")
     return kind, sigma, depth
 
@@ -963,7 +966,8 @@ def _curvature(e: np.ndarray, f: np.ndarray) -> np.ndarray:
 
 
 def _monitor_cdf(e: np.ndarray, curv: np.ndarray, norm: float, width: float) -> np.ndarray:
-    """Cumulative monitor on sorted points e: half length in ``ln lambda``, half error.
+    """Cumulative monitor on sorted points e: a share _LENGTH_SHARE (10 %) of length in
+    ``ln lambda``, the rest error.
 
     The trapezoid error of a cell of width h is ``h^3 |f''|/12``; the error part is
     ``(sum_k |f_k''| / int f_k)^{1/3}`` over the integrands of the mass, first and second
@@ -987,8 +991,9 @@ def _tabulate(rho_log: Callable[..., np.ndarray], ell_top: float, mass: float, s
     2. Split into support intervals where ``rho_log > max(THRESHOLD * max, FLOOR)``; refine every edge not
        known exactly by multisection (15 points per round, 5 rounds).
     3. Two refinement rounds (60 then 120 points) place points at Chebyshev nodes of a monitor
-       built from everything evaluated so far: equal shares of ln-lambda length, mass, first
-       and second moment.  The final ``points`` nodes are placed the same way.
+       built from everything evaluated so far (:func:`_monitor_cdf`: 10 % ln-lambda length,
+       90 % the cube root of the summed curvature of the mass, first and second moment
+       integrands).  The final ``points`` nodes are placed the same way.
 
     ``rho_log(ell, strict)`` evaluates the density of ln lambda.
 
@@ -1238,7 +1243,7 @@ def residual_tau(activation: str | Activation, sigma_w: float, q_trajectory: Seq
       Tarnowski, Warchol, Jastrzebski, Tabor, Nowak 2019 (AISTATS); THEORY.md sec. 4.
     """
     act = get_activation(activation)
-    sigma = _real("sigma_w", sigma_w, positive=True, what="the weight scale, not its square")
+    sigma = _check_sigma(sigma_w)
     try:
         qs = np.asarray(q_trajectory, dtype=float).reshape(-1)
         alpha = float(alpha)
@@ -1328,7 +1333,7 @@ def plain_limit_edges(c: float) -> tuple[float, float]:
     References:
       Pennington, Schoenholz, Ganguli 2018 (AISTATS); THEORY.md sec. 3 (*derived*).
     """
-    c = _check_tau(c, "c")
+    c = _real("c", c, positive=False, what="c = L (mu_2/mu_1^2 - 1)")
     if c == 0.0:
         return 1.0, 1.0
     lo, hi = _exp_law_edges(c)

@@ -190,16 +190,23 @@ def predict(activation: str, weights: str, sigma_w: float, sigma_b: float, depth
         notes.append(f"inputs are not at the fixed point: layer {worst + 1} has q = "
                      f"{q_layers[worst]:.4g} against q* = {q_law:.4g}; the prediction takes every "
                      "layer at q* (feed steady-state inputs for a like-for-like comparison)")
-    law = fp.derivative_law(act, q_law)
+    regime = (f"N -> infinity with L = {depth} fixed; every layer at q = {q_law:.6g}; "
+              f"{kind} weights free of the diagonal factors")
+    return _plain_prediction(act, kind, sigma_w, sigma_b, depth, points, summary, q_layers,
+                             q_law, _length_mode(act, sigma_w, q_law, depth), regime,
+                             tuple(notes))
+
+
+def _plain_prediction(act, kind, sigma_w, sigma_b, depth, points, summary, q_layers, q_law,
+                      length_mode, regime, notes) -> Prediction:
+    """Law of phi'(h)^2 at ``q_law`` -> moments, density and ln s statistics -> Prediction."""
+    law = fp.derivative_law(act, 1.0 if math.isnan(q_law) else q_law)
     moments = fp.plain_moments(law, kind, sigma_w, depth)
     density = fp.plain_density(law, kind, sigma_w, depth, points)
     mean, std = log_lambda_stats(density)
-    regime = (f"N -> infinity with L = {depth} fixed; every layer at q = {q_law:.6g}; "
-              f"{kind} weights free of the diagonal factors")
     return Prediction("plain", act.name, kind, float(sigma_w), float(sigma_b), int(depth), 1.0,
                       summary, q_layers, q_law, math.nan, moments, density, mean / 2.0,
-                      std / 2.0, _length_mode(act, sigma_w, q_law, depth), False, regime,
-                      tuple(notes))
+                      std / 2.0, length_mode, False, regime, notes)
 
 
 def _law_free_of_q(act) -> bool:
@@ -211,13 +218,9 @@ def _law_free_of_q(act) -> bool:
 def _predict_unbounded(act, kind, sigma_w, sigma_b, depth, input_variance, points) -> Prediction:
     """Plain stack whose variance has no finite fixed point but whose Jacobian law does not
     depend on q (see :func:`_law_free_of_q`): the spectrum is predicted exactly as at a fixed
-    point, with q taken anywhere (q = 1) and a note that the forward pass grows."""
+    point, with the law taken at q = 1 (``q_law`` NaN) and a note that the forward pass grows."""
     q0 = 1.0 if input_variance is None else float(input_variance)
     q_layers = mf.q_trajectory(act, sigma_w, sigma_b, q0, depth)
-    law = fp.derivative_law(act, 1.0)
-    moments = fp.plain_moments(law, kind, sigma_w, depth)
-    density = fp.plain_density(law, kind, sigma_w, depth, points)
-    mean, std = log_lambda_stats(density)
     notes = (f"no finite fixed point of the length map: the pre-activation variance grows "
              f"without bound, from q^1 = {q_layers[0]:.4g} to q^L = {q_layers[-1]:.4g}, but phi' of "
              f"{act.name} has the same law at every variance, so the Jacobian spectrum does not "
@@ -225,9 +228,8 @@ def _predict_unbounded(act, kind, sigma_w, sigma_b, depth, input_variance, point
              "float32 at large depth",)
     regime = (f"N -> infinity with L = {depth} fixed; the law of phi'(h)^2 is the same at every "
               f"q^l; {kind} weights free of the diagonal factors")
-    return Prediction("plain", act.name, kind, float(sigma_w), float(sigma_b), int(depth), 1.0,
-                      None, q_layers, math.nan, math.nan, moments, density, mean / 2.0,
-                      std / 2.0, math.nan, False, regime, notes)
+    return _plain_prediction(act, kind, sigma_w, sigma_b, depth, points, None, q_layers,
+                             math.nan, math.nan, regime, notes)
 
 
 def _length_mode(act, sigma_w: float, q: float, depth: int) -> float:
