@@ -29,7 +29,7 @@ from scipy.stats import kstwobign
 
 from isoscope import jacobian as jac
 from isoscope.analysis import _draw_input, build_network, plan_inputs, predict_spec
-from isoscope.score import agreement, ks_distance
+from isoscope.score import agreement, ks_distance, split_outliers
 from isoscope.spec import parse_spec
 from isoscope.spectrum import from_singular_values
 from isoscope.theory import mean_field
@@ -65,8 +65,7 @@ def _case(name):
     spec = CASES[name]
     plan, spectrum = _draw(spec)
     pred = predict_spec(spec, plan)
-    agree = agreement(spectrum, pred.density, pred.moments, spec.network.depth,
-                      mean_mode=pred.mean_mode)
+    agree = agreement(spectrum, pred)
     return spec, plan, spectrum, pred, agree
 
 
@@ -154,8 +153,10 @@ def test_measured_spectrum_matches_prediction(name):
     # the prediction's own premises hold: inputs at the fixed point, no caveats
     assert not pred.notes, pred.notes
     assert agree.ks < KS_ACCEPT, (name, agree.ks)
-    # the same number from the public KS function on the pooled ln lambda
-    log_lam = np.where(spectrum.zero_mask, -np.inf, 2.0 * spectrum.log_s).ravel()
+    # the same number from the public KS function on the pooled ln lambda of the bulk (the
+    # input-length direction, when it lies outside the bulk, is set apart first)
+    bulk, _ = split_outliers(spectrum, pred)
+    log_lam = np.where(bulk.zero_mask, -np.inf, 2.0 * bulk.log_s).ravel()
     assert ks_distance(log_lam, pred.density, 2.0 * math.log(agree.floor)) == pytest.approx(agree.ks)
     bias, sd = _m1_sampling(spec, plan, pred)
     assert abs(agree.m1_rel_error) <= abs(bias) + SIGMAS * sd, (name, agree.m1_rel_error, bias, sd)
@@ -211,20 +212,22 @@ def test_mismatched_prediction_is_rejected():
     # laws differ at O(1) (Pennington, Schoenholz, Ganguli 2017, fig. 2), and the check must say so
     spec, _, spectrum, _, _ = _case("tanh-orthogonal-critical")
     wrong = predict("tanh", "gaussian", SW_TANH, SB_TANH, spec.network.depth)
-    bad = agreement(spectrum, wrong.density, wrong.moments, spec.network.depth)
+    bad = agreement(spectrum, wrong)
     assert bad.ks > KS_REJECT, bad.ks
     assert any("disagree" in w for w in bad.warnings), bad.warnings
 
 
-def test_depth_at_width_warns_and_disagrees():
-    # L >= N: finite-width effects of size sqrt(L/N) (THEORY.md sec. 3).  ReLU, orthogonal, 128
+def test_depth_at_width_disagrees_and_names_finite_width_once():
+    # L >= N: finite-width effects of size sqrt(L/N) (Hanin & Nica 2019).  ReLU, orthogonal, 128
     # layers at width 64: the rank is the smallest active count over 128 layers, far below N/2,
-    # and the typical draw's m1 is far below the mean (heavy tail).  Both warnings must fire and
-    # KS must exceed the acceptance limit
+    # and the top 1/N of the predicted law holds most of m1 (heavy tail).  KS must exceed the
+    # acceptance limit, one disagreement warning must name finite width (sqrt(L/N) = 1.41), and
+    # m1 must be flagged as not estimable rather than compared
     spec = _spec(width=64, act="relu", depth=128, weights="orthogonal", sigma_w=math.sqrt(2.0))
     plan, spectrum = _draw(spec)
     pred = predict_spec(spec, plan)
-    bad = agreement(spectrum, pred.density, pred.moments, spec.network.depth)
-    assert any("depth 128 >= width 64" in w for w in bad.warnings), bad.warnings
-    assert any("disagree" in w for w in bad.warnings), bad.warnings
-    assert bad.ks > KS_ACCEPT, bad.ks
+    bad = agreement(spectrum, pred)
+    assert bad.disagree and bad.ks > KS_ACCEPT, bad.ks
+    assert "finite width (sqrt(L/N) = 1.41" in bad.cause, bad.cause
+    assert sum("disagree" in w for w in bad.warnings) == 1, bad.warnings
+    assert not bad.m1_reliable and any("heavy tail" in w for w in bad.warnings), bad.warnings

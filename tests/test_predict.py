@@ -5,6 +5,7 @@ the length-map slope), scipy.stats.kstest for the KS distance, and the KS defini
 by brute force.
 """
 
+import dataclasses
 import math
 
 import numpy as np
@@ -135,11 +136,12 @@ def test_agreement_excludes_the_mean_mode_and_warns():
     ell = np.interp(u * cum[-1], cum, p.density.log_x)          # inverse-CDF sampling
     s = np.concatenate([np.full((3, 1), 70.0), np.exp(ell / 2.0)], axis=1)
     spec = from_singular_values(s, np.float64)
-    g = agreement(spec, p.density, p.moments, 64, mean_mode=True)
-    assert g.outlier_s == pytest.approx(70.0)
+    g = agreement(spec, p)
+    assert [o.kind for o in g.outliers] == ["mean mode"]
+    assert g.outliers[0].measured_s == pytest.approx(70.0)
     assert g.ks < 0.04
     assert any("mean mode" in w for w in g.warnings)
-    g_all = agreement(spec, p.density, p.moments, 64, mean_mode=False)
+    g_all = agreement(spec, dataclasses.replace(p, mean_mode=False))
     assert g_all.m1_rel_error > 1.0                 # the outlier dominates m1 when kept
 
 

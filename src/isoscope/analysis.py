@@ -22,8 +22,8 @@ import numpy as np
 from isoscope import jacobian as jac
 from isoscope.errors import InputError, TheoryError
 from isoscope.network import Network, plain_stack, residual_stack
-from isoscope.score import (Agreement, Score, agreement, censored_log_stats, non_finite_score,
-                            score_spectrum)
+from isoscope.score import (Agreement, Score, agreement, censored_log_stats, judged_gain,
+                            non_finite_score, score_spectrum, split_outliers)
 from isoscope.spec import Spec
 from isoscope.spectrum import Spectrum, from_singular_values
 from isoscope.theory import mean_field
@@ -314,9 +314,11 @@ def analyze(spec: Spec) -> Analysis:
     warnings += notes
     agree = profile = None
     if predicted is not None and spectrum is not None:
-        agree = agreement(spectrum, predicted.density, predicted.moments, spec.network.depth,
-                          mean_mode=predicted.mean_mode)
+        agree = agreement(spectrum, predicted)
         warnings += agree.warnings
+        bulk, _ = split_outliers(spectrum, predicted)
+        score = score_spectrum(bulk, spec.network.depth, judged_gain(agree, predicted, bulk),
+                               scored=agree.compared)
         t = time.perf_counter()
         try:
             profile = depth_profile(spec, plan, network, *first)

@@ -49,7 +49,7 @@ GLOSSARY = {
     "score.gain_per_layer": "m1^(1/L): the average factor per layer on the squared norm",
     "score.normalised_variance": "m2/m1^2 - 1: variance of lambda/m1 (0 only if all lambda are equal)",
     "score.log_s_std": "standard deviation of ln s (non-zero s), the spread on a log scale",
-    "score.verdict": "isometric | spread | vanishing | exploding | non-finite (see score.reason)",
+    "score.verdict": "isometric | mis-scaled | spread | vanishing | exploding | non-finite (see score.reason)",
     "predicted": "infinite-width prediction (mean field + free probability); predicted.regime says what it assumes",
     "predicted.q_star, chi, xi_q, xi_c, c_star": "mean field of a plain stack: fixed point q*, chi_1, depth scales, correlation fixed point (null for residual stacks)",
     "predicted.tau": "residual stacks: sum over blocks of alpha^2 sigma_w^2 E[phi'(h^l)^2]",
@@ -61,6 +61,13 @@ GLOSSARY = {
     "agreement.floor": "lambda below which the SVD cannot resolve values; both laws count everything below as one lump",
     "agreement.m1_rel_error, m2_rel_error": "measured / predicted - 1",
     "agreement.log_s_mean, log_s_std": "[predicted, measured] mean and std of ln s above the floor",
+    "agreement.outliers": "singular values per draw set apart from the bulk (mean mode, input-length direction), with measured and predicted s; they are not scored",
+    "agreement.tail_share": "[m1, m2]: share of the predicted moment carried by the top 1/N of the law; above 5% the moment cannot be estimated from N values per draw",
+    "agreement.m1_reliable, m2_reliable": "whether the moment can be estimated at this width (tail_share <= 0.05); an unreliable moment is not compared",
+    "agreement.disagree, cause": "whether measurement and theory disagree (KS > 0.05 or a reliable m1 off by > 10%) and the most likely cause",
+    "agreement.atom_tolerance": "distance in ln lambda within which a measured value counts as sitting on a predicted atom (SVD and rounding resolution)",
+    "score.gain_basis": "which m1 the verdict judged the gain by: the measured one, or the predicted one when the measured m1 cannot be estimated and the mean of ln s agrees with theory",
+    "score.scored": "which singular values were scored: all, or the bulk without the outliers",
     "profile": "std of ln s and ln m1 of the partial Jacobians J_l ... J_1 (one draw) against the prediction at depth l",
     "inputs.variance": "q* for steady-state inputs (h ~ N(0, q*)), the variance for Gaussian ones",
     "seconds": "wall-clock seconds per stage on this machine",
@@ -144,9 +151,9 @@ def _agreement_dict(g) -> dict[str, Any] | None:
     if g is None:
         return None
     out = g._asdict()
-    out["log_s_mean"] = list(g.log_s_mean)
-    out["log_s_std"] = list(g.log_s_std)
-    out["zero_fraction"] = list(g.zero_fraction)
+    for key in ("log_s_mean", "log_s_std", "zero_fraction", "tail_share"):
+        out[key] = list(out[key])
+    out["outliers"] = [o._asdict() for o in g.outliers]
     return out
 
 
@@ -227,14 +234,11 @@ class output_folder:
 
 def _separate_length_mode(p) -> float | None:
     """log10 of the predicted input-length singular value when it lies outside the predicted
-    bulk by more than 5 % in s (inside, it is one value among N and not worth a line)."""
-    if p is None or not (p.length_mode_s > 0 and math.isfinite(p.length_mode_s)):
+    bulk (:func:`isoscope.score.length_mode_side`; inside, it is one value among N)."""
+    from isoscope.score import length_mode_side
+    if p is None or length_mode_side(p) is None:
         return None
-    lo, hi = p.density.support
-    s = p.length_mode_s
-    if lo ** 0.5 / 1.05 <= s <= 1.05 * hi ** 0.5:
-        return None
-    return math.log10(s)
+    return math.log10(p.length_mode_s)
 
 
 def _figures(analysis: Analysis, folder: Path, prefix: str = "") -> dict[str, Path]:
@@ -382,6 +386,11 @@ def write_comparison_folder(analyses: list[Analysis], out: str | Path, title: st
     return Path(out)
 
 
+def _cell(v: float, spec: str) -> str:
+    """A number for the terminal as JSON would give it: finite, or "—" where JSON has null."""
+    return format(v, spec) if isinstance(v, (int, float)) and math.isfinite(v) else "—"
+
+
 def summary_table(analyses: list[Analysis]) -> str:
     """A short fixed-width table for the terminal, one row per design."""
     cols = ("design", "verdict", "isometry", "gain m1", "m2/m1^2-1", "std ln s", "zero s",
@@ -389,10 +398,10 @@ def summary_table(analyses: list[Analysis]) -> str:
     rows = []
     for a in analyses:
         sc, sp = a.score, a.spectrum
-        rows.append((a.spec.name, sc.verdict, f"{sc.isometry:.3f}", f"{sc.gain:.4g}",
-                     f"{sc.normalised_variance:.3g}", f"{sc.log_s_std:.3f}",
+        rows.append((a.spec.name, sc.verdict, _cell(sc.isometry, ".3f"), _cell(sc.gain, ".4g"),
+                     _cell(sc.normalised_variance, ".3g"), _cell(sc.log_s_std, ".3f"),
                      f"{100 * sp.zero_fraction:.1f}%" if sp is not None else "—",
-                     f"{a.agreement.ks:.3f}" if a.agreement is not None else "—"))
+                     _cell(a.agreement.ks, ".3f") if a.agreement is not None else "—"))
     widths = [max(len(c), *(len(r[i]) for r in rows)) for i, c in enumerate(cols)]
     line = lambda r: "  ".join(v.ljust(w) if i < 2 else v.rjust(w) for i, (v, w) in enumerate(zip(r, widths)))
     out = [line(cols), "  ".join("-" * w for w in widths)] + [line(r) for r in rows]

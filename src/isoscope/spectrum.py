@@ -80,10 +80,17 @@ class Spectrum:
         """Pooled ``ln s`` of the singular values that are not numerically zero."""
         return self.log_s[~self.zero_mask]
 
-    def lambda_moment(self, k: int) -> float:
-        """``m_k = (1/(draws n)) sum s^(2k)``, zeros included (they contribute 0)."""
+    def log_lambda_moment(self, k: int) -> float:
+        """``ln m_k``, by log-sum-exp: finite whenever some s > 0, even when ``m_k`` itself
+        under- or overflows float64 (``-inf`` when every s is zero)."""
         flat = self.log_s.ravel()
-        return float(np.exp(logsumexp(2.0 * k * flat) - math.log(flat.size)))
+        return float(logsumexp(2.0 * k * flat) - math.log(flat.size))
+
+    def lambda_moment(self, k: int) -> float:
+        """``m_k = (1/(draws n)) sum s^(2k)``, zeros included (they contribute 0); ``inf`` or
+        ``0.0`` where it leaves the float64 range (see :meth:`log_lambda_moment`)."""
+        with np.errstate(over="ignore"):
+            return float(np.exp(self.log_lambda_moment(k)))
 
     def lambda_moment_draws(self, k: int) -> np.ndarray:
         """``m_k`` of each draw separately (for a sampling error across draws)."""
@@ -96,15 +103,16 @@ class Spectrum:
 
     @property
     def log_s_mean(self) -> float:
-        """Mean of ``ln s`` over the non-zero singular values."""
+        """Mean of ``ln s`` over the non-zero singular values (NaN when there are none)."""
         v = self.log_s_nonzero
-        return float(v.mean()) if v.size else -math.inf
+        return float(v.mean()) if v.size else math.nan
 
     @property
     def log_s_std(self) -> float:
-        """Standard deviation of ``ln s`` over the non-zero singular values."""
+        """Standard deviation of ``ln s`` over the non-zero singular values (NaN when there
+        are none: a spread is not defined on an empty set)."""
         v = self.log_s_nonzero
-        return float(v.std()) if v.size > 1 else 0.0
+        return float(v.std()) if v.size else math.nan
 
     @property
     def log_s_range(self) -> tuple[float, float]:
@@ -117,6 +125,16 @@ class Spectrum:
         """``log10(s_max / s_min)``, s_min the smallest non-zero singular value (pooled)."""
         lo, hi = self.log_s_range
         return (hi - lo) / math.log(10.0)
+
+    def trimmed(self, top: int = 0, bottom: int = 0) -> "Spectrum":
+        """The same spectrum without the ``top`` largest and ``bottom`` smallest singular
+        values of every draw (to set apart outliers that the bulk law does not describe: a
+        residual stack's mean mode, a plain stack's input-length direction)."""
+        if top < 0 or bottom < 0 or top + bottom >= self.size:
+            raise ValueError(f"cannot trim {top} + {bottom} of {self.size} singular values per draw")
+        end = self.size - bottom
+        return dataclasses.replace(self, log_s=self.log_s[:, top:end],
+                                   zero_mask=self.zero_mask[:, top:end])
 
     @property
     def s_quantiles(self) -> dict[str, float]:
