@@ -43,6 +43,7 @@ from scipy import special
 
 from isoscope.activations import Activation, get_activation
 from isoscope.errors import SolverError, TheoryError
+from isoscope.theory.mean_field import _SOFT_BREAKS
 from isoscope.theory.quadrature import normal_rule
 
 __all__ = [
@@ -339,7 +340,9 @@ def derivative_law(activation: str | Activation, q: float) -> DerivativeLaw:
                         if float(dphi(np.array([mid]))[0]) != 0.0 else -math.inf)
             ws.append(_piece_probability(a, b, s))
         return _grouped(np.array(vals), np.array(ws), True, act.name, q)
-    z, w = normal_rule([k / s for k in act.kinks])
+    # the same breaks as the mean-field rules (kinks and the soft breaks in h), so that
+    # sigma_w^2 E[d] is chi_1 of isoscope.theory.mean_field to rounding
+    z, w = normal_rule([k / s for k in (*act.kinks, *_SOFT_BREAKS)])
     logs = np.maximum(np.asarray(log_d(s * z), dtype=float), _LOG_TINY)
     return _grouped(logs, w, False, act.name, q)
 
@@ -775,7 +778,7 @@ class Density:
       intervals: the support intervals ``((lo, hi), ...)`` of the continuous part.
       regime: the assumptions under which the law holds.
       log_support: ``(ln lo, ln hi)`` of ``support``, finite where lambda itself leaves the
-        float64 range (``support`` then holds 0.0 or inf there: read ``log_support``).
+        float64 range (``support`` then holds NaN there, JSON null: read ``log_support``).
       log_atoms: the atoms as ``(ln location, weight)``, ``-inf`` for the atom at zero
         (``atoms`` holds ``exp`` of these, which is 0.0 or inf outside float64).
 
@@ -809,6 +812,7 @@ class Density:
         """True when every grid point, support edge and non-zero atom of lambda (and rho on the
         grid) is a normal float64: the lambda-form fields are then faithful."""
         logs = [*self.log_support, *(la for la, _ in self.log_atoms)]
+        logs = [v for v in logs if v == v]
         logs = [v for v in logs if v != -math.inf]
         if self.log_x.size:
             logs += [float(self.log_x.min()), float(self.log_x.max())]
@@ -1254,7 +1258,10 @@ def _make_density(ell, rl, atoms, intervals, regime) -> Density:
     else:
         nonzero = [la for la, _ in log_atoms if la > -math.inf]
         log_support = (min(nonzero), max(nonzero)) if nonzero else (-math.inf, -math.inf)
-    support = (_exp(log_support[0]), _exp(log_support[1]))
+    # an edge outside the normal float64 range has no faithful lambda form: NaN (JSON null),
+    # never a silent 0.0 or inf; log_support holds it
+    support = tuple(0.0 if v == -math.inf else (math.exp(v) if _LOG_TINY <= v <= _LOG_HUGE
+                                                else math.nan) for v in log_support)
     return Density(x, rho, ell, rl, float(zero), atom_list, support, iv, regime,
                    log_support, log_atoms)
 
