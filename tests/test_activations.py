@@ -58,3 +58,73 @@ def test_unknown_activation_lists_allowed():
     with pytest.raises(InputError, match="unknown activation 'tahn'.*tanh"):
         get_activation("tahn")
     assert get_activation("swish").name == "silu"
+
+
+# ---------------------------------------------------------------------------------------------
+# ln phi'(h)^2 in the tails, against mpmath at 50 digits (closed-form derivatives evaluated in
+# mpmath: tanh' = sech^2, erf' = 2 e^{-h^2}/sqrt(pi), sigmoid' = s(h) s(-h), GELU' = Phi + h phi,
+# SiLU' = s(h) (1 + h s(-h)), SELU' = lambda alpha e^h for h < 0)
+# ---------------------------------------------------------------------------------------------
+
+def _mp_derivatives():
+    import mpmath as mp
+    from isoscope.activations import SELU_ALPHA, SELU_LAMBDA
+
+    sig = lambda h: 1 / (1 + mp.exp(-h))  # noqa: E731
+    return {
+        "tanh": lambda h: mp.sech(h) ** 2,
+        "erf": lambda h: 2 / mp.sqrt(mp.pi) * mp.exp(-h * h),
+        "sigmoid": lambda h: sig(h) * sig(-h),              # 1 - s(h) = s(-h): no cancellation
+        "centred-sigmoid": lambda h: 4 * sig(h) * sig(-h),
+        "gelu": lambda h: mp.ncdf(h) + h * mp.npdf(h),
+        "silu": lambda h: sig(h) * (1 + h * sig(-h)),
+        "selu": lambda h: SELU_LAMBDA * (1 if h > 0 else SELU_ALPHA * mp.exp(h)),
+    }
+
+
+@pytest.mark.parametrize("name", sorted(_mp_derivatives()))
+def test_log_dphi_sq_keeps_relative_accuracy_in_the_tails(name):
+    import mpmath as mp
+
+    mp.mp.dps = 50
+    want_fn = _mp_derivatives()[name]
+    h = np.array([-700.0, -300.0, -60.0, -37.0, -20.0, -5.0001, -4.999, -2.0, -0.3, 0.05, 0.7,
+                  3.0, 19.5, 40.0, 300.0, 700.0])
+    got = get_activation(name).numpy_log_dphi_sq()(h)
+    want = np.array([float(2 * mp.log(abs(want_fn(mp.mpf(x))))) for x in h])
+    np.testing.assert_allclose(got, want, rtol=1e-13, atol=1e-14)
+    assert np.all(np.isfinite(got))   # never -inf: phi' of these never vanishes at these h
+
+
+def test_tanh_grad_underflows_where_the_closed_form_does_not():
+    # the reason for log_dphi_sq: jax.grad(tanh) is exactly 0 at h = 20 in float64, while
+    # tanh'(20)^2 = sech(20)^4 = 3.3e-34 (mpmath)
+    import mpmath as mp
+
+    act = get_activation("tanh")
+    assert float(act.derivative(jnp.asarray([20.0]))[0]) == 0.0
+    got = act.numpy_dphi_sq()(np.array([20.0]))[0]
+    assert got == pytest.approx(float(mp.sech(20) ** 4), rel=1e-13)
+
+
+# ---------------------------------------------------------------------------------------------
+# Leaky ReLU slope
+# ---------------------------------------------------------------------------------------------
+
+def test_leaky_relu_slope_is_one_cached_row_per_slope():
+    a = get_activation("leaky-relu", slope=0.2)
+    assert a is get_activation("leaky_relu").with_slope(0.2)
+    assert a is not get_activation("leaky-relu")
+    assert get_activation("leaky-relu").slope == 0.01          # the default
+    np.testing.assert_allclose(a.fn(jnp.asarray([-2.0, 3.0])), [-0.4, 3.0], rtol=1e-15)
+    assert a.derivative_values == (0.2, 1.0)
+    # the NumPy callables are compiled per slope, not per name
+    assert a.numpy_pair()[1](np.array([-1.0]))[0] == pytest.approx(0.2)
+    assert get_activation("leaky-relu").numpy_pair()[1](np.array([-1.0]))[0] == pytest.approx(0.01)
+
+
+def test_slope_for_another_activation_is_refused():
+    with pytest.raises(InputError, match="slope.*'tanh'.*leaky-relu"):
+        get_activation("tanh", slope=0.2)
+    with pytest.raises(InputError, match="not a finite number"):
+        get_activation("leaky-relu", slope=float("nan"))

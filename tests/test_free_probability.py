@@ -121,10 +121,11 @@ def test_plain_moments_linear_gaussian_are_fuss_catalan(L):
     law = fp.derivative_law("linear", 1.0)
     got = fp.plain_moments(law, "gaussian", 1.0, L)
     want = [special.comb((L + 1) * k, k, exact=True) / (L * k + 1) for k in (1, 2, 3, 4)]
-    np.testing.assert_allclose(got, want, rtol=1e-13)
+    np.testing.assert_allclose(got[:4], want, rtol=1e-13)
+    np.testing.assert_allclose(got.logs, np.log(want), rtol=1e-13, atol=1e-15)
     # sigma_w scales lambda by sigma_w^{2L}: m_k -> sigma_w^{2Lk} m_k
     got = fp.plain_moments(law, "gaussian", 1.3, L)
-    np.testing.assert_allclose(got, [w * 1.3 ** (2 * L * k) for k, w in zip((1, 2, 3, 4), want)],
+    np.testing.assert_allclose(got[:4], [w * 1.3 ** (2 * L * k) for k, w in zip((1, 2, 3, 4), want)],
                                rtol=1e-12)
 
 

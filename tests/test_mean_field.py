@@ -457,8 +457,8 @@ def test_every_activation_has_a_mean_field(name):
     assert math.isfinite(r.chi1) and r.chi1 > 0
     assert mf.length_map(name, sw, sb, r.q_star) == pytest.approx(r.q_star, rel=1e-12)
     assert r.chi1 == pytest.approx(sw * sw * mf.derivative_moments(name, r.q_star, 1)[0], rel=1e-14)
-    assert r.phase == ("ordered" if r.chi1 < 1 - mf.PHASE_TOL else
-                       "chaotic" if r.chi1 > 1 + mf.PHASE_TOL else "critical")
+    assert r.phase == ("ordered" if r.chi1 < 1 - mf.CRITICAL_TOL else
+                       "chaotic" if r.chi1 > 1 + mf.CRITICAL_TOL else "critical")
     assert r.sigma_w2 == pytest.approx(sw * sw) and r.sigma_b2 == pytest.approx(sb * sb)
     assert r.xi_q > 0 and r.xi_c > 0
 

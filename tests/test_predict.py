@@ -161,3 +161,209 @@ def test_unbounded_variance_with_a_q_dependent_law_is_refused():
     # GELU's phi' law depends on q, and q grows without bound at sigma_w^2 = 4: no number
     with pytest.raises(TheoryError, match="no finite stable fixed point"):
         predict("gelu", "gaussian", 2.0, 0.1, 4)
+
+
+# ---------------------------------------------------------------------------------------------
+# Issue 8: homogeneous stacks at q* = 0, logs, tails, labels, near-isometric laws, leaky slope
+# ---------------------------------------------------------------------------------------------
+
+def _spec(**network):
+    from isoscope.spec import parse_spec
+
+    init = network.pop("init", {})
+    analysis = network.pop("analysis", {})
+    return parse_spec({"network": network, "init": init, "analysis": analysis})
+
+
+def test_relu_at_q_star_zero_is_predicted_with_the_length_decay():
+    # ReLU, Gaussian, sigma_w = 1, sigma_b = 0: q* = 0; m1 = chi_1^L = (sigma_w^2/2)^L
+    # (Poole et al. 2016; P17: m1 = chi_1^L), the variance halves per layer (V(q) = q/2).
+    from isoscope.analysis import plan_inputs, predict_spec
+
+    spec = _spec(activation="relu", depth=10, init={"weights": "gaussian", "sigma_w": 1.0})
+    plan, _ = plan_inputs(spec)
+    assert plan.variance == 1.0 and "homogeneous" in plan.detail   # not the zero input
+    p = predict_spec(spec)
+    assert p.mean_field.q_star == 0.0
+    assert p.moments.m1 == pytest.approx(2.0 ** -10, rel=1e-12)
+    assert p.moments.log_m1 == pytest.approx(-10 * math.log(2.0), rel=1e-12)
+    assert p.length_factor == pytest.approx(0.5, rel=1e-12)
+    assert any("q* = 0" in n and "0.5 per layer" in n for n in p.notes)
+    assert p.q_law > 0 and p.density.atom_at_zero == pytest.approx(0.5)
+
+
+def test_log_moments_where_the_moments_underflow():
+    # tanh Gaussian sigma_w = 0.3, sigma_b = 0.1, L = 1000: m1 = chi_1^L = e^-2429, below float64.
+    # ln m1 = L ln chi_1 exactly, ln m2 = 2 ln m1 + ln(1 + L t1), t1 = mu2/mu1^2 (Gaussian;
+    # Pennington et al. 2017, moments by Lagrange inversion).
+    L = 1000
+    p = predict("tanh", "gaussian", 0.3, 0.1, L)
+    mfp = p.mean_field
+    mu1, mu2 = mf.derivative_moments("tanh", mfp.q_star, 2)
+    assert p.moments.log_m1 == pytest.approx(L * math.log(mfp.chi1), rel=1e-12)
+    assert p.moments.log_m2 == pytest.approx(2 * p.moments.log_m1 + math.log1p(L * mu2 / mu1 ** 2),
+                                             rel=1e-12)
+    assert p.moments.m1 is None and p.moments.unrepresentable() == ("m1", "m2", "m3", "m4")
+    assert all(math.isfinite(v) for v in p.moments.logs)
+    lo, hi = p.density.log_support
+    assert math.isfinite(lo) and math.isfinite(hi) and hi < -708
+    assert all(math.isnan(v) for v in p.density.support)           # never a silent 0.0
+    assert not p.density.in_float_range
+    assert any("outside the float64 range" in n for n in p.notes)
+
+
+@pytest.mark.parametrize("act, sw, sb, L", [("tanh", 3.0, 0.1, 2000), ("erf", 2.5, 0.0, 3000)])
+def test_log_moments_where_the_moments_overflow(act, sw, sb, L):
+    p = predict(act, "gaussian", sw, sb, L)
+    assert p.moments.log_m1 == pytest.approx(L * math.log(p.mean_field.chi1), rel=1e-12)
+    assert p.moments.m1 is None and p.moments.log_m1 > 710
+    assert math.isnan(p.density.support[1]) and p.density.log_support[1] > 710
+
+
+def test_saturated_tanh_has_no_spurious_zero_atom_and_m1_is_chi1_to_the_depth():
+    # tanh' = sech^2 never vanishes; chi_1 = sigma_w^2 E[sech^4(sqrt(q*) z)] by mpmath.quad
+    import mpmath
+
+    sw, L = 10.0, 30
+    m = mf.mean_field("tanh", sw, 0.0)
+    law = fp.derivative_law("tanh", m.q_star)
+    assert law.zero_weight == 0.0
+    mpmath.mp.dps = 30
+    s = mpmath.sqrt(m.q_star)
+    want = sw * sw * mpmath.quad(lambda z: mpmath.sech(s * z) ** 4 * mpmath.npdf(z),
+                                 [-mpmath.inf, -2, 0, 2, mpmath.inf])
+    assert m.chi1 == pytest.approx(float(want), rel=1e-12)
+    assert sw * sw * law.moment(1) == pytest.approx(float(want), rel=1e-12)
+    p = predict("tanh", "orthogonal", sw, 0.0, L)
+    assert p.density.atom_at_zero == 0.0
+    assert p.moments.log_m1 == pytest.approx(L * math.log(m.chi1), rel=1e-12)
+
+
+def test_chi1_within_the_critical_band_is_critical():
+    cp = mf.critical_point("tanh", 0.05)
+    near = mf.mean_field("tanh", cp.sigma_w * (1 + 1e-7), 0.05)
+    assert 1e-9 < near.chi1 - 1.0 < mf.CRITICAL_TOL        # once labelled "chaotic"
+    assert near.phase == "critical" and near.xi_c == math.inf
+    assert mf.mean_field("tanh", cp.sigma_w * (1 + 1e-4), 0.05).phase == "chaotic"
+
+
+def test_uniform_weights_are_named_as_asked():
+    from isoscope.cli import _prediction_text
+
+    p = predict("tanh", "uniform", 1.2, 0.05, 4)
+    assert p.weights == "uniform" and p.ensemble == "gaussian"
+    text = _prediction_text(p)
+    assert "uniform weights (predicted as Gaussian: same variance, same infinite-width limit)" in text
+    assert "gaussian weights" not in text
+
+
+def test_terminal_prints_what_json_holds():
+    from isoscope.cli import _prediction_text
+    from isoscope.report import prediction_dict
+
+    p = predict("tanh", "gaussian", 0.3, 0.1, 1000)
+    text, d = _prediction_text(p), prediction_dict(p)
+    assert d["lambda_moments"]["m1"] is None
+    assert d["log_lambda_moments"]["log_m1"] == pytest.approx(p.moments.log_m1)
+    assert "inf" not in text.replace("infinity", "").replace("infinite", "")
+    assert "m1 = null (ln -2429" in text and "support of lambda: [null (ln -1" in text
+
+
+def test_near_isometric_law_is_a_narrow_semicircle():
+    # tanh orthogonal at its critical point for sigma_b = 1e-12, L = 1000: once "density
+    # integrates to 0.987" (exit 2).  Spread sqrt(L Var(d)/E[d]^2) = 2.5e-8.
+    cp = mf.critical_point("tanh", 1e-12)
+    p = predict("tanh", "orthogonal", cp.sigma_w, 1e-12, 1000)
+    assert "near-isometric" in p.density.regime
+    assert p.density.continuous_mass == pytest.approx(1.0, abs=1e-4)
+    law = fp.derivative_law("tanh", cp.q_star)
+    c = 1000 * law.relative_variance()
+    r = 2 * math.sqrt(c)
+    lo, hi = p.density.log_support
+    assert hi - lo == pytest.approx(math.log1p(r) - math.log1p(-r), rel=1e-6)
+
+
+@pytest.mark.parametrize("sb", [1e-8, 1e-9])
+def test_narrow_law_matches_the_large_depth_edges(sb):
+    # small c = L (mu2/mu1^2 - 1): the large-depth law S = exp(-c z) (Pennington et al. 2018)
+    # has edges (1 + m) e^{cm}/m; the semicircle's must agree to O(c) (here < 1e-3 of the width)
+    cp = mf.critical_point("tanh", sb)
+    law = fp.derivative_law("tanh", cp.q_star)
+    c = 1000 * law.relative_variance()
+    assert c < fp.NARROW_SPREAD ** 2
+    d = fp.plain_density(law, "orthogonal", cp.sigma_w, 1000)
+    lo, hi = (math.log(v) for v in fp.plain_limit_edges(c))
+    width = hi - lo
+    shift = 1000 * math.log(cp.sigma_w ** 2 * law.moment(1))   # ln m1 (chi_1 = 1 to 1e-12)
+    np.testing.assert_allclose(np.array(d.log_support) - shift, (lo, hi), atol=1e-3 * width)
+
+
+def test_relative_variance_is_accurate_below_rounding():
+    # mu2/mu1^2 - 1 for tanh at q = 1e-12 is about 8 q^2 = 8e-24 (THEORY.md: tanh variance
+    # ~ 8 L q*^2); the naive difference rounds to 0 in float64.  mpmath at 60 digits.
+    import mpmath
+
+    q = 1e-12
+    law = fp.derivative_law("tanh", q)
+    mpmath.mp.dps = 60
+    s = mpmath.sqrt(q)
+    f = lambda k: mpmath.quad(lambda z: mpmath.sech(s * z) ** (4 * k) * mpmath.npdf(z),  # noqa: E731
+                              [-mpmath.inf, 0, mpmath.inf])
+    want = float(f(2) / f(1) ** 2 - 1)
+    assert law.relative_variance() == pytest.approx(want, rel=1e-6)
+
+
+@pytest.mark.parametrize("depth", [1, 2])
+def test_gelu_small_variance_gaussian_profile_points(depth):
+    # GELU at q* = 0.0039 (sigma_w = 1.2, sigma_b = 0.05): the top quadrature node of phi'^2
+    # carries weight 1e-34, and the Gaussian upper edge is z(top+) (once "no upper edge found",
+    # which dropped the depth profile); at the profile's 120 points
+    p = predict("gelu", "gaussian", 1.2, 0.05, depth, points=120)
+    assert p.density.continuous_mass == pytest.approx(1.0, abs=1e-2)
+    assert p.density.moment(1) == pytest.approx(p.moments.m1, rel=2e-3)
+
+
+def test_solver_limit_exits_1(monkeypatch, capsys):
+    from isoscope import analysis, cli
+    from isoscope.errors import SolverError
+
+    def fail(*a, **k):
+        raise SolverError("solver limit: test")
+
+    monkeypatch.setattr(analysis, "predict_spec", fail)
+    assert cli.main(["predict", "--activation", "tanh", "--sigma-w", "1", "--depth", "3"]) == 1
+    assert "solver limit" in capsys.readouterr().err
+
+
+def test_leaky_slope_reaches_network_mean_field_and_theory():
+    # E[phi'^2] = (1 + a^2)/2 for h symmetric: chi_1 = sigma_w^2 (1 + a^2)/2 (closed form)
+    from isoscope.analysis import analyze, predict_spec
+
+    a, L = 0.2, 8
+    m = mf.mean_field(get_leaky(a), 1.0, 0.0)
+    assert m.chi1 == pytest.approx((1 + a * a) / 2, rel=1e-13)
+    spec = _spec(activation="leaky-relu", leaky_slope=a, width=256, depth=L,
+                 init={"weights": "gaussian", "sigma_w": 1.0}, analysis={"inputs": 3})
+    assert spec.to_dict()["network"]["leaky_slope"] == a
+    p = predict_spec(spec)
+    assert p.slope == a and p.moments.m1 == pytest.approx(((1 + a * a) / 2) ** L, rel=1e-12)
+    res = analyze(spec)
+    measured = res.spectrum.lambda_moment(1)
+    # width 256, depth 8, 3 draws: m1 fluctuates by a few % (Hanin & Nica 2019: ln|Ju|^2 has
+    # variance ~ 5 L/N for ReLU-like layers); the default slope 0.01 would give a ratio 1.37
+    assert measured / p.moments.m1 == pytest.approx(1.0, abs=0.12)
+
+
+def get_leaky(a):
+    from isoscope.activations import get_activation
+
+    return get_activation("leaky-relu", slope=a)
+
+
+def test_leaky_slope_only_with_leaky_relu():
+    from isoscope.errors import InputError
+
+    with pytest.raises(InputError, match="network.leaky_slope.*tanh"):
+        _spec(activation="tanh", leaky_slope=0.2)
+    assert "leaky_slope" not in _spec(activation="tanh").to_dict()["network"]
+    assert _spec(activation="leaky-relu").network.leaky_slope == 0.01

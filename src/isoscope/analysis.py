@@ -20,6 +20,7 @@ import jax.numpy as jnp
 import numpy as np
 
 from isoscope import jacobian as jac
+from isoscope.activations import Activation, get_activation
 from isoscope.errors import InputError, TheoryError
 from isoscope.network import Network, plain_stack, residual_stack
 from isoscope.score import (Agreement, Score, agreement, censored_log_stats, judged_gain,
@@ -30,7 +31,7 @@ from isoscope.theory import mean_field
 from isoscope.theory.predict import Prediction, predict
 
 __all__ = ["Analysis", "DepthProfile", "InputPlan", "analyze", "build_network", "depth_profile",
-           "plan_inputs", "predict_spec", "prediction_for"]
+           "plan_inputs", "predict_spec", "prediction_for", "spec_activation"]
 
 # Relative accuracy of an SVD is about n * eps * s_max: below 10^-(digits) of the largest,
 # small singular values are noise.  Digits usable per dtype (common practice, no source:
@@ -102,13 +103,21 @@ class Analysis:
     seconds: dict[str, float]
 
 
+def spec_activation(spec: Spec) -> Activation:
+    """The spec's activation as one registry object (leaky ReLU with ``network.leaky_slope``)."""
+    n = spec.network
+    return get_activation(n.activation, slope=n.leaky_slope if n.activation == "leaky-relu"
+                          else None)
+
+
 def build_network(spec: Spec) -> Network:
     """The :class:`~isoscope.network.Network` a spec describes."""
     n, i = spec.network, spec.init
+    act = spec_activation(spec)
     if n.family == "residual":
-        return residual_stack(n.width, n.depth, n.activation, weights=i.weights,
+        return residual_stack(n.width, n.depth, act, weights=i.weights,
                               sigma_w=i.sigma_w, sigma_b=i.sigma_b, alpha=n.alpha)
-    return plain_stack(n.width, n.depth, n.activation, weights=i.weights,
+    return plain_stack(n.width, n.depth, act, weights=i.weights,
                        sigma_w=i.sigma_w, sigma_b=i.sigma_b)
 
 
@@ -120,6 +129,14 @@ def plan_inputs(spec: Spec) -> tuple[InputPlan, tuple[str, ...]]:
     every layer sees pre-activations of variance q*.  Residual stacks have no fixed point
     (the length grows with depth); their steady-state inputs are Gaussian of the spec's
     ``input_variance``.
+
+    Positively homogeneous phi (linear, ReLU, leaky ReLU) with q* = 0 (no bias, and either a
+    decaying length, ``sigma_w^2 E[phi(h)^2]/q < 1``, or a marginal one where every q is a fixed
+    point): q* = 0 would feed the zero input (J = 0).  Their Jacobian does not depend on the
+    input's scale (``D^l`` depends only on the signs of ``h^l``), so inputs are
+    ``x = phi(h), h ~ N(0, input_variance)`` (default 1), and ``detail`` says so, with the
+    per-layer factor of the decaying length and, where it applies, the layer at which the
+    forward pass underflows the spec's dtype.
     """
     a = spec.analysis
     if a.input == "file":
@@ -131,21 +148,52 @@ def plan_inputs(spec: Spec) -> tuple[InputPlan, tuple[str, ...]]:
         return (InputPlan("gaussian", a.input_variance,
                           f"x ~ N(0, {a.input_variance:g}): a residual stack has no steady state"),
                 ())
+    act = spec_activation(spec)
     try:
-        q = mean_field.fixed_point(spec.network.activation, spec.init.sigma_w, spec.init.sigma_b)
+        q = mean_field.fixed_point(act, spec.init.sigma_w, spec.init.sigma_b)
     except TheoryError as e:
         msg = (f"no steady state for these settings ({e}); inputs fall back to "
                f"x ~ N(0, {a.input_variance:g})")
         return InputPlan("gaussian", a.input_variance, msg), (msg,)
     v = a.input_variance
-    if q == 0.0 and v > 0 and abs(mean_field.length_map(spec.network.activation, spec.init.sigma_w,
+    if q == 0.0 and v > 0 and _homogeneous(act):
+        return _homogeneous_plan(spec, act, v)
+    if q == 0.0 and v > 0 and abs(mean_field.length_map(act, spec.init.sigma_w,
                                                        spec.init.sigma_b, v) - v) <= 1e-12 * v:
-        # a marginal length map (ReLU at sigma_w^2 = 2, linear at sigma_w = 1, no bias): every
-        # variance is a fixed point, and q* = 0 would feed the constant input phi(0)
+        # a marginal length map: every variance is a fixed point, and q* = 0 would feed the
+        # constant input phi(0)
         return (InputPlan("steady-state", v, f"x = phi(h), h ~ N(0, {v:g}): every variance is a "
                           "fixed point of the length map here, input_variance sets it"), ())
     return (InputPlan("steady-state", q, f"x = phi(h), h ~ N(0, q*) with q* = {q:.6g} "
                       "(fixed point of the length map)"), ())
+
+
+def _homogeneous(act: Activation) -> bool:
+    """phi(t h) = t phi(h) for t > 0: piecewise-constant phi' with its only kink at 0."""
+    return act.derivative_values is not None and all(k == 0.0 for k in act.kinks)
+
+
+def _homogeneous_plan(spec: Spec, act: Activation, v: float) -> tuple[InputPlan, tuple[str, ...]]:
+    """Inputs at ``input_variance`` for a homogeneous phi whose fixed point is q* = 0."""
+    sw = spec.init.sigma_w
+    factor = mean_field.length_map(act, sw, 0.0, v) / v     # sigma_w^2 E[phi(h)^2]/q, q-free
+    detail = (f"x = phi(h), h ~ N(0, {v:g}) (input_variance): the length map's fixed point is "
+              f"q* = 0, which would feed the zero input; {act.label} is positively homogeneous, "
+              "so its Jacobian does not depend on the input's scale")
+    warnings: tuple[str, ...] = ()
+    if abs(factor - 1.0) > 1e-12:
+        detail += f"; the variance changes by {factor:.6g} per layer"
+        tiny = float(np.finfo(np.float64 if spec.analysis.dtype == "float64" else np.float32).tiny)
+        q1 = sw * sw * mean_field.length_map(act, 1.0, 0.0, v)
+        if 0.0 < factor < 1.0 and q1 > 0:
+            layer = 1 + math.log(tiny / q1) / math.log(factor)
+            if layer < spec.network.depth:
+                warnings = (f"the pre-activation variance falls by {factor:.6g} per layer and "
+                            f"leaves the {spec.analysis.dtype} range after about {layer:.0f} of "
+                            f"{spec.network.depth} layers: the measured Jacobian is unreliable "
+                            "beyond (use float64, a smaller depth, or sigma_w closer to the "
+                            "critical value)",)
+    return InputPlan("steady-state", v, detail), warnings
 
 
 def _load_inputs(spec: Spec, dtype) -> np.ndarray:
@@ -200,7 +248,7 @@ def _input_mean_square(spec: Spec, plan: InputPlan) -> float:
     """``|x^0|^2/N`` expected for the plan: ``E[phi(h)^2], h ~ N(0, q)`` for steady-state
     inputs, the variance (or the file's mean square) otherwise."""
     if plan.kind == "steady-state":
-        return mean_field.length_map(spec.network.activation, 1.0, 0.0, plan.variance)
+        return mean_field.length_map(spec_activation(spec), 1.0, 0.0, plan.variance)
     return plan.variance
 
 
@@ -224,8 +272,9 @@ def predict_spec(spec: Spec, plan: InputPlan | None = None, points: int = 400) -
     if plan.kind == "file" and not math.isfinite(plan.variance):
         x = _load_inputs(spec, np.float64)
         plan = dataclasses.replace(plan, variance=float(np.mean(x ** 2)))
-    return predict(n.activation, i.weights, i.sigma_w, i.sigma_b, n.depth, family=n.family,
-                   alpha=n.alpha, input_variance=_input_mean_square(spec, plan), points=points)
+    return predict(spec_activation(spec), i.weights, i.sigma_w, i.sigma_b, n.depth,
+                   family=n.family, alpha=n.alpha,
+                   input_variance=_input_mean_square(spec, plan), points=points)
 
 
 def prediction_for(spec: Spec, plan: InputPlan) -> tuple[Prediction | None, tuple[str, ...]]:
@@ -254,14 +303,14 @@ def depth_profile(spec: Spec, plan: InputPlan, network: Network, params, x) -> D
     s = jac.partial_singular_values(network, params, x, depths)
     m_std, m_m1, p_std, p_m1 = [], [], [], []
     for d, row in zip(depths, s):
-        p = predict(n.activation, i.weights, i.sigma_w, i.sigma_b, int(d), family=n.family,
+        p = predict(spec_activation(spec), i.weights, i.sigma_w, i.sigma_b, int(d), family=n.family,
                     alpha=n.alpha, input_variance=_input_mean_square(spec, plan), points=120)
         sp = from_singular_values(row[1:] if p.mean_mode else row, spec.analysis.dtype)
         m_std.append(sp.log_s_std)
         m_m1.append(math.log(sp.lambda_moment(1)))
         floor = 2.0 * (math.log(sp.threshold) + float(sp.log_s[0, 0]))
         p_std.append(censored_log_stats(p.density, floor)[1] / 2.0)
-        p_m1.append(math.log(p.moments.m1))
+        p_m1.append(p.moments.log_m1)
     m_std, m_m1 = np.array(m_std), np.array(m_m1)
     return DepthProfile(depths, m_std, np.array(p_std), m_m1, np.array(p_m1))
 

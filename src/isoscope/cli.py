@@ -13,7 +13,7 @@ import traceback
 from importlib import resources
 from pathlib import Path
 
-from isoscope.errors import InputError, TheoryError
+from isoscope.errors import InputError, SolverError, TheoryError
 
 __all__ = ["main", "build_parser"]
 
@@ -104,32 +104,66 @@ def _design_from_flags(args):
             base.setdefault(section, {})[key] = given[flag]
     if base["network"].get("family", "plain") != "residual":
         base["network"].pop("alpha", None)
+    if "activation" in given:   # a spec's leaky_slope does not carry over to another activation
+        from isoscope.activations import get_activation
+        if get_activation(given["activation"]).name != "leaky-relu":
+            base["network"].pop("leaky_slope", None)
     return parse_spec(base, source=source)
 
 
 def _fmt(v) -> str:
-    return "inf" if v == float("inf") else ("-" if v is None else f"{v:.6g}")
+    """A number as the JSON has it: ``null`` where JSON writes null (None, NaN, +-inf)."""
+    import math
+    if v is None or not math.isfinite(v):
+        return "null"
+    return f"{v:.6g}"
+
+
+def _lam(value, log_value) -> str:
+    """A lambda-scale number with its natural log: ``0.25 (ln -1.386)``, or ``null (ln -2430)``
+    when the value itself is outside float64 (JSON null) but its log is known."""
+    import math
+    if log_value == -math.inf:
+        return "0"
+    if log_value is None or not math.isfinite(log_value):
+        return _fmt(value)
+    return f"{_fmt(value)} (ln {log_value:.6g})"
 
 
 def _prediction_text(p) -> str:
+    """The terminal form of :func:`isoscope.report.prediction_dict`: every number is printed as
+    the JSON holds it (``null`` for null, never ``inf``), lambda-scale numbers with their logs."""
+    import math
     mf, m, d = p.mean_field, p.moments, p.density
-    lines = [f"prediction for a {p.family} stack: {p.activation}, {p.weights} weights, depth {p.depth}, "
-             f"sigma_w = {p.sigma_w:.6g} (sigma_w^2 = {p.sigma_w ** 2:.6g}), sigma_b = {p.sigma_b:.6g} "
-             f"(sigma_b^2 = {p.sigma_b ** 2:.6g})" + (f", alpha = {p.alpha:g}" if p.family == "residual" else "")]
+    act = p.activation + (f" (slope {p.slope:g})" if p.slope is not None else "")
+    weights = (f"{p.weights} weights (predicted as Gaussian: same variance, same infinite-width "
+               "limit)" if p.weights == "uniform" else f"{p.weights} weights")
+    lines = [f"prediction for a {p.family} stack: {act}, {weights}, depth {p.depth}, "
+             f"sigma_w = {p.sigma_w:.6g} (sigma_w^2 = {_fmt(p.sigma_w ** 2 if p.sigma_w < 1e150 else None)}), "
+             f"sigma_b = {p.sigma_b:.6g} (sigma_b^2 = {_fmt(p.sigma_b ** 2 if p.sigma_b < 1e150 else None)})"
+             + (f", alpha = {p.alpha:g}" if p.family == "residual" else "")]
     lines.append(f"assumes: {p.regime}")
     if mf is not None:
+        at = ("" if p.q_law == mf.q_star or p.q_law != p.q_law else
+              f"; the law of phi'(h)^2 is taken at q = {_fmt(p.q_law)}")
         lines.append(f"mean field: q* = {_fmt(mf.q_star)}, chi_1 = {mf.chi1:.10g} ({mf.phase}), "
-                     f"xi_q = {_fmt(mf.xi_q)}, xi_c = {_fmt(mf.xi_c)}, c* = {_fmt(mf.c_star)}")
+                     f"xi_q = {_fmt(mf.xi_q)}, xi_c = {_fmt(mf.xi_c)}, c* = {_fmt(mf.c_star)}{at}")
+        if math.isfinite(p.length_factor) and p.length_factor != 1.0:
+            lines.append(f"length: the pre-activation variance changes by {p.length_factor:.6g} "
+                         f"per layer, q^1 = {_fmt(p.q_layers[0])}, q^L = {_fmt(p.q_layers[-1])}")
     elif p.family == "residual":
         lines.append(f"residual law: tau = {_fmt(p.tau)} (q^1 = {_fmt(p.q_layers[0])}, "
                      f"q^L = {_fmt(p.q_layers[-1])})")
-    nvar = m.m2 / m.m1 ** 2 - 1.0 if m.m1 > 0 else float("nan")
-    lines.append(f"lambda = s^2 moments: m1 = {_fmt(m.m1)}, m2 = {_fmt(m.m2)}, m3 = {_fmt(m.m3)}, "
-                 f"m4 = {_fmt(m.m4)}; m2/m1^2 - 1 = {_fmt(nvar)}")
+    nvar = math.expm1(m.log_m2 - 2.0 * m.log_m1) if m.log_m1 > -math.inf else None
+    lines.append("lambda = s^2 moments: " + ", ".join(
+        f"m{k} = {_lam(v, lv)}" for k, (v, lv) in enumerate(zip(m[:4], m.logs), 1))
+        + f"; m2/m1^2 - 1 = {_fmt(nvar)}")
     lines.append(f"ln s over the non-zero part: mean {_fmt(p.log_s_mean)}, std {_fmt(p.log_s_std)}")
-    lines.append(f"support of lambda: [{_fmt(d.support[0])}, {_fmt(d.support[1])}]; "
+    (lo, hi), (llo, lhi) = d.support, d.log_support
+    lines.append(f"support of lambda: [{_lam(lo, llo)}, {_lam(hi, lhi)}]; "
                  f"atom at zero: {_fmt(d.atom_at_zero)}"
-                 + "".join(f"; atom at {_fmt(a)} of weight {_fmt(w)}" for a, w in d.atoms if a > 0))
+                 + "".join(f"; atom at {_lam(a, la)} of weight {_fmt(w)}"
+                           for (a, w), (la, _) in zip(d.atoms, d.log_atoms) if la > -math.inf))
     lines += [f"! {n}" for n in p.notes]
     return "\n".join(lines)
 
@@ -270,6 +304,9 @@ def main(argv: list[str] | None = None) -> int:
     args = parser.parse_args(argv)
     try:
         return args.run(args)
+    except SolverError as e:   # a solver limit, not bad input
+        print(f"isoscope {args.command}: error: {e}", file=sys.stderr)
+        return 1
     except (InputError, TheoryError) as e:
         print(f"isoscope {args.command}: error: {e}", file=sys.stderr)
         return 2

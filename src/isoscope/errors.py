@@ -3,12 +3,15 @@
 An :class:`InputError` says what was received, what was expected and what to do; the
 command line turns it into exit code 2.  A :class:`TheoryError` marks a theory request that
 has no answer (no critical point, no fixed point, a solve that did not converge): isoscope
-raises it rather than return a number it cannot stand behind.
+raises it rather than return a number it cannot stand behind.  Its subclass
+:class:`SolverError` marks the limit of a numerical method (a root finder or a continuation
+that did not converge, a density whose mass check failed): not bad input, so the command line
+exits 1 for it, with the statement of the limit and no traceback.
 """
 
 from __future__ import annotations
 
-__all__ = ["InputError", "TheoryError", "IsoscopeWarning", "FiniteWidthWarning",
+__all__ = ["InputError", "TheoryError", "SolverError", "IsoscopeWarning", "FiniteWidthWarning",
            "NumericalFaultWarning"]
 
 
@@ -46,6 +49,11 @@ class InputError(ValueError):
 
 class TheoryError(ValueError):
     """A theory request with no trustworthy answer (message says why and what to try)."""
+
+
+class SolverError(TheoryError):
+    """A numerical method reached its limit (no convergence, a failed mass check): the design
+    is valid, the solver could not answer it.  The message states the limit."""
 
 
 class IsoscopeWarning(UserWarning):

@@ -6,7 +6,7 @@ Jacobian module needs (one layer's function, a trace of pre-activations).
 
 Built-in stacks keep their parameters stacked along a leading layer axis
 (``W: (L, N, N)``, ``b: (L, N)``) and run the layers through ``jax.lax.scan``, so compile
-time does not grow with depth.  The forward functions are cached per (family, activation):
+time does not grow with depth.  The forward functions are cached per (family, activation object; a leaky ReLU per slope):
 two networks of the same family and activation share one function object, and so one
 compiled Jacobian per input shape; new parameters or new sigma values never recompile.
 The residual branch scale alpha is a parameter leaf for the same reason.
@@ -116,9 +116,10 @@ def _layer_fns(family: str, phi: Callable) -> tuple[Callable, Callable]:
 
 
 @functools.lru_cache(maxsize=None)
-def _forward(family: str, activation: str):
-    """Cached ``(layer, apply, trace)`` for a family and activation (one object per key)."""
-    phi = get_activation(activation).fn
+def _forward(family: str, activation: Activation):
+    """Cached ``(layer, apply, trace)`` for a family and activation (one object per key; the
+    registry returns one Activation per leaky slope, so slopes never share a function)."""
+    phi = activation.fn
     layer, output = _layer_fns(family, phi)
 
     def step(x, p):
@@ -143,7 +144,7 @@ def _stack(family: str, width: int, depth: int, activation: str | Activation, we
     act = get_activation(activation)
     w_init = get_initializer(weights, sigma_w)
     b_init = gaussian_bias(sigma_b)
-    layer, apply, trace = _forward(family, act.name)
+    layer, apply, trace = _forward(family, act)
 
     def init(key: jax.Array, dtype=jnp.float64) -> Params:
         kw, kb = jax.random.split(key)

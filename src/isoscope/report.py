@@ -123,24 +123,38 @@ def prediction_dict(p) -> dict[str, Any]:
 
     Scales are given with their squares (``sigma_w`` and ``sigma_w2``); the mean-field numbers
     sit at the top level (``q_star, chi, xi_q, xi_c, c_star``; null for residual stacks).
+    ``lambda_moments`` holds m1..m4 (null outside float64) and ``log_lambda_moments`` their
+    natural logs ``log_m1..log_m4`` (finite whenever the moment is positive);
+    ``log_support`` and the atoms' ``log_lambda`` are the log forms of ``support`` and the
+    atoms' ``lambda``.  ``weights`` is the ensemble asked for, ``ensemble`` the one the theory
+    used (uniform is predicted as Gaussian); ``leaky_slope`` is present for leaky ReLU.
     """
     mf, d = p.mean_field, p.density
+    square = lambda v: v * v if abs(v) < 1e150 else None  # noqa: E731
+    extra = {"leaky_slope": p.slope} if p.slope is not None else {}
     return {
-        "family": p.family, "activation": p.activation, "weights": p.weights,
-        "sigma_w": p.sigma_w, "sigma_w2": p.sigma_w ** 2, "sigma_b": p.sigma_b,
-        "sigma_b2": p.sigma_b ** 2, "depth": p.depth,
+        "family": p.family, "activation": p.activation, **extra, "weights": p.weights,
+        "ensemble": p.ensemble,
+        "sigma_w": p.sigma_w, "sigma_w2": square(p.sigma_w), "sigma_b": p.sigma_b,
+        "sigma_b2": square(p.sigma_b), "depth": p.depth,
         "alpha": p.alpha if p.family == "residual" else None,
         "regime": p.regime,
         "q_star": mf.q_star if mf else None, "chi": mf.chi1 if mf else None,
         "xi_q": mf.xi_q if mf else None, "xi_c": mf.xi_c if mf else None,
         "c_star": mf.c_star if mf else None, "phase": mf.phase if mf else None,
         "q_law": p.q_law, "tau": p.tau, "q_layers": p.q_layers,
-        "lambda_moments": p.moments._asdict(),
+        "lambda_moments": {f"m{k}": v for k, v in enumerate(p.moments[:4], 1)},
+        "log_lambda_moments": {f"log_m{k}": v for k, v in enumerate(p.moments.logs, 1)},
         "log_s": {"mean": p.log_s_mean, "std": p.log_s_std},
         "atom_at_zero": d.atom_at_zero,
-        "atoms": [{"lambda": a, "weight": w} for a, w in d.atoms],
+        "atoms": [{"lambda": a, "log_lambda": la, "weight": w}
+                  for (a, w), (la, _) in zip(d.atoms, d.log_atoms)],
         "support": list(d.support),
+        "log_support": list(d.log_support),
+        "in_float_range": d.in_float_range,
         "length_mode_s": p.length_mode_s,
+        "log_length_mode_s": p.log_length_mode_s,
+        "length_factor": p.length_factor,
         "mean_mode": p.mean_mode,
         "density": {"x": d.x, "rho": d.rho, "log_x": d.log_x, "rho_log": d.rho_log},
         "notes": list(p.notes),

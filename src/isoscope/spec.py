@@ -9,6 +9,7 @@ A spec describes one design to analyse::
     depth = 200
     activation = "tanh"
     alpha = 1.0               # residual branch scale (residual only)
+    leaky_slope = 0.01        # slope a of max(h, a h) (activation = "leaky-relu" only)
     [init]
     weights = "orthogonal"    # orthogonal | gaussian | uniform
     sigma_w = 1.01            # scales, not variances
@@ -53,6 +54,7 @@ class NetworkSpec:
     depth: int = 32
     activation: str = "tanh"
     alpha: float = 1.0
+    leaky_slope: float = 0.01
 
 
 @dataclasses.dataclass(frozen=True)
@@ -95,6 +97,8 @@ class Spec:
         d.pop("source")
         if self.network.family != "residual":
             d["network"].pop("alpha")
+        if self.network.activation != "leaky-relu":
+            d["network"].pop("leaky_slope")
         if d["analysis"]["input_file"] is None:
             d["analysis"].pop("input_file")
         return d
@@ -131,6 +135,14 @@ def _float(source, key, v, minimum=0.0):
                    f"a finite number >= {minimum:g}",
                    "sigma_w and sigma_b are scales (standard deviations), never negative")
     return v
+
+
+def _slope(source, v):
+    """``network.leaky_slope``: any finite real a of ``max(h, a h)``-style ``h > 0 ? h : a h``."""
+    if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(float(v)):
+        raise _err(source, "network.leaky_slope", f"value {v!r} is not a finite number",
+                   "a finite real slope a (phi(h) = h for h > 0, a h for h < 0; default 0.01)")
+    return float(v)
 
 
 def _choice(source, key, v, allowed, canonical=None):
@@ -184,7 +196,13 @@ def parse_spec(data: dict[str, Any], source: str | None = None) -> Spec:
         activation=_choice(source, "network.activation", net.get("activation", d_net.activation),
                            activation_names(), canonical=lambda n: get_activation(n).name),
         alpha=_float(source, "network.alpha", net.get("alpha", d_net.alpha), -math.inf),
+        leaky_slope=_slope(source, net.get("leaky_slope", d_net.leaky_slope)),
     )
+    if "leaky_slope" in net and network.activation != "leaky-relu":
+        raise _err(source, "network.leaky_slope",
+                   f"leaky_slope is set but the activation is {network.activation!r}",
+                   "leaky_slope only with activation = \"leaky-relu\"",
+                   "remove leaky_slope or set activation = \"leaky-relu\"")
     if family != "residual" and "alpha" in net:
         raise _err(source, "network.alpha", "alpha is set but the family is not residual",
                    "alpha only with family = \"residual\"", "remove alpha or set family = \"residual\"")

@@ -42,11 +42,13 @@ import numpy as np
 from scipy import special
 
 from isoscope.activations import Activation, get_activation
-from isoscope.errors import TheoryError
+from isoscope.errors import SolverError, TheoryError
+from isoscope.theory.mean_field import _SOFT_BREAKS
 from isoscope.theory.quadrature import normal_rule
 
 __all__ = [
-    "WEIGHT_KINDS", "DerivativeLaw", "derivative_law", "LambdaMoments", "plain_moments",
+    "WEIGHT_KINDS", "DerivativeLaw", "derivative_law", "LambdaMoments", "moments_from_logs",
+    "plain_moments", "NARROW_SPREAD",
     "Density", "plain_density", "residual_tau", "residual_moments", "residual_edges",
     "residual_density", "plain_limit_edges",
 ]
@@ -75,6 +77,18 @@ MAX_CHANGE = 1.0
 # Largest change of a logarithm in one step even on a pure power law (keeps exp() finite).
 MAX_LOG_STEP = 100.0
 _EPS = float(np.finfo(float).eps)
+_LOG_TINY = math.log(float(np.finfo(float).tiny))   # ln of the smallest normal float64, -708.4
+_LOG_HUGE = math.log(float(np.finfo(float).max))    # 709.78
+# Near-isometric limit: when the predicted relative spread of lambda, r = sqrt(m2/m1^2 - 1), is
+# below NARROW_SPREAD, plain_density returns the semicircle of the predicted m1, m2 (see
+# _narrow_density).  Why 1e-3: the continuation stops at y = ETA lambda, which leaves a smeared
+# density ~ ETA/(pi delta^2) at a distance delta below the law; for r below about 1e-2 that
+# exceeds the support threshold and the solved lower edge comes out several times too low
+# (measured: tanh orthogonal, L = 1000, r = 1.7e-3: ln lambda_- = -0.0134 against -0.0035), and
+# below r ~ 1e-6 the mass check fails.  The semicircle's error is of relative order r: at r =
+# 1.7e-3 its edges are within 5e-6 of those of the large-depth law S = exp(-c z) (0.07 % of the
+# width), the check value of tests/test_free_probability.py.
+NARROW_SPREAD = 1e-3
 _LENGTH_SHARE = 0.1
 
 
@@ -95,8 +109,10 @@ class DerivativeLaw:
       q: variance of the pre-activation.
       values: the positive values of d, increasing (shape ``(n,)``).
       weights: their probabilities (shape ``(n,)``).
-      zero_weight: ``P(d = 0)`` (ReLU 1/2, hard-tanh ``erfc(1/sqrt(2q))``).
+      zero_weight: ``P(d = 0)`` (ReLU 1/2, hard-tanh ``erfc(1/sqrt(2q))``); always 0 for a
+        smooth phi (only piecewise-constant phi' have atoms).
       exact: True when the points are exact atoms (phi' piecewise constant).
+      log_values: ``ln d`` of the values, from the registry's tail-accurate ``ln phi'^2``.
     """
 
     activation: str
@@ -105,6 +121,28 @@ class DerivativeLaw:
     weights: np.ndarray
     zero_weight: float
     exact: bool
+    log_values: np.ndarray
+
+    @property
+    def log_mu1(self) -> float:
+        """``ln mu_1 = ln E[d]``, formed from the log values (finite for any positive law)."""
+        if self.values.size == 0:
+            return -math.inf
+        top = float(self.log_values.max())
+        return top + math.log(float(np.dot(self.weights, np.exp(self.log_values - top))))
+
+    def relative_variance(self) -> float:
+        """``Var(d)/E[d]^2 = mu_2/mu_1^2 - 1`` (over the whole law, zeros included), formed
+        without the cancellation of ``mu_2/mu_1^2 - 1``: with ``e_i = d_i/mu_1 - 1`` computed
+        as ``expm1(ln d_i - ln mu_1)`` and ``ln mu_1 = log1p(sum_i w_i expm1(ln d_i))``, it is
+        ``sum_i w_i e_i^2 + P(d = 0)``.  Accurate even when it is below 1e-16 (a near-isometric
+        law, where ``mu_2/mu_1^2`` rounds to 1)."""
+        if self.values.size == 0:
+            return math.nan
+        pos = self.positive_weight
+        log_mu1 = math.log1p(float(np.dot(self.weights, np.expm1(self.log_values))) - (1.0 - pos))
+        e = np.expm1(self.log_values - log_mu1)
+        return float(np.dot(self.weights, e * e)) + self.zero_weight
 
     @property
     def positive_weight(self) -> float:
@@ -227,18 +265,21 @@ def _piece_probability(a: float, b: float, s: float) -> float:
     return 0.5 * (special.erf(b / r2) + special.erf(-a / r2))
 
 
-def _grouped(values: np.ndarray, weights: np.ndarray, exact: bool, name: str, q: float) -> DerivativeLaw:
+def _grouped(log_values: np.ndarray, weights: np.ndarray, exact: bool, name: str,
+             q: float) -> DerivativeLaw:
+    """Merge equal values of ``ln d`` (``-inf`` for d = 0) into one point each."""
     keep = weights > 0
-    values, weights = values[keep], weights[keep]
+    log_values, weights = log_values[keep], weights[keep]
     weights = weights / weights.sum()
-    uniq, inv = np.unique(values, return_inverse=True)
+    uniq, inv = np.unique(log_values, return_inverse=True)
     w = np.bincount(inv, weights=weights)
-    zero = float(w[uniq == 0.0].sum())
-    pos = uniq > 0
-    vals, ws = uniq[pos].copy(), w[pos].copy()
-    vals.setflags(write=False)
-    ws.setflags(write=False)
-    return DerivativeLaw(name, q, vals, ws, zero, exact)
+    zero = float(w[np.isneginf(uniq)].sum())
+    pos = np.isfinite(uniq)
+    logs, ws = uniq[pos].copy(), w[pos].copy()
+    vals = np.exp(logs)
+    for a in (vals, ws, logs):
+        a.setflags(write=False)
+    return DerivativeLaw(name, q, vals, ws, zero, exact, logs)
 
 
 def derivative_law(activation: str | Activation, q: float) -> DerivativeLaw:
@@ -251,6 +292,13 @@ def derivative_law(activation: str | Activation, q: float) -> DerivativeLaw:
     :func:`isoscope.theory.quadrature.normal_rule` (split at the kinks), which makes every
     moment accurate to about 1e-15; exactly equal values (a linear piece, e.g. SELU for
     h > 0) merge into one atom.  At q = 0 the law is a point mass at ``phi'(0)^2``.
+
+    ``d`` comes from the registry's ``ln phi'(h)^2``
+    (:meth:`~isoscope.activations.Activation.log_dphi_sq`), which keeps its relative accuracy
+    in the tails: ``jax.grad`` of tanh is exactly 0 for ``|h| > 19`` and would put a spurious
+    atom at d = 0.  Only activations declared piecewise constant (``derivative_values``) have
+    atoms; a smooth phi whose ``phi'^2`` falls below the float64 range (1e-308, far in the
+    tails at very large q) is held at the smallest normal float there, never at 0.
 
     Args:
       activation: registry name or :class:`Activation`.
@@ -268,12 +316,13 @@ def derivative_law(activation: str | Activation, q: float) -> DerivativeLaw:
     act = get_activation(activation)
     q = _check_q(q)
     _, dphi = act.numpy_pair()
+    log_d = act.numpy_log_dphi_sq()
     if q == 0.0:
         if any(k == 0.0 for k in act.kinks):
             raise TheoryError(f"q = 0 with {act.name}: phi' jumps at h = 0, so phi'(0)^2 is not "
-                              "defined; pass a positive variance q")
-        d0 = float(dphi(np.zeros(1))[0]) ** 2
-        return _grouped(np.array([d0]), np.array([1.0]), True, act.name, q)
+                              "defined; the law of phi'(h)^2 is that of any q > 0 when phi is "
+                              "positively homogeneous (linear, ReLU, leaky ReLU): take q = 1")
+        return _grouped(log_d(np.zeros(1)), np.array([1.0]), True, act.name, q)
     s = math.sqrt(q)
     if act.derivative_values is not None:
         cuts = [-math.inf, *sorted(act.kinks), math.inf]
@@ -287,12 +336,15 @@ def derivative_law(activation: str | Activation, q: float) -> DerivativeLaw:
                 mid = a + 1.0
             else:
                 mid = 0.5 * (a + b)
-            vals.append(float(dphi(np.array([mid]))[0]) ** 2)
+            vals.append(2.0 * math.log(abs(float(dphi(np.array([mid]))[0])))
+                        if float(dphi(np.array([mid]))[0]) != 0.0 else -math.inf)
             ws.append(_piece_probability(a, b, s))
         return _grouped(np.array(vals), np.array(ws), True, act.name, q)
-    z, w = normal_rule([k / s for k in act.kinks])
-    d = np.asarray(dphi(s * z), dtype=float) ** 2
-    return _grouped(d, w, False, act.name, q)
+    # the same breaks as the mean-field rules (kinks and the soft breaks in h), so that
+    # sigma_w^2 E[d] is chi_1 of isoscope.theory.mean_field to rounding
+    z, w = normal_rule([k / s for k in (*act.kinks, *_SOFT_BREAKS)])
+    logs = np.maximum(np.asarray(log_d(s * z), dtype=float), _LOG_TINY)
+    return _grouped(logs, w, False, act.name, q)
 
 
 # ----------------------------------------------------------------------------------------
@@ -300,12 +352,40 @@ def derivative_law(activation: str | Activation, q: float) -> DerivativeLaw:
 # ----------------------------------------------------------------------------------------
 
 class LambdaMoments(NamedTuple):
-    """Moments ``m_k = tr (J J^T)^k`` (N -> infinity), k = 1..4."""
+    """Moments ``m_k = tr (J J^T)^k`` (N -> infinity), k = 1..4, and their natural logarithms.
 
-    m1: float
-    m2: float
-    m3: float
-    m4: float
+    The theory is carried in logs: ``log_mk = ln m_k`` is finite whenever m_k > 0, however far
+    outside float64 the moment itself lies (tanh at sigma_w = 0.3 and depth 1000 has
+    ``ln m1 = -2430``).  ``m_k`` is the float when ``ln m_k`` lies in the normal float64 range
+    [-708.39, 709.78], else ``None`` (JSON null; :func:`unrepresentable` names them); a law
+    with no positive part has ``m_k = 0.0`` and ``log_mk = -inf``.
+    """
+
+    m1: float | None
+    m2: float | None
+    m3: float | None
+    m4: float | None
+    log_m1: float
+    log_m2: float
+    log_m3: float
+    log_m4: float
+
+    @property
+    def logs(self) -> tuple[float, float, float, float]:
+        """``(ln m1, ln m2, ln m3, ln m4)``."""
+        return self.log_m1, self.log_m2, self.log_m3, self.log_m4
+
+    def unrepresentable(self) -> tuple[str, ...]:
+        """Names of the moments that are ``None`` (outside the float64 range)."""
+        return tuple(f"m{k}" for k, m in enumerate(self[:4], 1) if m is None)
+
+
+def moments_from_logs(logs: Sequence[float]) -> LambdaMoments:
+    """:class:`LambdaMoments` from ``ln m1 .. ln m4`` (``-inf`` for a zero moment)."""
+    logs = [float(x) for x in logs]
+    vals = [0.0 if x == -math.inf else (math.exp(x) if _LOG_TINY <= x <= _LOG_HUGE else None)
+            for x in logs]
+    return LambdaMoments(*vals, *logs)
 
 
 _ORDER = 5  # series kept to z^4: enough for m_4
@@ -364,16 +444,19 @@ def _inverse_s_series(law: DerivativeLaw, kind: str) -> tuple[float, np.ndarray]
     ``S_{D^2}(z) = (1+z) chi(z)/z`` with chi the compositional inverse of
     ``psi(z) = sum_k mu_k z^k``; the Gaussian factor contributes ``(1 + z)``.
     """
-    mu = np.array(law.mu)
+    # psi(z/mu1) = sum_k (mu_k/mu_1^k) z^k, so that its inverse starts at z; the ratios are
+    # formed in logs (E[exp(k (ln d - ln mu1))]), so a tiny mu1 (saturated phi) cannot overflow
+    log_mu1 = law.log_mu1
     psi = np.zeros(_ORDER)
-    psi[1:] = mu / mu[0] ** np.arange(1, 5)       # psi(z/mu1), so that its inverse starts at z
+    psi[1:] = [float(np.dot(law.weights, np.exp(k * (law.log_values - log_mu1))))
+               for k in (1, 2, 3, 4)]
     chi = _srevert(psi)                            # chi(z) = mu1 * psi^{-1}(z)
     chi_over_z = chi[1:]                           # starts with 1
     inv_s = _sinv(np.append(chi_over_z, 0.0))      # z/chi(z), normalised
     inv_s = _smul(inv_s, _sinv(np.array([1.0, 1.0, 0, 0, 0])))  # / (1 + z)
     if kind == "gaussian":
         inv_s = _smul(inv_s, np.array([1.0, 1.0, 0, 0, 0]))
-    return math.log(mu[0]), inv_s
+    return log_mu1, inv_s
 
 
 def _lagrange_moments(log_scale: float, log_t: np.ndarray) -> LambdaMoments:
@@ -388,9 +471,8 @@ def _lagrange_moments(log_scale: float, log_t: np.ndarray) -> LambdaMoments:
         series = _sexp(k * log_t)
         for _ in range(k):
             series = _smul(series, one_plus)
-        log_m = k * log_scale + math.log(series[k - 1] / k)
-        out.append(math.exp(log_m) if log_m < 709.78 else math.inf)
-    return LambdaMoments(*out)
+        out.append(k * log_scale + math.log(series[k - 1] / k))
+    return moments_from_logs(out)
 
 
 def plain_moments(law: DerivativeLaw, weights: str, sigma_w: float, depth: int) -> LambdaMoments:
@@ -410,7 +492,8 @@ def plain_moments(law: DerivativeLaw, weights: str, sigma_w: float, depth: int) 
       depth: number of layers L >= 1.
 
     Returns:
-      :class:`LambdaMoments` (``inf`` where ``m_k`` overflows float64).
+      :class:`LambdaMoments`: ``log_m1 = L ln chi_1`` exactly, the other logs from the series;
+      ``m_k`` is ``None`` where it lies outside float64.
 
     References:
       Pennington, Schoenholz, Ganguli 2017 (NeurIPS), sec. 2.3 (moments by Lagrange
@@ -418,7 +501,7 @@ def plain_moments(law: DerivativeLaw, weights: str, sigma_w: float, depth: int) 
     """
     kind, sigma, depth = _check_stack(law, weights, sigma_w, depth)
     if law.positive_weight <= 0:
-        return LambdaMoments(0.0, 0.0, 0.0, 0.0)
+        return moments_from_logs([-math.inf] * 4)
     log_mu1, t = _inverse_s_series(law, kind)
     log_chi1 = 2.0 * math.log(sigma) + log_mu1
     return _lagrange_moments(depth * log_chi1, depth * _slog(t))
@@ -694,6 +777,13 @@ class Density:
         continuous part, the hull of its nonzero atoms.
       intervals: the support intervals ``((lo, hi), ...)`` of the continuous part.
       regime: the assumptions under which the law holds.
+      log_support: ``(ln lo, ln hi)`` of ``support``, finite where lambda itself leaves the
+        float64 range (``support`` then holds NaN there, JSON null: read ``log_support``).
+      log_atoms: the atoms as ``(ln location, weight)``, ``-inf`` for the atom at zero
+        (``atoms`` holds ``exp`` of these, which is 0.0 or inf outside float64).
+
+    Everything in lambda (x, rho, support, intervals, atoms) is derived from the log form;
+    :attr:`in_float_range` says whether it is faithful.
     """
 
     x: np.ndarray
@@ -705,6 +795,29 @@ class Density:
     support: tuple[float, float]
     intervals: tuple[tuple[float, float], ...]
     regime: str
+    log_support: tuple[float, float] | None = None
+    log_atoms: tuple[tuple[float, float], ...] | None = None
+
+    def __post_init__(self):
+        if self.log_support is None:
+            with np.errstate(divide="ignore"):
+                object.__setattr__(self, "log_support", tuple(
+                    math.log(v) if v > 0 else -math.inf for v in self.support))
+        if self.log_atoms is None:
+            object.__setattr__(self, "log_atoms", tuple(
+                (math.log(a) if a > 0 else -math.inf, w) for a, w in self.atoms))
+
+    @property
+    def in_float_range(self) -> bool:
+        """True when every grid point, support edge and non-zero atom of lambda (and rho on the
+        grid) is a normal float64: the lambda-form fields are then faithful."""
+        logs = [*self.log_support, *(la for la, _ in self.log_atoms)]
+        logs = [v for v in logs if v == v]
+        logs = [v for v in logs if v != -math.inf]
+        if self.log_x.size:
+            logs += [float(self.log_x.min()), float(self.log_x.max())]
+        ok = all(_LOG_TINY <= v <= _LOG_HUGE for v in logs)
+        return ok and bool(np.all(np.isfinite(self.rho)))
 
     @property
     def continuous_mass(self) -> float:
@@ -770,19 +883,23 @@ def _plain_upper_edge(law, kind, sigma, depth) -> tuple[float, bool]:
     """``(ln lambda_+, exact)``: the first critical point of the inverse map met from infinity.
 
     Along the real axis above the spectrum, ``z(w)`` decreases with w from infinity; the edge is
-    the largest w > max(d) with ``dz/dw = 0``.  Without one (orthogonal, heavy top atom of d)
-    the spectrum ends at ``(sigma_w^2 max d)^L``, returned with ``exact = False``.
+    the largest w > max(d) with ``dz/dw = 0``.  Without one the spectrum ends where w reaches
+    max d: ``(sigma_w^2 max d)^L`` for orthogonal weights (a heavy top atom of d), ``z(max d+)``
+    for Gaussian weights (a law of d that thins out at its top); ``exact = False`` then.
     """
     from scipy import optimize
 
     top = float(law.values[-1])
     t = np.linspace(30.0, -36.0, 331)          # w = top (1 + e^t)
-    _, g = _plain_log_z_real(law, kind, sigma, depth, top * (1.0 + np.exp(t)))
+    lz_scan, g = _plain_log_z_real(law, kind, sigma, depth, top * (1.0 + np.exp(t)))
     neg = np.flatnonzero(g < 0)
     if neg.size == 0 or neg[0] == 0:
         if kind == "gaussian":
-            raise TheoryError("no upper edge found for the Gaussian-weight spectrum (the inverse "
-                              "map has no critical point); check sigma_w and the law of phi'^2")
+            # z(w) is monotone down to w = top: M_{D^2} stays bounded there (the law of d thins
+            # out at its top, as the quadrature nodes of a smooth phi' do when the maximum of
+            # phi'^2 lies beyond the nodes that carry weight: GELU at small q*), so the
+            # spectrum ends at z(top+), the last point of the scan
+            return float(lz_scan[-1]), False
         return depth * (2.0 * math.log(sigma) + math.log(top)), False
     a, b = t[neg[0]], t[neg[0] - 1]
 
@@ -795,13 +912,14 @@ def _plain_upper_edge(law, kind, sigma, depth) -> tuple[float, bool]:
 
 
 @functools.lru_cache(maxsize=None)
-def _second_derivative(name: str):
+def _log_d_slope(act: Activation):
+    """NumPy callable ``d/dh ln phi'(h)^2 = 2 phi''/phi'`` by ``jax.grad`` of the registry's
+    tail-accurate ``ln phi'^2`` (finite where phi' itself underflows)."""
     import jax
     import jax.numpy as jnp
 
-    act = get_activation(name)
-    d2 = jax.jit(jax.vmap(jax.grad(jax.grad(lambda t: act.fn(t)))))
-    return lambda h: np.asarray(d2(jnp.asarray(h, dtype=jnp.float64)))
+    slope = jax.jit(jax.vmap(jax.grad(lambda t: act.log_dphi_sq(t))))
+    return lambda h: np.asarray(slope(jnp.asarray(h, dtype=jnp.float64)))
 
 
 class _Pushforward:
@@ -809,9 +927,10 @@ class _Pushforward:
 
     With ``J J^T = sigma_w^2 D^2`` exactly, the spectrum is the law of ``sigma_w^2 d``; its
     density in ``t = ln d`` is ``sum over roots h of ln d(h) = t of phi_q(h) / |d ln d / dh|``.
-    ``ln d`` is sampled on a fine grid of h and cut into monotone pieces at its turning points
-    (zeros of phi'', refined by Brent's method so that the extreme values -- the support
-    edges -- are exact), at the kinks and at zeros of phi'.  Neighbouring pieces share their
+    ``ln d`` (the registry's tail-accurate ``ln phi'^2``, with its slope by ``jax.grad``) is
+    sampled on a fine grid of h and cut into monotone pieces at its turning points (zeros of
+    the slope, refined by Brent's method so that the extreme values -- the support edges -- are
+    exact), at the kinks and at zeros of phi'.  Neighbouring pieces share their
     turning point, so no sliver of h is lost there (at a maximum of d the density has an
     integrable ``1/sqrt`` singularity and the mass near it is not small).  A root is found by
     Newton's method safeguarded by bisection inside its sample cell.  Pieces where d is
@@ -821,15 +940,18 @@ class _Pushforward:
     def __init__(self, act: Activation, q: float, sigma: float):
         from scipy import optimize
 
-        _, self.dphi = act.numpy_pair()
-        self.d2phi = _second_derivative(act.name)
+        _, dphi = act.numpy_pair()
+        self.logd = act.numpy_log_dphi_sq()
+        self.slope = _log_d_slope(act)
         self.q, self.log_s2 = q, 2.0 * math.log(sigma)
         sq = math.sqrt(q)
         kinks = [k for k in act.kinks if abs(k) < 12.0 * sq]
         h = np.union1d(np.linspace(-12.0 * sq, 12.0 * sq, 6001), kinks)
-        p1 = self.dphi(h)
-        p2 = self.d2phi(h)
-        # turning points of ln d: phi'' changes sign while phi' keeps its sign
+        p1 = dphi(h)
+        with np.errstate(invalid="ignore"):
+            p2 = self.slope(h)
+        p2 = np.where(np.isfinite(p2), p2, 0.0)
+        # turning points of ln d: its slope 2 phi''/phi' changes sign (phi' keeping its sign)
         breaks = [h[0], h[-1], *kinks]
         for i in np.flatnonzero(p2 == 0.0):
             if p1[i] != 0.0:
@@ -838,15 +960,14 @@ class _Pushforward:
         for i in change:
             if h[i] in kinks or h[i + 1] in kinks:
                 continue
-            breaks.append(optimize.brentq(lambda x: float(self.d2phi(np.array([x]))[0]),
+            breaks.append(optimize.brentq(lambda x: float(self.slope(np.array([x]))[0]),
                                           h[i], h[i + 1], xtol=1e-15, rtol=4 * _EPS))
         # zeros of phi' (ln d -> -inf) also separate monotone pieces
         for i in np.flatnonzero(p1[1:] * p1[:-1] < 0):
             breaks.append(0.5 * (h[i] + h[i + 1]))
         breaks = np.unique(breaks)
         h = np.union1d(h, breaks)
-        with np.errstate(divide="ignore"):
-            logd = 2.0 * np.log(np.abs(self.dphi(h)))
+        logd = self.logd(h)
         self.pieces, self.constant_logd = [], []
         for a, b in zip(breaks[:-1], breaks[1:]):
             m = (h >= a) & (h <= b) & np.isfinite(logd)
@@ -875,12 +996,11 @@ class _Pushforward:
             lo, hi = hh[k - 1], hh[k]             # ln d(lo) <= t <= ln d(hi), lo < hi or not
             x = np.interp(t, ll, hh)
             for _ in range(60):
-                p1 = self.dphi(x)
-                g = 2.0 * np.log(np.abs(p1)) - t
+                g = self.logd(x) - t
                 # keep the bracket: g < 0 on the lo side
                 below = g < 0
                 lo, hi = np.where(below, x, lo), np.where(below, hi, x)
-                slope = 2.0 * self.d2phi(x) / p1
+                slope = self.slope(x)
                 with np.errstate(divide="ignore", invalid="ignore"):
                     step = x - g / slope
                 bad = ~np.isfinite(step) | ((step - lo) * (step - hi) > 0)
@@ -889,7 +1009,7 @@ class _Pushforward:
                     x = new
                     break
                 x = new
-            slope = np.abs(2.0 * self.d2phi(x) / self.dphi(x))
+            slope = np.abs(self.slope(x))
             dens = np.exp(-0.5 * x * x / self.q) / math.sqrt(2.0 * math.pi * self.q)
             with np.errstate(divide="ignore"):
                 out[inside] += dens / slope
@@ -931,7 +1051,7 @@ def _solved(problem, ell: np.ndarray, s_top: np.ndarray, atoms, what: str,
     if failed.any() and strict:
         bad = np.exp(ell[failed])
         span = f"{bad.min():.6g}" + (f" to {bad.max():.6g}" if bad.size > 1 else "")
-        raise TheoryError(
+        raise SolverError(
             f"the {what} master equation did not converge at {int(failed.sum())} of {ell.size} "
             f"points (lambda = {span}); try a smaller depth, a variance q further from 0 or a "
             "chi_1 closer to 1, and report the case if it persists")
@@ -1030,11 +1150,11 @@ def _tabulate(rho_log: Callable[..., np.ndarray], ell_top: float, mass: float, s
     bad = ~np.isfinite(rl)
     positive = np.flatnonzero(rl > 0)
     if positive.size == 0:
-        raise TheoryError("the solved density vanishes everywhere on the scanned range; the "
+        raise SolverError("the solved density vanishes everywhere on the scanned range; the "
                           "spectrum may be a point mass, or the solve is off its branch")
     if bad[positive[0]:].any():
         k = np.flatnonzero(bad[positive[0]:])[0] + positive[0]
-        raise TheoryError(f"the master equation did not converge at lambda = "
+        raise SolverError(f"the master equation did not converge at lambda = "
                           f"{math.exp(ell[k]):.6g}, inside the spectrum; try a smaller depth or "
                           "a chi_1 closer to 1, and report the case if it persists")
     rl = np.where(bad, 0.0, rl)
@@ -1114,33 +1234,53 @@ def _tabulate(rho_log: Callable[..., np.ndarray], ell_top: float, mass: float, s
     return ell_final, rho_log(ell_final, True), [(lo, hi) for lo, hi in intervals]
 
 
+def _exp(v: float) -> float:
+    """``exp(v)`` as a float: 0.0 below and inf above the float64 range (never an exception)."""
+    return 0.0 if v < -745.2 else (math.inf if v > _LOG_HUGE else math.exp(v))
+
+
 def _make_density(ell, rl, atoms, intervals, regime) -> Density:
+    """A :class:`Density` from its log form: grid ``ell`` with ``rho_log``, atoms as
+    ``(ln location or -inf, weight)``, intervals in ``ln lambda``."""
     ell = np.asarray(ell, dtype=float)
     rl = np.asarray(rl, dtype=float)
-    with np.errstate(over="ignore", divide="ignore"):
+    with np.errstate(over="ignore", divide="ignore", under="ignore"):
         x = np.exp(ell)
         rho = np.where(rl > 0, np.exp(np.log(np.where(rl > 0, rl, 1.0)) - ell), 0.0)
     for a in (x, rho, ell, rl):
         a.setflags(write=False)
-    with np.errstate(over="ignore"):
-        atom_list = tuple((0.0 if not math.isfinite(la) else math.exp(min(la, 709.78)), float(w))
-                          for la, w in atoms)
-        iv = tuple((math.exp(lo), math.exp(hi)) for lo, hi in intervals)
-    zero = sum(w for a, w in atom_list if a == 0.0)
-    if iv:
-        support = (iv[0][0], iv[-1][1])
+    log_atoms = tuple((float(la), float(w)) for la, w in atoms)
+    atom_list = tuple((_exp(la), w) for la, w in log_atoms)
+    iv = tuple((_exp(lo), _exp(hi)) for lo, hi in intervals)
+    zero = sum(w for la, w in log_atoms if la == -math.inf)
+    if intervals:
+        log_support = (float(intervals[0][0]), float(intervals[-1][1]))
     else:
-        nonzero = [a for a, _ in atom_list if a > 0]
-        support = (min(nonzero), max(nonzero)) if nonzero else (0.0, 0.0)
-    return Density(x, rho, ell, rl, float(zero), atom_list, support, iv, regime)
+        nonzero = [la for la, _ in log_atoms if la > -math.inf]
+        log_support = (min(nonzero), max(nonzero)) if nonzero else (-math.inf, -math.inf)
+    # an edge outside the normal float64 range has no faithful lambda form: NaN (JSON null),
+    # never a silent 0.0 or inf; log_support holds it
+    support = tuple(0.0 if v == -math.inf else (math.exp(v) if _LOG_TINY <= v <= _LOG_HUGE
+                                                else math.nan) for v in log_support)
+    return Density(x, rho, ell, rl, float(zero), atom_list, support, iv, regime,
+                   log_support, log_atoms)
+
+
+MASS_RTOL = 1e-2
+"""Largest relative error of the tabulated continuous mass accepted by the density solvers."""
+
+
+def _mass_error(ell, rl, mass) -> float:
+    return abs(float(np.trapezoid(rl, ell)) - mass) / max(mass, 1e-3)
 
 
 def _check_mass(ell, rl, mass, what):
     got = float(np.trapezoid(rl, ell))
-    if abs(got - mass) > 1e-2 * max(mass, 1e-3):
-        raise TheoryError(f"the {what} density integrates to {got:.6g} on its grid where "
-                          f"{mass:.6g} was expected: part of the spectrum was missed; try more "
-                          "points, and report the case if it persists")
+    if abs(got - mass) > MASS_RTOL * max(mass, 1e-3):
+        raise SolverError(f"solver limit: the {what} density integrates to {got:.6g} on its grid "
+                          f"of {np.size(ell)} points where {mass:.6g} was expected (the grid did "
+                          "not resolve part of the spectrum); this is a limit of the density "
+                          "solver, not of the design; the moments are unaffected")
 
 
 def plain_density(law: DerivativeLaw, weights: str, sigma_w: float, depth: int,
@@ -1185,8 +1325,10 @@ def plain_density(law: DerivativeLaw, weights: str, sigma_w: float, depth: int,
               f"{kind} weights, sigma_w = {sigma:.6g}, L = {depth}")
     if mass <= 1e-10 or law.positive_weight <= 0:
         return _make_density([], [], atoms, [], regime)
-    mu1, mu2 = law.moment(1), law.moment(2)
-    spread = mu2 / mu1 ** 2 - 1.0
+    spread = law.relative_variance()
+    if kind == "orthogonal" and not atoms and depth * spread < NARROW_SPREAD ** 2:
+        return _narrow_density(depth * 2.0 * math.log(sigma) + depth * law.log_mu1,
+                               depth * spread, points, regime)
     if kind == "gaussian" or law.zero_weight > 0:
         # the density reaches down to lambda = 0 like a power: ln lambda spreads ~ 16 L
         span = 40.0 + 20.0 * depth * (spread + (1.0 if kind == "gaussian" else 0.0))
@@ -1213,9 +1355,57 @@ def plain_density(law: DerivativeLaw, weights: str, sigma_w: float, depth: int,
             s_top = math.log(START) + np.maximum(ell, ell_top)
             return _solved(problem, ell, s_top, atoms, "plain-stack", strict)
 
-    ell, rl, intervals = _tabulate(evaluate, ell_top, mass, span, points)
-    _check_mass(ell, rl, mass, "plain-stack")
+    ell, rl, intervals = _tabulate_checked(evaluate, ell_top, mass, span, points, "plain-stack")
     return _make_density(ell, rl, atoms, intervals, regime)
+
+
+def _tabulate_checked(evaluate, ell_top, mass, span, points, what, ell_bottom=None):
+    """:func:`_tabulate` at ``points`` nodes; while the grid's mass is off by more than
+    MASS_RTOL, the final placement is repeated with twice the nodes (up to 16 times
+    ``points``, at least 1920), so a caller's small ``points`` (a depth profile asks for 120)
+    never turns a resolvable law into an error.  ``points`` is thus the minimum grid size."""
+    n = points
+    limit = max(16 * points, 1920)
+    while True:
+        ell, rl, intervals = _tabulate(evaluate, ell_top, mass, span, n, ell_bottom=ell_bottom)
+        if _mass_error(ell, rl, mass) <= MASS_RTOL or 2 * n > limit:
+            break
+        n *= 2
+    _check_mass(ell, rl, mass, what)
+    return ell, rl, intervals
+
+
+def _narrow_density(log_m1: float, rel_var: float, points: int, regime: str) -> Density:
+    """The near-isometric limit: a semicircle in lambda of mean m1 and variance ``m1^2 rel_var``.
+
+    Used when the predicted relative spread ``sqrt(m2/m1^2 - 1) = sqrt(L Var(d)/E[d]^2)``
+    (orthogonal weights, THEORY.md sec. 3: ``m2 = m1^2 (1 + L t1)``) is below
+    ``NARROW_SPREAD`` = 1e-3: the law is then narrower than the continuation solver resolves.
+    ``J J^T`` is a free product of L factors ``sigma_w^2 D_l^2`` each within a relative
+    ``sqrt(Var(d))/E[d]`` of a multiple of the identity, so to leading order ``lambda/m1 - 1`` is
+    a free sum of L small free variables and, by the free central limit theorem (Voiculescu;
+    Nica and Speicher 2006, Lecture 8), semicircular: density
+    ``2 sqrt(R^2 - (u - 1)^2)/(pi R^2)`` in ``u = lambda/m1`` with ``R = 2 sqrt(rel_var)``.  Its
+    first two moments are exact (m1 and m2 of the Lagrange series); the skewness it drops is of
+    relative order ``sqrt(rel_var)`` < 1e-3.  Built in logs: ``ln lambda = ln m1 + log1p(R cos t)``.
+    """
+    r = 2.0 * math.sqrt(max(rel_var, 0.0))
+    regime = (f"{regime}; near-isometric limit: predicted relative spread "
+              f"sqrt(m2/m1^2 - 1) = {math.sqrt(max(rel_var, 0.0)):.3g} < {NARROW_SPREAD:g}, below "
+              "what the density solver resolves: semicircle with the predicted m1 and m2 "
+              "(free central limit)")
+    if r == 0.0:
+        return _make_density([], [], [(log_m1, 1.0)], [], regime)
+    t = np.pi * (points - 0.5 - np.arange(points)) / points   # from pi to 0: lambda increasing
+    u = np.cos(t)
+    ell = log_m1 + np.log1p(r * u)
+    # rho_log d ell = rho_u du, du = lambda/m1 d ell: rho_log = (1 + r u) rho_u
+    rho_u = 2.0 * np.sqrt(np.maximum(1.0 - u * u, 0.0)) / (math.pi * r)
+    rl = (1.0 + r * u) * rho_u
+    lo, hi = log_m1 + math.log1p(-r), log_m1 + math.log1p(r)
+    ell = np.concatenate([[lo], ell, [hi]])
+    rl = np.concatenate([[0.0], rl, [0.0]])
+    return _make_density(ell, rl, [], [(lo, hi)], regime)
 
 
 # ----------------------------------------------------------------------------------------
@@ -1258,9 +1448,9 @@ def residual_tau(activation: str | Activation, sigma_w: float, q_trajectory: Seq
     if act.kinks or act.derivative_values is not None:
         mu1 = np.array([derivative_law(act, q).moment(1) for q in qs])
     else:
-        _, dphi = act.numpy_pair()
+        dphi_sq = act.numpy_dphi_sq()
         z, w = normal_rule()
-        mu1 = (np.asarray(dphi((np.sqrt(qs)[:, None] * z).ravel())).reshape(qs.size, -1) ** 2) @ w
+        mu1 = np.asarray(dphi_sq((np.sqrt(qs)[:, None] * z).ravel())).reshape(qs.size, -1) @ w
     return float(alpha * alpha * sigma * sigma * np.sum(mu1))
 
 
@@ -1372,6 +1562,6 @@ def residual_density(tau: float, points: int = 400) -> Density:
         return _solved(problem, ell, math.log(START) + np.maximum(ell, hi), [], "residual",
                        strict)
 
-    ell, rl, intervals = _tabulate(evaluate, hi, 1.0, hi - lo, points, ell_bottom=lo)
-    _check_mass(ell, rl, 1.0, "residual")
+    ell, rl, intervals = _tabulate_checked(evaluate, hi, 1.0, hi - lo, points, "residual",
+                                           ell_bottom=lo)
     return _make_density(ell, rl, [], intervals, regime)

@@ -31,9 +31,15 @@ Numerical conventions (see ``docs/theory-mean-field.md``):
   without the breaks, 1e-15 with them; GELU, SiLU and the sigmoid are similar).  2-D rules use the
   kinks only (cost grows with the square of the panel count; the correlation map is needed at
   q = q* = O(1)).
-* The phase is "critical" when ``|chi_1 - 1| <= PHASE_TOL = 1e-9``; a depth scale whose slope is
-  within ``PHASE_TOL`` of 1 is ``math.inf`` exactly.  1e-9 sits well above the error of chi_1 at a
-  solved critical point (about 1e-13) and well below any physically meaningful distance.
+* The phase is "critical" when ``|chi_1 - 1| <= CRITICAL_TOL = 1e-6``.  Why 1e-6: a sigma_w written
+  with 7 significant digits (as a user copies it from ``isoscope critical`` or a paper) moves
+  chi_1 by up to about 1e-6 from 1, and over L layers the mean squared singular value
+  ``m1 = chi_1^L`` then differs from 1 by about ``L * 1e-6``: below 1 % for every depth up to
+  10^4, beyond the depths at which a dense Jacobian is measured.  Calling such a point "chaotic"
+  or "ordered" would mislead.  Inside the band ``xi_c = inf`` and ``c* = 1``.
+* A numerical slope (V'(q*), C'(c*)) within ``PHASE_TOL = 1e-9`` of 1 counts as exactly 1: the
+  depth scale is ``math.inf``.  1e-9 sits well above the error of chi_1 at a solved critical
+  point (about 1e-13).
 """
 
 from __future__ import annotations
@@ -47,18 +53,21 @@ import numpy as np
 from scipy import optimize
 
 from isoscope.activations import Activation, get_activation
-from isoscope.errors import InputError, TheoryError
+from isoscope.errors import InputError, SolverError, TheoryError
 from isoscope.theory.quadrature import expect_bivariate, normal_rule
 
 __all__ = [
-    "PHASE_TOL", "Q_MAX", "MeanField", "CriticalPoint", "CriticalLine",
+    "PHASE_TOL", "CRITICAL_TOL", "Q_MAX", "MeanField", "CriticalPoint", "CriticalLine",
     "length_map", "length_map_slope", "fixed_point", "derivative_moments", "chi1",
     "correlation_map", "correlation_slope", "correlation_fixed_point", "mean_field",
     "q_trajectory", "critical_point", "critical_line",
 ]
 
 PHASE_TOL = 1e-9
-"""Half-width of the "critical" band, in chi_1 (and in V'(q*), C'(c*) for infinite depth scales)."""
+"""A slope (V'(q*), C'(c*)) within PHASE_TOL of 1 is 1: its depth scale is infinite."""
+
+CRITICAL_TOL = 1e-6
+"""Half-width of the "critical" band in chi_1 (see the module docstring for why 1e-6)."""
 
 Q_MAX = 1e16
 """Largest variance searched for a fixed point; beyond it q is treated as growing without bound."""
@@ -89,7 +98,8 @@ class MeanField(NamedTuple):
       c_star: stable fixed point of the correlation map (1 unless chaotic).
       xi_q: depth scale of the variance, ``-1/ln V'(q*)`` (``inf`` when V'(q*) = 1).
       xi_c: depth scale of correlations, ``-1/ln C'(c*)`` (``inf`` at criticality).
-      phase: ``"ordered"`` (chi1 < 1), ``"critical"`` (``|chi1 - 1| <= PHASE_TOL``) or ``"chaotic"``.
+      phase: ``"ordered"`` (chi1 < 1), ``"critical"`` (``|chi1 - 1| <= CRITICAL_TOL`` = 1e-6) or
+        ``"chaotic"``.
     """
 
     sigma_w: float
@@ -193,11 +203,17 @@ def _padded(fn: Callable[[np.ndarray], np.ndarray]) -> Callable[[np.ndarray], np
 
 
 class _Integrand(NamedTuple):
-    """What a Gaussian expectation needs of phi: NumPy phi, phi' and the kinks of phi'."""
+    """What a Gaussian expectation needs of phi: NumPy phi, phi', phi'^2 and the kinks of phi'.
+
+    ``dphi_sq`` is the registry's tail-accurate ``exp(ln phi'^2)``
+    (:meth:`~isoscope.activations.Activation.numpy_dphi_sq`), the same function the
+    free-probability law of ``phi'(h)^2`` uses, so chi_1 and the law's first moment agree.
+    """
 
     phi: Callable[[np.ndarray], np.ndarray]
     dphi: Callable[[np.ndarray], np.ndarray]
     kinks: tuple[float, ...]
+    dphi_sq: Callable[[np.ndarray], np.ndarray]
 
 
 _INTEGRANDS: dict[Activation, _Integrand] = {}
@@ -207,7 +223,8 @@ _LIMITS: dict[Activation, _Integrand] = {}
 def _integrand(act: Activation) -> _Integrand:
     if act not in _INTEGRANDS:
         phi, dphi = act.numpy_pair()
-        _INTEGRANDS[act] = _Integrand(_padded(phi), _padded(dphi), tuple(act.kinks))
+        _INTEGRANDS[act] = _Integrand(_padded(phi), _padded(dphi), tuple(act.kinks),
+                                      _padded(act.numpy_dphi_sq()))
     return _INTEGRANDS[act]
 
 
@@ -234,7 +251,8 @@ def _limit_integrand(act: Activation) -> _Integrand:
         def dpsi(h: np.ndarray) -> np.ndarray:
             return np.where(h > 0, a, b) + 0.0 * h
 
-        _LIMITS[act] = _Integrand(psi, dpsi, (0.0,) if a != b else ())
+        _LIMITS[act] = _Integrand(psi, dpsi, (0.0,) if a != b else (),
+                                  lambda h: dpsi(h) ** 2)
     return _LIMITS[act]
 
 
@@ -269,7 +287,7 @@ def _dphi_sq(act: Activation, q: float) -> float:
     """``E[phi'(sqrt(q) z)^2]`` (q -> 0+ limit at q = 0)."""
     fn, qe = _at(act, q)
     h, w = _rule(fn, qe)
-    return float(np.dot(w, fn.dphi(h) ** 2))
+    return float(np.dot(w, fn.dphi_sq(h)))
 
 
 def _slope_ratio(act: Activation, q: float) -> float:
@@ -439,7 +457,7 @@ def _brent(f: Callable[[float], float], lo: float, hi: float) -> float:
     try:
         return float(optimize.brentq(f, lo, hi, xtol=1e-300, rtol=1e-15, maxiter=500))
     except (RuntimeError, ValueError) as exc:  # pragma: no cover - bracket was verified
-        raise TheoryError(f"root finding did not converge on [{lo:.6g}, {hi:.6g}]: {exc}; "
+        raise SolverError(f"root finding did not converge on [{lo:.6g}, {hi:.6g}]: {exc}; "
                           "try a slightly different sigma_w or sigma_b") from exc
 
 
@@ -485,7 +503,7 @@ def derivative_moments(activation: str | Activation, q: float, kmax: int = 4) ->
                          hint="ask for at least the first moment, e.g. kmax=4")
     fn, qe = _at(act, q)
     h, w = _rule(fn, qe)
-    d2 = fn.dphi(h) ** 2
+    d2 = fn.dphi_sq(h)
     powers = d2[None, :] ** np.arange(1, int(kmax) + 1)[:, None]
     return powers @ w
 
@@ -716,7 +734,7 @@ def _newton_c(act: Activation, sw2: float, q: float, seed: float,
         if abs(new - c) <= 1e-15:
             return new
         c = new
-    raise TheoryError(  # pragma: no cover - Newton with bisection safeguard converges
+    raise SolverError(  # pragma: no cover - Newton with bisection safeguard converges
         f"correlation fixed point did not converge for {act.name} (last c = {c:.15g}); "
         "try a sigma_w further from the critical point")
 
@@ -743,7 +761,7 @@ def _depth_scale(slope: float) -> float:
     if s == 0.0:
         return 0.0
     if s > 1.0:
-        raise TheoryError(f"slope {slope:.12g} > 1 at a fixed point that should be stable; "
+        raise SolverError(f"slope {slope:.12g} > 1 at a fixed point that should be stable; "
                           "this is a bug or a fixed point the root finder misclassified")
     return -1.0 / math.log(s)
 
@@ -752,7 +770,9 @@ def mean_field(activation: str | Activation, sigma_w: float, sigma_b: float) -> 
     """Mean-field summary of a plain stack: q*, chi_1, c*, depth scales and phase.
 
     * ``q*`` from :func:`fixed_point`; ``chi_1 = sigma_w^2 E[phi'(sqrt(q*) z)^2]``.
-    * Phase: "critical" if ``|chi_1 - 1| <= PHASE_TOL`` (1e-9), else ordered (< 1) / chaotic (> 1).
+    * Phase: "critical" if ``|chi_1 - 1| <= CRITICAL_TOL`` (1e-6: a sigma_w given to 7 significant
+      digits is critical, and chi_1^L stays within about L 1e-6 of 1), else ordered (< 1) /
+      chaotic (> 1); c* = 1 and xi_c = inf inside the critical band.
     * ``1/xi_q = -ln V'(q*)``; ``xi_q = inf`` when ``|V'(q*) - 1| <= PHASE_TOL`` (for example at
       q* = 0 on the line sigma_b = 0, or ReLU at sigma_w^2 = 2, where V(q) = q).
     * Ordered and critical: c* = 1, C'(1) = chi_1, so ``xi_c = -1/ln chi_1`` (``math.inf`` exactly
@@ -781,7 +801,7 @@ def mean_field(activation: str | Activation, sigma_w: float, sigma_b: float) -> 
     sw, sb = _scale("sigma_w", sigma_w), _scale("sigma_b", sigma_b)
     q = fixed_point(act, sw, sb)
     x1 = chi1(act, sw, q)
-    if abs(x1 - 1.0) <= PHASE_TOL:
+    if abs(x1 - 1.0) <= CRITICAL_TOL:
         phase = "critical"
     elif x1 < 1.0:
         phase = "ordered"
@@ -871,7 +891,7 @@ def q_trajectory(activation: str | Activation, sigma_w: float, sigma_b: float, q
         q = sw2 * big_q + sb2
         out[layer] = q
         if not math.isfinite(q):
-            raise TheoryError(f"variance overflowed at layer {layer + 1} of {depth} "
+            raise SolverError(f"variance overflowed at layer {layer + 1} of {depth} "
                               f"({act.name}, sigma_w = {sw:g}, sigma_b = {sb:g}); "
                               "lower sigma_w or the depth")
         if q == 0.0:

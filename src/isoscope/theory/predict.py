@@ -40,7 +40,8 @@ class Prediction:
     """The infinite-width prediction for one design.
 
     Attributes:
-      family, activation, weights: the design (``weights`` "gaussian" or "orthogonal").
+      family, activation, weights: the design as asked (``weights`` "gaussian", "orthogonal" or
+        "uniform"; the theory's ensemble is ``ensemble``).
       sigma_w, sigma_b: weight and bias scales (the squares are ``sigma_w**2``, ``sigma_b**2``).
       depth: number of weight layers L.
       alpha: residual branch scale (1.0 for plain stacks, where it is unused).
@@ -63,7 +64,16 @@ class Prediction:
       mean_mode: True for a residual stack whose branch has ``E[phi(h)] != 0``: one singular
         value per draw (the mean mode) sits far above the bulk the law describes.
       regime: the assumptions the prediction rests on.
-      notes: caveats a user must read (inputs off the fixed point, large-depth assumption, ...).
+      notes: caveats a user must read (inputs off the fixed point, large-depth assumption,
+        moments or lambda outside float64, ...).
+      ensemble: the weight ensemble the theory used: "gaussian" (also for uniform weights: same
+        variance, same infinite-width limit) or "orthogonal".
+      slope: the leaky-ReLU slope, else ``None``.
+      log_length_mode_s: ``L ln V'(q)``, the natural log of ``length_mode_s`` (finite where
+        ``length_mode_s`` itself leaves float64 and is NaN).
+      length_factor: plain stacks: the per-layer factor ``q^{l+1}/q^l`` of the pre-activation
+        variance when the length map's fixed point is q* = 0 and phi is positively homogeneous
+        (``sigma_w^2 E[phi(h)^2]/q``: ReLU ``sigma_w^2/2``), else NaN.
     """
 
     family: str
@@ -85,6 +95,10 @@ class Prediction:
     mean_mode: bool
     regime: str
     notes: tuple[str, ...]
+    ensemble: str = ""
+    slope: float | None = None
+    log_length_mode_s: float = math.nan
+    length_factor: float = math.nan
 
 
 def log_lambda_stats(density: fp.Density) -> tuple[float, float]:
@@ -92,11 +106,12 @@ def log_lambda_stats(density: fp.Density) -> tuple[float, float]:
 
     ``E[ln lambda | lambda > 0] = (int ell rho_log d ell + sum_a w_a ln a) / (1 - w_0)``, with
     ``rho_log`` the density of ``ell = ln lambda`` (trapezoid on the solver's grid) and the
-    non-zero atoms ``(a, w_a)``; the variance likewise.  For ln s halve both.
+    non-zero atoms ``(a, w_a)`` (taken from ``log_atoms``, so atoms outside float64 count at
+    their true place); the variance likewise.  For ln s halve both.
     """
     ell, r = density.log_x, density.rho_log
     parts = [(ell, r)] if ell.size >= 2 else []
-    atoms = [(math.log(a), w) for a, w in density.atoms if a > 0]
+    atoms = [(la, w) for la, w in density.log_atoms if la > -math.inf]
     mass = sum(float(np.trapezoid(rr, ee)) for ee, rr in parts) + sum(w for _, w in atoms)
     if mass <= 0:
         return math.nan, math.nan
@@ -121,7 +136,7 @@ def _steady_variance(act, sigma_w: float, sigma_b: float, q_star: float,
     return float(q_star)
 
 
-def predict(activation: str, weights: str, sigma_w: float, sigma_b: float, depth: int,
+def predict(activation, weights: str, sigma_w: float, sigma_b: float, depth: int,
             family: str = "plain", alpha: float = 1.0, input_variance: float | None = None,
             points: int = 400) -> Prediction:
     """Predict the spectrum of ``J J^T`` at infinite width for one design.
@@ -132,14 +147,28 @@ def predict(activation: str, weights: str, sigma_w: float, sigma_b: float, depth
     trajectory from the input is computed as well; when it leaves q* by more than 5 % the
     prediction still uses q* and says so in ``notes``.
 
+    Positively homogeneous phi (linear, ReLU, leaky ReLU: ``phi(t h) = t phi(h)``, t > 0): the
+    law of ``phi'(h)^2`` is the same at every q > 0, so the Jacobian spectrum does not depend on
+    the input's scale.  Where the length map's fixed point is q* = 0 (``sigma_b = 0`` and
+    ``sigma_w^2 E[phi(h)^2]/q < 1``, e.g. ReLU with sigma_w^2 < 2) the law is taken at the input
+    variance (default 1) instead of at q* (where ``phi'(0)`` is not defined), and
+    ``length_factor = sigma_w^2 E[phi(h)^2]/q`` and a note report how the length decays
+    (``q^L = q^1 length_factor^{L-1}``).  ReLU, sigma_w = 1, Gaussian weights: m1 = (1/2)^L.
+    The same holds where the variance grows without bound (no finite fixed point).
+
     Residual stacks: ``tau`` along ``q^l`` from the input variance
     (:func:`~isoscope.theory.mean_field.q_trajectory` with the mean-mode recursion), then
     :func:`~isoscope.theory.free_probability.residual_moments` and ``residual_density``.
 
+    Moments are carried in logs (``moments.log_m1 .. log_m4``; ``m_k`` is None outside float64,
+    with a note) and so is the density (``density.log_x``, ``rho_log``, ``log_support``; a note
+    says when lambda itself leaves the float64 range).
+
     Args:
-      activation: registry name.
+      activation: registry name or :class:`~isoscope.activations.Activation` (a leaky ReLU
+        with its slope: ``get_activation("leaky-relu", slope=0.2)``).
       weights: ``"gaussian"``, ``"orthogonal"`` (``"uniform"`` is predicted as Gaussian: same
-        variance, same infinite-width limit).
+        variance, same infinite-width limit; ``Prediction.weights`` keeps "uniform").
       sigma_w, sigma_b: weight and bias scales (standard deviation times sqrt(fan_in) for W).
       depth: number of weight layers L >= 1.
       family: ``"plain"`` or ``"residual"``.
@@ -148,26 +177,30 @@ def predict(activation: str, weights: str, sigma_w: float, sigma_b: float, depth
         marginal length map, where every q is a fixed point, at q = 1), or the mean square
         ``q0 = |x^0|^2/N`` of the inputs, from which ``q^1 = sigma_w^2 q0 + sigma_b^2``.
         Residual stacks: the input mean square (default 1.0).
-      points: grid size of the density.
+      points: minimum grid size of the density (the solver doubles it, up to 16 times, when
+        the grid's mass is off by more than 1 %).
 
     Returns:
       :class:`Prediction`.
 
     Raises:
-      TheoryError: no stable fixed point, an unsupported weights kind, or a solve that failed.
+      TheoryError: no stable fixed point, or an unsupported weights kind.
+      SolverError: a solver limit (a solve that did not converge); not bad input.
 
     References:
       Poole et al. 2016; Schoenholz et al. 2017; Pennington, Schoenholz, Ganguli 2017 (NeurIPS)
       and 2018 (AISTATS); Tarnowski, Warchol, Jastrzebski, Tabor, Nowak 2019 (AISTATS).
     """
     act = get_activation(activation)
-    kind = "gaussian" if weights == "uniform" else weights
+    asked = str(weights).lower() if isinstance(weights, str) else weights
+    kind = "gaussian" if asked == "uniform" else asked
     if kind not in fp.WEIGHT_KINDS:
         raise TheoryError(f"no prediction for weights = {weights!r}; theory covers "
                           f"{', '.join(fp.WEIGHT_KINDS)} (and uniform, as Gaussian)")
     if family == "residual":
-        return _predict_residual(act, kind, sigma_w, sigma_b, depth, alpha,
-                                 1.0 if input_variance is None else input_variance, points)
+        p = _predict_residual(act, kind, sigma_w, sigma_b, depth, alpha,
+                              1.0 if input_variance is None else input_variance, points)
+        return _finish(p, act, asked)
     if family != "plain":
         raise TheoryError(f"no prediction for family = {family!r}; theory covers plain and residual")
     try:
@@ -175,38 +208,103 @@ def predict(activation: str, weights: str, sigma_w: float, sigma_b: float, depth
     except TheoryError:
         if not _law_free_of_q(act):
             raise
-        return _predict_unbounded(act, kind, sigma_w, sigma_b, depth, input_variance, points)
+        return _finish(_predict_unbounded(act, kind, sigma_w, sigma_b, depth, input_variance,
+                                          points), act, asked)
     q_star = summary.q_star
     notes: list[str] = []
-    if input_variance is None:   # steady state: every layer at q* (or at 1.0 on a marginal map)
+    factor = math.nan
+    if _law_free_of_q(act) and q_star == 0.0:
+        # q* = 0 for a homogeneous phi: the law is q-free, take it at the input variance
+        q0 = 1.0 if input_variance is None or input_variance <= 0 else float(input_variance)
+        q_layers = mf.q_trajectory(act, sigma_w, sigma_b, q0, depth)
+        q_law = float(q_layers[0]) if q_layers[0] > 0 else q0
+        factor = mf.length_map(act, sigma_w, 0.0, q_law) / q_law
+        if abs(factor - 1.0) > 1e-12:
+            notes.append(_decay_note(act, factor, q_layers, q_law))
+    elif input_variance is None:   # steady state: every layer at q* (or at 1.0 on a marginal map)
         q_law = _steady_variance(act, sigma_w, sigma_b, q_star, np.ones(1))
         q_layers = np.full(int(depth), q_law)
     else:
         q_layers = mf.q_trajectory(act, sigma_w, sigma_b, float(input_variance), depth)
         q_law = _steady_variance(act, sigma_w, sigma_b, q_star, q_layers)
-    off = np.abs(q_layers - q_law) / max(q_law, 1e-300) if q_law > 0 else q_layers
-    if np.max(off) > _STEADY_RTOL:
-        worst = int(np.argmax(off))
-        notes.append(f"inputs are not at the fixed point: layer {worst + 1} has q = "
-                     f"{q_layers[worst]:.4g} against q* = {q_law:.4g}; the prediction takes every "
-                     "layer at q* (feed steady-state inputs for a like-for-like comparison)")
-    regime = (f"N -> infinity with L = {depth} fixed; every layer at q = {q_law:.6g}; "
-              f"{kind} weights free of the diagonal factors")
-    return _plain_prediction(act, kind, sigma_w, sigma_b, depth, points, summary, q_layers,
-                             q_law, _length_mode(act, sigma_w, q_law, depth), regime,
-                             tuple(notes))
+    if not _law_free_of_q(act):
+        off = np.abs(q_layers - q_law) / max(q_law, 1e-300) if q_law > 0 else q_layers
+        if np.max(off) > _STEADY_RTOL:
+            worst = int(np.argmax(off))
+            notes.append(f"inputs are not at the fixed point: layer {worst + 1} has q = "
+                         f"{q_layers[worst]:.4g} against q* = {q_law:.4g}; the prediction takes "
+                         "every layer at q* (feed steady-state inputs for a like-for-like "
+                         "comparison)")
+    at = (f"every layer at q = {q_law:.6g}" if q_law == q_star or factor != factor else
+          f"the law of phi'(h)^2 taken at q = {q_law:.6g} (the same at every q > 0 for "
+          f"{act.label}; q* = 0)")
+    regime = (f"N -> infinity with L = {depth} fixed; {at}; {_ensemble_text(asked)} free of "
+              "the diagonal factors")
+    p = _plain_prediction(act, kind, sigma_w, sigma_b, depth, points, summary, q_layers,
+                          q_law, _log_length_mode(act, sigma_w, q_law, depth), regime,
+                          tuple(notes))
+    return _finish(dataclasses.replace(p, length_factor=factor), act, asked)
+
+
+def _ensemble_text(asked: str) -> str:
+    if asked == "uniform":
+        return ("uniform weights (predicted as Gaussian: same variance, same infinite-width "
+                "limit)")
+    return f"{asked} weights"
+
+
+def _decay_note(act, factor: float, q_layers: np.ndarray, q_law: float) -> str:
+    """How the length evolves when q* = 0 (or grows) for a homogeneous phi."""
+    tiny = float(np.finfo(np.float64).tiny)
+    text = (f"the length map's fixed point is q* = 0: without a bias the pre-activation "
+            f"variance changes by the factor sigma_w^2 E[phi(h)^2]/q = {factor:.6g} per layer "
+            f"(q^1 = {q_layers[0]:.4g}, q^L = {q_layers[-1]:.4g}); phi' of {act.label} has the "
+            f"same law at every q > 0, so the Jacobian spectrum does not depend on the input's "
+            f"scale and the prediction is taken at q = {q_law:.6g}")
+    if factor < 1.0:
+        n = math.log(tiny / q_law) / math.log(factor)
+        if n < q_layers.size:
+            text += (f"; the forward pass itself falls below the float64 range after about "
+                     f"{n:.0f} layers (float32: {math.log(1.18e-38 / q_law) / math.log(factor):.0f}), "
+                     "where a measured Jacobian loses its sign pattern")
+    return text
+
+
+def _finish(p: Prediction, act, asked: str) -> Prediction:
+    """Record the asked weights, the ensemble, the slope, and the float-range notes."""
+    notes = list(p.notes)
+    bad = p.moments.unrepresentable()
+    if bad:
+        logs = ", ".join(f"ln {k} = {v:.6g}" for k, v in zip(("m1", "m2", "m3", "m4"),
+                                                             p.moments.logs)
+                         if f"{k}" in bad)
+        notes.append(f"{', '.join(bad)} lie outside the float64 range and are reported as null "
+                     f"({logs}): read lambda_moments in logs (log_m1 .. log_m4)")
+    if not p.density.in_float_range:
+        lo, hi = p.density.log_support
+        notes.append(f"lambda leaves the float64 range (ln lambda from {lo:.6g} to {hi:.6g}): "
+                     "the density is reported in ln lambda (log_x, rho_log, log_support); "
+                     "its lambda form (x, rho, support) is not faithful outside 1e-308 .. 1e308")
+    regime = p.regime
+    if asked == "uniform" and "gaussian weights" in regime:
+        regime = regime.replace("gaussian weights", _ensemble_text(asked))
+    return dataclasses.replace(p, weights=asked, ensemble=p.weights, slope=act.slope,
+                               notes=tuple(notes), regime=regime)
 
 
 def _plain_prediction(act, kind, sigma_w, sigma_b, depth, points, summary, q_layers, q_law,
-                      length_mode, regime, notes) -> Prediction:
+                      log_length_mode, regime, notes) -> Prediction:
     """Law of phi'(h)^2 at ``q_law`` -> moments, density and ln s statistics -> Prediction."""
     law = fp.derivative_law(act, 1.0 if math.isnan(q_law) else q_law)
     moments = fp.plain_moments(law, kind, sigma_w, depth)
     density = fp.plain_density(law, kind, sigma_w, depth, points)
     mean, std = log_lambda_stats(density)
+    length_mode = (math.exp(log_length_mode) if abs(log_length_mode) <= fp._LOG_HUGE
+                   else math.nan)
     return Prediction("plain", act.name, kind, float(sigma_w), float(sigma_b), int(depth), 1.0,
                       summary, q_layers, q_law, math.nan, moments, density, mean / 2.0,
-                      std / 2.0, length_mode, False, regime, notes)
+                      std / 2.0, length_mode, False, regime, notes,
+                      log_length_mode_s=log_length_mode)
 
 
 def _law_free_of_q(act) -> bool:
@@ -223,7 +321,7 @@ def _predict_unbounded(act, kind, sigma_w, sigma_b, depth, input_variance, point
     q_layers = mf.q_trajectory(act, sigma_w, sigma_b, q0, depth)
     notes = (f"no finite fixed point of the length map: the pre-activation variance grows "
              f"without bound, from q^1 = {q_layers[0]:.4g} to q^L = {q_layers[-1]:.4g}, but phi' of "
-             f"{act.name} has the same law at every variance, so the Jacobian spectrum does not "
+             f"{act.label} has the same law at every variance, so the Jacobian spectrum does not "
              "depend on it and the prediction stands; the forward pass itself may overflow in "
              "float32 at large depth",)
     regime = (f"N -> infinity with L = {depth} fixed; the law of phi'(h)^2 is the same at every "
@@ -232,10 +330,10 @@ def _predict_unbounded(act, kind, sigma_w, sigma_b, depth, input_variance, point
                              math.nan, math.nan, regime, notes)
 
 
-def _length_mode(act, sigma_w: float, q: float, depth: int) -> float:
-    """``V'(q)^L``, the gain of the input-length direction (see ``Prediction.length_mode_s``)."""
+def _log_length_mode(act, sigma_w: float, q: float, depth: int) -> float:
+    """``L ln V'(q)``, the log gain of the input-length direction (``Prediction.length_mode_s``)."""
     slope = mf.length_map_slope(act, sigma_w, q) if q > 0 else math.nan
-    return math.exp(depth * math.log(slope)) if slope > 0 and math.isfinite(slope) else math.nan
+    return depth * math.log(slope) if slope > 0 and math.isfinite(slope) else math.nan
 
 
 def _predict_residual(act, kind, sigma_w, sigma_b, depth, alpha, q0, points) -> Prediction:
