@@ -252,7 +252,7 @@ def _separate_length_mode(p) -> float | None:
     from isoscope.score import length_mode_side
     if p is None or length_mode_side(p) is None:
         return None
-    return math.log10(p.length_mode_s)
+    return p.log_length_mode_s / math.log(10.0)
 
 
 def _figures(analysis: Analysis, folder: Path, prefix: str = "") -> dict[str, Path]:

@@ -227,8 +227,9 @@ class Agreement(NamedTuple):
 
 
 def _atom_log_locations(density) -> list[tuple[float, float]]:
-    """``(ln a, w)`` of every atom of a predicted law, ``-inf`` for the atom at zero."""
-    return [(math.log(a) if a > 0 else -math.inf, w) for a, w in density.atoms]
+    """``(ln a, w)`` of every atom of a predicted law, ``-inf`` for the atom at zero (from
+    ``log_atoms``, so atoms outside the float64 range keep their place)."""
+    return [(float(la), float(w)) for la, w in density.log_atoms]
 
 
 def _predicted_log_cdf(density, ell: np.ndarray, strict: bool = False) -> np.ndarray:
@@ -373,13 +374,14 @@ def length_mode_side(prediction) -> str | None:
     ``"bottom"`` below the predicted support by more than 5 % in s, ``"top"`` above it, else
     ``None`` (inside, it is one value among N).  ``None`` too for a law with an atom at zero
     below it (the smallest measured values are then zeros, not the length mode)."""
-    s = getattr(prediction, "length_mode_s", math.nan)
-    if not (s > 0 and math.isfinite(s)):
+    log_s = prediction.log_length_mode_s
+    lo, hi = prediction.density.log_support
+    if not (math.isfinite(log_s) and math.isfinite(hi)):
         return None
-    lo, hi = prediction.density.support
-    if s > 1.05 * math.sqrt(hi):
+    margin = math.log(1.05)
+    if log_s > hi / 2.0 + margin:
         return "top"
-    if s < math.sqrt(lo) / 1.05 and prediction.density.atom_at_zero <= 0:
+    if log_s < lo / 2.0 - margin and prediction.density.atom_at_zero <= 0:
         return "bottom"
     return None
 
@@ -400,7 +402,8 @@ def split_outliers(spectrum: Spectrum, prediction) -> tuple[Spectrum, tuple[Outl
         found.append(("mean mode", "top", math.nan))
     side = length_mode_side(prediction)
     if side is not None and not any(f[1] == side for f in found):
-        found.append(("input-length direction", side, float(prediction.length_mode_s)))
+        found.append(("input-length direction", side,
+                      _exp(float(prediction.log_length_mode_s))))
     found = [f for f in found if spectrum.size > len(found)]
     top = sum(f[1] == "top" for f in found)
     bottom = sum(f[1] == "bottom" for f in found)
