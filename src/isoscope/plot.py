@@ -9,13 +9,14 @@ from __future__ import annotations
 
 import math
 from pathlib import Path
+from typing import NamedTuple
 
 import numpy as np
 
 from isoscope.spectrum import Spectrum
 
 __all__ = ["log_s_figure", "lambda_figure", "comparison_figure", "depth_figure", "critical_figure",
-           "predicted_log10_s_curve", "save"]
+           "PredictedLaw", "save", "SPREAD_DECADES"]
 
 MEASURED = "#2f6f73"
 PREDICTED = "#c4512b"
@@ -30,123 +31,344 @@ def _pyplot():
     return plt
 
 
+SPREAD_DECADES = 1.5   # lambda spanning more decades than this is drawn on a log axis (convention)
+CONTEXT = 1.5          # the log axes reach at most this many data widths beyond the measured values
+NOTE_SHARE = 1e-3      # shares of the prediction outside the axis below this are not mentioned
+
+_LN10 = math.log(10.0)
+
+
+class PredictedLaw(NamedTuple):
+    """A predicted law of lambda as the figures use it: a continuous part and atoms.
+
+    Attributes:
+      log_lambda: grid of ``ell = ln lambda`` of the continuous part, increasing.
+      rho_log: density of ``ell`` on that grid, ``lambda rho(lambda)`` (finite even where lambda
+        leaves the float64 range).
+      atoms: ``(lambda, weight)`` pairs, the atom at zero included.
+    """
+
+    log_lambda: np.ndarray
+    rho_log: np.ndarray
+    atoms: tuple[tuple[float, float], ...] = ()
+
+    @classmethod
+    def from_density(cls, density) -> "PredictedLaw":
+        """From a :class:`isoscope.theory.free_probability.Density` (its ``log_x``, ``rho_log``, ``atoms``)."""
+        return cls(np.asarray(density.log_x, dtype=float), np.asarray(density.rho_log, dtype=float),
+                   tuple((float(a), float(w)) for a, w in density.atoms))
+
+    def _atom_logs(self) -> list[tuple[float, float]]:
+        return [(math.log(a) if a > 0 else -math.inf, w) for a, w in self.atoms]
+
+    def mass_below(self, ell: float) -> float:
+        """``P(ln lambda < ell)``: trapezoid mass of the continuous part below ``ell`` plus atoms."""
+        e, r = self.log_lambda, self.rho_log
+        cont = 0.0
+        if e.size >= 2:
+            cum = np.concatenate([[0.0], np.cumsum(0.5 * (r[1:] + r[:-1]) * np.diff(e))])
+            cont = float(np.interp(ell, e, cum, left=0.0, right=float(cum[-1])))
+        return cont + sum(w for la, w in self._atom_logs() if la < ell)
+
+    def mass_above(self, ell: float) -> float:
+        """``P(ln lambda > ell)``."""
+        e, r = self.log_lambda, self.rho_log
+        total = float(np.sum(0.5 * (r[1:] + r[:-1]) * np.diff(e))) if e.size >= 2 else 0.0
+        below = self.mass_below(ell) - sum(w for la, w in self._atom_logs() if la < ell)
+        return total - below + sum(w for la, w in self._atom_logs() if la > ell)
+
+    def extent(self, relative: float = 1e-6) -> tuple[float, float] | None:
+        """``(lo, hi)`` of ell where ``rho_log`` exceeds ``relative`` times its peak, or None."""
+        r = self.rho_log
+        if r.size == 0 or not np.any(r > 0):
+            return None
+        keep = r > relative * float(r.max())
+        return float(self.log_lambda[keep][0]), float(self.log_lambda[keep][-1])
+
+
 def _log10_s(spectrum: Spectrum) -> np.ndarray:
-    return spectrum.log_s_nonzero / math.log(10.0)
+    return spectrum.log_s_nonzero / _LN10
 
 
-def _bins(values: np.ndarray, count: int = 60) -> np.ndarray:
+def _bin_count(n: int) -> int:
+    """About 2 sqrt(n) bins, between 10 and 60 (common practice, no source)."""
+    return int(min(60, max(10, round(2.0 * math.sqrt(n)))))
+
+
+def _bins(values: np.ndarray, count: int = 60, min_width: float = 0.0) -> np.ndarray:
     lo, hi = float(values.min()), float(values.max())
     if hi - lo < 1e-6:
         lo, hi = lo - 0.05, hi + 0.05
     pad = 0.02 * (hi - lo)
-    return np.linspace(lo - pad, hi + pad, count + 1)
+    lo, hi = lo - pad, hi + pad
+    count = max(1, min(count, int((hi - lo) / min_width))) if min_width > 0 else count
+    if (hi - lo) / count < min_width:  # a narrow sample gets fewer, wider bins
+        mid = 0.5 * (lo + hi)
+        lo, hi = mid - 0.5 * min_width * count, mid + 0.5 * min_width * count
+    return np.linspace(lo, hi, count + 1)
 
 
-def log_s_figure(spectrum: Spectrum, title: str, predicted: tuple[np.ndarray, np.ndarray] | None = None,
+def _note(text: str):
+    """A legend row without a symbol: notes go into the legend, which sits outside the axes."""
+    from matplotlib.lines import Line2D
+    return Line2D([], [], linestyle="none", marker="none", label=text)
+
+
+def _legend_outside(ax, notes: list[str] = ()) -> None:
+    """Legend (and notes) to the right of the axes, so that it never covers bars or curves."""
+    handles, labels = ax.get_legend_handles_labels()
+    handles += [_note(t) for t in notes]
+    labels += list(notes)
+    if handles:
+        ax.legend(handles, labels, loc="upper left", bbox_to_anchor=(1.02, 1.0), borderaxespad=0.0,
+                  fontsize=8, frameon=False, handlelength=2.0)
+
+
+def _percent(share: float) -> str:
+    return f"{100 * share:.3g}%" if share < 0.1 else f"{100 * share:.1f}%"
+
+
+def _axis_range(data: tuple[float, float] | None, context: list[float]) -> tuple[float, float]:
+    """The x range of a log axis: the measured values, widened to take in the context points
+    (reference lines, floor, the predicted law) but by at most CONTEXT data widths each side."""
+    if data is None:  # nothing measured: the context decides
+        pts = [c for c in context if math.isfinite(c)] or [0.0]
+        lo, hi = min(pts), max(pts)
+        width = max(hi - lo, 1.0)
+        return lo - 0.05 * width, hi + 0.05 * width
+    lo, hi = data
+    if hi - lo < 0.1:  # a concentrated sample: a window 0.1 wide around it
+        lo, hi = 0.5 * (lo + hi) - 0.05, 0.5 * (lo + hi) + 0.05
+    width = hi - lo
+    lo_cap, hi_cap = lo - CONTEXT * width, hi + CONTEXT * width
+    for c in context:
+        if math.isfinite(c):
+            lo, hi = min(lo, max(c, lo_cap)), max(hi, min(c, hi_cap))
+    pad = 0.03 * max(hi - lo, 0.1)
+    return lo - pad, hi + pad
+
+
+def _log_panel(ax, spectrum: Spectrum, unit: str, predicted: PredictedLaw | None,
+               floor_log10_s: float | None, marks: list[tuple[float, str, str]]) -> list[str]:
+    """Histogram of log10 s (``unit = "s"``) or log10 lambda (``"lambda"``) with the prediction.
+
+    The density is per unit of the axis variable, and the bars' area is the non-zero share.
+    A predicted density of ell = ln lambda becomes ``p(log10 s) = 2 ln(10) rho_log`` and
+    ``p(log10 lambda) = ln(10) rho_log``.  Returns the notes for the legend.
+    """
+    k = 1.0 if unit == "s" else 2.0           # axis value = k log10 s
+    to_axis = k / (2.0 * _LN10)               # axis value per unit of ell
+    ref = "s = 1 (isometry)" if unit == "s" else "lambda = 1 (isometry)"
+    notes = []
+    v = k * _log10_s(spectrum)
+    data = (float(v.min()), float(v.max())) if v.size else None
+    context = [0.0] + [x for x, _, _ in marks]
+    floor = None if floor_log10_s is None else k * floor_log10_s
+    if floor is not None and spectrum.zero_fraction > 0:
+        context.append(floor)
+    atoms = []
+    if predicted is not None:
+        ext = predicted.extent()
+        if ext is not None:
+            context += [to_axis * ext[1], max(to_axis * ext[0], floor if floor is not None else -math.inf)]
+        atoms = [(to_axis * math.log(a), w) for a, w in predicted.atoms if 0 < a < math.inf]
+        context += [x for x, _ in atoms]
+    x0, x1 = _axis_range(data, context)
+    bar_top = 0.0
+    if v.size:
+        bins = _bins(v, _bin_count(v.size), min_width=(x1 - x0) / 200)
+        ax.hist(v, bins=bins, color=MEASURED, alpha=0.75,
+                weights=np.full(v.size, (1.0 - spectrum.zero_fraction) / v.size / (bins[1] - bins[0])),
+                label=f"measured ({spectrum.draws} draws x {spectrum.size})")
+        bar_top = max(p.get_height() for p in ax.patches)
+    else:
+        ax.text(0.5, 0.5, "every singular value is numerically zero\n(nothing to place on a log axis)",
+                transform=ax.transAxes, ha="center", va="center", fontsize=10)
+    if spectrum.zero_fraction > 0 and v.size:
+        notes.append(f"measured: {_percent(spectrum.zero_fraction)} numerically zero (not shown)")
+    curve_top = 0.0
+    if predicted is not None:
+        xs = to_axis * predicted.log_lambda
+        ys = (_LN10 * 2.0 / k) * predicted.rho_log
+        keep = (xs >= x0) & (xs <= x1)
+        if np.any(keep):
+            ax.plot(xs[keep], ys[keep], color=PREDICTED, lw=2.0, label="predicted (N -> infinity)")
+            curve_top = float(ys[keep].max())
+        for x, w in atoms:
+            if x0 <= x <= x1:
+                ax.axvline(x, color=PREDICTED, lw=3.0, alpha=0.55,
+                           label=f"predicted atom, weight {w:.3g} at {unit} = {10 ** x:.4g}"
+                           if abs(x) < 300 else f"predicted atom, weight {w:.3g} at log10 {unit} = {x:.4g}")
+        below = predicted.mass_below(x0 / to_axis)
+        above = predicted.mass_above(x1 / to_axis)
+        if below > NOTE_SHARE:
+            notes.append(f"predicted: {_percent(below)} left of the axis"
+                         + (f" (atom at 0: {_percent(predicted.atoms[0][1])})"
+                            if predicted.atoms and predicted.atoms[0][0] == 0 and predicted.atoms[0][1] > 0
+                            else ""))
+        if above > NOTE_SHARE:
+            notes.append(f"predicted: {_percent(above)} right of the axis")
+    if x0 <= 0.0 <= x1:
+        ax.axvline(0.0, color=REFERENCE, ls="--", lw=1.0, label=ref)
+    else:
+        notes.append(f"{ref.split(' (')[0]} is off the axis ({'right' if x1 < 0 else 'left'})")
+    if floor is not None and x0 <= floor <= x1 and (spectrum.zero_fraction > 0 or predicted is not None):
+        ax.axvline(floor, color=REFERENCE, ls=":", lw=1.0, label="SVD floor (unresolved below)")
+    for x, label, style in marks:
+        if x0 <= x <= x1:
+            ax.axvline(x, color=PREDICTED, ls=style, lw=1.0, label=label)
+    ax.set_xlim(x0, x1)
+    top = bar_top if bar_top > 0 else curve_top
+    if bar_top > 0 and curve_top > 0:
+        top = max(bar_top, min(curve_top, 3.0 * bar_top))  # a singular edge may leave the axis
+    ax.set_ylim(0.0, 1.08 * top if top > 0 else 1.0)
+    return notes
+
+
+def log_s_figure(spectrum: Spectrum, title: str, predicted: PredictedLaw | None = None,
                  floor_log10_s: float | None = None, length_mode_log10_s: float | None = None):
     """Histogram of log10 s (all draws pooled), density per unit log10 s.
 
     Args:
       spectrum: the measurement.
       title: figure title (the design name).
-      predicted: optional ``(log10_s, density)`` curve drawn over the histogram; a density
-        rho(lambda) transforms as ``p(log10 s) = 2 ln(10) s^2 rho(s^2)``.
+      predicted: optional predicted law; its density of ``ell = ln lambda`` is drawn as
+        ``p(log10 s) = 2 ln(10) rho_log`` and its atoms as vertical bands.
       floor_log10_s: optional SVD floor (log10 s) drawn as a dotted line: below it the
         measurement cannot resolve singular values.
       length_mode_log10_s: optional predicted singular value of the input-length direction
         (``V'(q*)^L``, one value per draw), drawn as a dash-dot line when given.
 
-    Numerically zero singular values cannot be placed on a log axis; their fraction is
-    written in the corner.
+    The x axis spans the measured values, widened to take in s = 1, the floor and the
+    prediction, but by at most ``CONTEXT`` data widths each side: a prediction reaching far
+    below the floor would otherwise squeeze the bars into a line.  The legend (outside the
+    axes) says how much of the predicted law lies left or right of the axis and how many
+    singular values are numerically zero (they cannot be placed on a log axis).
     """
     plt = _pyplot()
-    fig, ax = plt.subplots(figsize=(7.0, 4.0), layout="constrained")
-    v = _log10_s(spectrum)
-    if v.size:
-        ax.hist(v, bins=_bins(v), density=True, color=MEASURED, alpha=0.75,
-                label=f"measured ({spectrum.draws} draws x {spectrum.size})")
-        # density=True normalises over the non-zero part; rescale so the area is its share
-        for patch in ax.patches:
-            patch.set_height(patch.get_height() * (1.0 - spectrum.zero_fraction))
-        ax.relim()
-        ax.autoscale_view()
-    if predicted is not None:
-        ax.plot(predicted[0], predicted[1], color=PREDICTED, lw=2.0, label="predicted (N -> infinity)")
-    ax.axvline(0.0, color=REFERENCE, ls="--", lw=1.0, label="s = 1 (isometry)")
-    if floor_log10_s is not None and (predicted is not None and predicted[0].size
-                                      and predicted[0][0] < floor_log10_s or spectrum.zero_fraction > 0):
-        ax.axvline(floor_log10_s, color=REFERENCE, ls=":", lw=1.0, label="SVD floor (unresolved below)")
+    fig, ax = plt.subplots(figsize=(9.0, 4.0), layout="constrained")
+    marks = []
     if length_mode_log10_s is not None:
-        ax.axvline(length_mode_log10_s, color=PREDICTED, ls="-.", lw=1.0,
-                   label=f"input-length direction, 1 per draw (s = {10 ** length_mode_log10_s:.3g})")
-    if spectrum.zero_fraction > 0:
-        ax.text(0.02, 0.95, f"{100 * spectrum.zero_fraction:.1f}% numerically zero\n(not shown)",
-                transform=ax.transAxes, va="top", fontsize=9)
+        marks.append((length_mode_log10_s,
+                      f"input-length direction, 1 per draw (s = {10 ** length_mode_log10_s:.3g})", "-."))
+    notes = _log_panel(ax, spectrum, "s", predicted, floor_log10_s, marks)
     ax.set_xlabel("log10 s   (s: singular value of the input-output Jacobian)")
     ax.set_ylabel("density per unit log10 s")
     ax.set_title(title)
-    ax.legend(loc="best", fontsize=8, frameon=False)
+    _legend_outside(ax, notes)
     return fig
 
 
-def lambda_figure(spectrum: Spectrum, title: str, predicted: tuple[np.ndarray, np.ndarray] | None = None):
-    """Histogram of lambda = s^2 on a linear axis up to its 99th percentile.
+def lambda_figure(spectrum: Spectrum, title: str, predicted: PredictedLaw | None = None,
+                  floor_log10_s: float | None = None):
+    """Histogram of lambda = s^2: on a linear axis when the spectrum is narrow, else in log10 lambda.
 
-    The share of lambda beyond the axis is written in the corner; use the log-s figure for
-    spectra that span decades.
+    The non-zero lambda between their 1st and 99th percentiles span ``D`` decades.  For
+    ``D <= SPREAD_DECADES`` (1.5, isoscope's convention) the axis is lambda itself, from 0 to
+    the 99th percentile, with the density ``rho(lambda) = rho_log / lambda`` of the prediction
+    drawn only over that range; otherwise the axis is log10 lambda, with the density per unit
+    log10 lambda, ``ln(10) rho_log`` (a linear axis would show one bar at 0 and a predicted
+    curve reaching 1e306).  Predicted atoms are vertical bands labelled with their weight.
     """
     plt = _pyplot()
-    fig, ax = plt.subplots(figsize=(7.0, 4.0), layout="constrained")
+    fig, ax = plt.subplots(figsize=(9.0, 4.0), layout="constrained")
+    ax.set_title(title)
+    ell = 2.0 * spectrum.log_s_nonzero
+    if ell.size:
+        q01, q99 = np.quantile(ell, [0.01, 0.99])
+        spread = (q99 - q01) / _LN10 > SPREAD_DECADES or q99 > 700.0 or q01 < -700.0
+    else:
+        spread = True
+    if spread:
+        notes = _log_panel(ax, spectrum, "lambda", predicted, floor_log10_s, [])
+        ax.set_xlabel("log10 lambda   (lambda = s^2: eigenvalue of J J^T)")
+        notes.insert(0, f"log axis: lambda spans more than {SPREAD_DECADES:g} decades")
+        ax.set_ylabel("density per unit log10 lambda")
+        _legend_outside(ax, notes)
+        return fig
+    notes = []
     lam = spectrum.lam
-    lam = lam[np.isfinite(lam)]
-    top = float(np.quantile(lam, 0.99)) if lam.size else 1.0
-    top = max(top, 1e-300)
+    top = 1.02 * float(np.quantile(lam, 0.99))
     shown = lam[lam <= top]
-    ax.hist(shown, bins=np.linspace(0.0, top * 1.02, 61), color=MEASURED, alpha=0.75,
-            weights=np.full(shown.size, 1.0 / max(lam.size, 1) / (top * 1.02 / 60)),
-            label="measured")
+    count = _bin_count(shown.size)
+    width = top / count
+    ax.hist(shown, bins=np.linspace(0.0, top, count + 1), color=MEASURED, alpha=0.75,
+            weights=np.full(shown.size, 1.0 / lam.size / width),
+            label=f"measured ({spectrum.draws} draws x {spectrum.size})")
+    bar_top = max(p.get_height() for p in ax.patches)
+    curve_top = 0.0
     if predicted is not None:
-        keep = predicted[0] <= top * 1.02
-        ax.plot(predicted[0][keep], predicted[1][keep], color=PREDICTED, lw=2.0,
-                label="predicted (N -> infinity)")
-    if top * 1.02 >= 1.0:
-        ax.axvline(1.0, color=REFERENCE, ls="--", lw=1.0, label="lambda = 1")
-    beyond = 1.0 - shown.size / max(lam.size, 1)
-    ax.text(0.98, 0.70, f"{100 * beyond:.1f}% beyond the axis", transform=ax.transAxes,
-            ha="right", fontsize=9)
+        e, r = predicted.log_lambda, predicted.rho_log
+        keep = (e <= math.log(top)) & (e >= math.log(top) - 40.0)  # below top e^-40: not visible
+        if np.any(keep):
+            rho = r[keep] * np.exp(-e[keep])
+            ax.plot(np.exp(e[keep]), rho, color=PREDICTED, lw=2.0, label="predicted (N -> infinity)")
+            curve_top = float(rho.max())
+        for a, w in predicted.atoms:
+            if 0 <= a <= top:
+                ax.axvline(a, color=PREDICTED, lw=3.0, alpha=0.55,
+                           label=f"predicted atom, weight {w:.3g} at lambda = {a:.4g}")
+        above = predicted.mass_above(math.log(top))
+        if above > NOTE_SHARE:
+            notes.append(f"predicted: {_percent(above)} right of the axis")
+    ax.axvline(1.0, color=REFERENCE, ls="--", lw=1.0, label="lambda = 1 (isometry)") if top >= 1.0 else \
+        notes.append("lambda = 1 is off the axis (right)")
+    beyond = 1.0 - shown.size / lam.size
+    if beyond > 0:
+        notes.append(f"measured: {_percent(beyond)} right of the axis")
+    ax.set_xlim(0.0, top)
+    ax.set_ylim(0.0, 1.08 * max(bar_top, min(curve_top, 3.0 * bar_top)))
     ax.set_xlabel("lambda = s^2   (eigenvalue of J J^T)")
     ax.set_ylabel("density")
-    ax.set_title(title)
-    ax.legend(loc="best", fontsize=8, frameon=False)
+    _legend_outside(ax, notes)
     return fig
 
 
 def comparison_figure(spectra: dict[str, Spectrum], title: str):
-    """Outlined histograms of log10 s for several designs on one axis."""
-    plt = _pyplot()
-    fig, ax = plt.subplots(figsize=(7.5, 4.2), layout="constrained")
-    values = [(_log10_s(s), s) for s in spectra.values()]
-    allv = np.concatenate([v for v, _ in values if v.size]) if values else np.zeros(1)
-    bins = _bins(allv, 80)
-    for (name, _), (v, s), colour in zip(spectra.items(), values, DESIGN_COLOURS * 4):
-        if v.size:
-            w = np.full(v.size, (1.0 - s.zero_fraction) / v.size / (bins[1] - bins[0]))
-            ax.hist(v, bins=bins, weights=w, histtype="step", lw=1.8, color=colour, label=name)
-    ax.axvline(0.0, color=REFERENCE, ls="--", lw=1.0, label="s = 1")
-    ax.set_xlabel("log10 s   (s: singular value of the input-output Jacobian)")
-    ax.set_ylabel("density per unit log10 s")
-    ax.set_title(title)
-    ax.legend(fontsize=8, frameon=False)
-    return fig
+    """Small multiples: one panel per design, histograms of log10 s on one shared x axis.
 
-
-def predicted_log10_s_curve(log_x: np.ndarray, rho_log: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """A predicted law of lambda as a density per unit log10 s.
-
-    With ``ell = ln lambda = 2 ln(10) log10 s`` and ``rho_log = lambda rho(lambda)`` the density of
-    ell, ``p(log10 s) = 2 ln(10) s^2 rho(s^2) = 2 ln(10) rho_log``.
+    Each panel has its own y scale (density per unit log10 s, area = the design's non-zero
+    share), so a design spread over ten decades stays as visible as one concentrated at
+    s = 1.  Bins are at least 1/150 of the shared axis wide, so a narrow spectrum still shows
+    as bars.  The design name is the panel's title, its share of numerically zero singular
+    values the right-hand title; nothing is drawn over the bars.
     """
-    return np.asarray(log_x) / (2.0 * math.log(10.0)), 2.0 * math.log(10.0) * np.asarray(rho_log)
+    plt = _pyplot()
+    names = list(spectra)
+    n = max(len(names), 1)
+    fig, axes = plt.subplots(n, 1, figsize=(8.0, 1.25 * n + 1.3), sharex=True, layout="constrained",
+                             squeeze=False)
+    axes = axes[:, 0]
+    values = {name: _log10_s(s) for name, s in spectra.items()}
+    pooled = [v for v in values.values() if v.size]
+    if pooled:
+        lo = min(float(v.min()) for v in pooled)
+        hi = max(float(v.max()) for v in pooled)
+        x0, x1 = _axis_range((lo, hi), [0.0])
+    else:
+        x0, x1 = -1.0, 1.0
+    for ax, name, colour in zip(axes, names, DESIGN_COLOURS * (1 + n // len(DESIGN_COLOURS))):
+        s, v = spectra[name], values[name]
+        if v.size:
+            bins = _bins(v, _bin_count(v.size), min_width=(x1 - x0) / 150)
+            ax.hist(v, bins=bins, color=colour, alpha=0.85,
+                    weights=np.full(v.size, (1.0 - s.zero_fraction) / v.size / (bins[1] - bins[0])))
+            ax.set_ylim(0.0, 1.1 * max(p.get_height() for p in ax.patches))
+        else:
+            ax.text(0.5, 0.5, "every singular value is numerically zero", transform=ax.transAxes,
+                    ha="center", va="center", fontsize=9)
+            ax.set_yticks([])
+        ax.axvline(0.0, color=REFERENCE, ls="--", lw=1.0)
+        ax.set_title(name, loc="left", fontsize=9, color=colour, fontweight="bold")
+        if s.zero_fraction > 0:
+            ax.set_title(f"{_percent(s.zero_fraction)} numerically zero (not shown)", loc="right",
+                         fontsize=8)
+        ax.tick_params(labelsize=8)
+    axes[0].set_xlim(x0, x1)
+    axes[-1].set_xlabel("log10 s   (s: singular value of the input-output Jacobian; dashed: s = 1)")
+    fig.supylabel("density per unit log10 s", fontsize=9)
+    fig.suptitle(title)
+    return fig
 
 
 def depth_figure(depths: np.ndarray, measured: np.ndarray, predicted: np.ndarray, title: str,
@@ -162,7 +384,7 @@ def depth_figure(depths: np.ndarray, measured: np.ndarray, predicted: np.ndarray
     ax.set_xlabel("depth l (layers in the partial Jacobian J_l ... J_1)")
     ax.set_ylabel("std of ln s above the SVD floor")
     ax.set_title(title)
-    ax.legend(fontsize=8, frameon=False)
+    _legend_outside(ax)
     return fig
 
 
@@ -189,7 +411,7 @@ def critical_figure(sigma_w2: np.ndarray, sigma_b2: np.ndarray, point: tuple[flo
     ax.set_xlabel("sigma_w^2  (weight variance x fan-in)")
     ax.set_ylabel("sigma_b^2  (bias variance)")
     ax.set_title(title)
-    ax.legend(fontsize=8, frameon=False, loc="center left")
+    _legend_outside(ax)
     return fig
 
 

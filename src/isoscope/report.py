@@ -262,14 +262,13 @@ def _figures(analysis: Analysis, folder: Path, prefix: str = "") -> dict[str, Pa
         return {}
     name, p = analysis.spec.name, analysis.predicted
     out = {}
-    curve = None if p is None else plot.predicted_log10_s_curve(p.density.log_x, p.density.rho_log)
+    law = None if p is None else plot.PredictedLaw.from_density(p.density)
     g = analysis.agreement
     floor = None if g is None or g.floor <= 0 else 0.5 * math.log10(g.floor)
-    fig = plot.log_s_figure(analysis.spectrum, f"{name}: singular values s of J (log axis)", curve, floor,
+    fig = plot.log_s_figure(analysis.spectrum, f"{name}: singular values s of J (log axis)", law, floor,
                             _separate_length_mode(p))
     out["log_s"] = plot.save(fig, folder / f"{prefix}spectrum-log-s")[0]
-    curve = None if p is None else (p.density.x, p.density.rho)
-    fig = plot.lambda_figure(analysis.spectrum, f"{name}: eigenvalues lambda = s^2 of J J^T", curve)
+    fig = plot.lambda_figure(analysis.spectrum, f"{name}: eigenvalues lambda = s^2 of J J^T", law, floor)
     out["lambda"] = plot.save(fig, folder / f"{prefix}spectrum-lambda")[0]
     if analysis.profile is not None:
         pr = analysis.profile
