@@ -389,3 +389,12 @@ def test_progress_bar_only_on_a_terminal(tmp_path, capsys):
     bar(1, 4)
     bar.close()
     assert pipe.getvalue() == ""
+
+
+def test_analyze_reports_progress_after_each_draw():
+    from isoscope.analysis import analyze
+    from isoscope.spec import parse_spec
+    calls = []
+    spec = parse_spec({"name": "p", "network": {"width": 8, "depth": 2}, "analysis": {"inputs": 3}})
+    analyze(spec, progress=lambda done, total: calls.append((done, total)))
+    assert calls == [(1, 3), (2, 3), (3, 3)]

@@ -250,3 +250,12 @@ def test_interrupt_through_the_command_keeps_the_previous_folder(tmp_path):
             assert (out / "result.json").read_text() == before
         before = (out / "result.json").read_text()
     assert _debris(out) == []
+
+
+def test_a_dangling_link_of_ours_is_replaced(tmp_path):
+    target = tmp_path / "res"
+    os.symlink(".res.v-1-1-deadbeef", target)  # its version folder was removed by hand
+    r = folders.reserve(target)
+    (r.folder / "x").write_text("new")
+    r.commit()
+    assert (target / "x").read_text() == "new"

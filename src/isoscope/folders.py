@@ -191,9 +191,9 @@ def _state(target: Path) -> str:
     """"absent" | "link" (ours) | "legacy" (an isoscope directory) | "empty"; else InputError."""
     if target.is_symlink():
         dest = os.readlink(target)
-        if (os.sep not in dest and dest.startswith(f".{target.name}.v-")
-                and (target.parent / dest / MARKER).exists()):
-            return "link"
+        ours = os.sep not in dest and dest.startswith(f".{target.name}.v-")
+        if ours and ((target.parent / dest / MARKER).exists() or not os.path.lexists(target.parent / dest)):
+            return "link"  # our link (dangling only if someone removed the version folder by hand)
         raise InputError(f"output path {str(target)!r} is a link to {dest!r}, which isoscope did not write",
                          expected="a new folder, an empty one, or one isoscope wrote before",
                          hint="choose another --out; isoscope never overwrites other files")
