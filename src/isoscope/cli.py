@@ -148,7 +148,8 @@ def _cmd_demo(args) -> int:
         except BaseException:
             target.abort()
             raise
-    out = write_comparison_folder(analyses, target, DEMO_TITLE, DEMO_INTRO, spec_texts=texts)
+    write_comparison_folder(analyses, target, DEMO_TITLE, DEMO_INTRO, spec_texts=texts)
+    out = args.out
     if args.json:
         sys.stdout.write(to_json({"results": [result_dict(a) for a in analyses]}))
     else:
