@@ -226,3 +226,175 @@ def test_analyze_result_carries_prediction_agreement_and_profile(tmp_path, capsy
     assert len(r["profile"]["depths"]) == len(r["profile"]["measured_log_s_std"])
     for f in ("spread-by-depth.png", "critical-line.png"):
         assert (tmp_path / "res" / f).stat().st_size > 0
+
+
+# ----------------------------------------------------------------------------- issue 8: crashes, flags
+def test_seed_beyond_int64_runs_and_is_recorded(tmp_path, capsys):
+    # JAX keys are two uint32 words (threefry, Salmon et al. 2011): every seed in [0, 2^64) maps
+    # to one key; seeds below 2^63 keep the key jax.random.PRNGKey gives
+    spec = _write(tmp_path, GOOD.replace("seed = 3", f"seed = {2 ** 64 - 1}"))
+    code, out, err = _run(["analyze", spec, "--json"], capsys)
+    assert code == 0, err
+    assert json.loads(out)["spec"]["analysis"]["seed"] == 2 ** 64 - 1
+
+
+def test_seed_out_of_range_is_refused(tmp_path, capsys):
+    spec = _write(tmp_path, GOOD.replace("seed = 3", f"seed = {2 ** 64}"))
+    code, out, err = _run(["analyze", spec, "--json"], capsys)
+    assert code == 2 and "analysis.seed" in err and "18446744073709551615" in err, err
+
+
+def test_unreadable_spec_file_exit_2(tmp_path, capsys, monkeypatch):
+    import os
+    spec = _write(tmp_path, GOOD)
+    os.chmod(spec, 0)
+    if os.access(spec, os.R_OK):  # running as root: permissions do not apply, so simulate them
+        real = Path.read_text
+
+        def denied(self, *a, **k):
+            if self == spec:
+                raise PermissionError(13, "Permission denied", str(self))
+            return real(self, *a, **k)
+        monkeypatch.setattr(Path, "read_text", denied)
+    code, _, err = _run(["analyze", spec, "--json"], capsys)
+    assert code == 2 and str(spec) in err and "cannot be read" in err, err
+
+
+def test_spec_path_that_is_a_folder_exit_2(tmp_path, capsys):
+    code, _, err = _run(["analyze", tmp_path, "--json"], capsys)
+    assert code == 2 and "is a folder" in err, err
+
+
+@pytest.mark.parametrize("make,needle", [
+    (lambda p: np.savez(p.with_suffix(".npz"), x=np.ones(24)), "npz"),
+    (lambda p: np.save(p, np.ones(24) + 1j), "complex"),
+])
+def test_npz_and_complex_inputs_are_refused(tmp_path, capsys, make, needle):
+    make(tmp_path / "x.npy")
+    name = "x.npz" if needle == "npz" else "x.npy"
+    text = GOOD.replace("seed = 3", f'seed = 3\ninput = "file"\ninput_file = "{name}"')
+    spec = _write(tmp_path, text)
+    code, _, err = _run(["analyze", spec, "--json"], capsys)
+    assert code == 2 and "analysis.input_file" in err and needle in err, err
+
+
+def test_huge_width_is_refused_with_the_memory_estimate(tmp_path, capsys):
+    spec = _write(tmp_path, GOOD.replace("width = 24", "width = 1000000000000"))
+    code, out, err = _run(["analyze", spec, "--json"], capsys)
+    assert code == 2 and out == "" and "memory" in err and "available" in err, err
+
+
+@pytest.mark.parametrize("out", ["/proc/isoscope-x", "FILE/sub", "RO/sub"])
+def test_unwritable_out_fails_before_computing(tmp_path, capsys, monkeypatch, out):
+    import os
+    from isoscope import analysis
+    (tmp_path / "FILE").write_text("a file")
+    (tmp_path / "RO").mkdir()
+    os.chmod(tmp_path / "RO", 0o555)
+    if out.startswith("RO") and os.access(tmp_path / "RO", os.W_OK):
+        pytest.skip("permissions are not enforced for this user")
+    called = []
+    monkeypatch.setattr(analysis, "analyze", lambda *a, **k: called.append(1))
+    target = out if out.startswith("/") else tmp_path / out
+    code, _, err = _run(["analyze", _write(tmp_path, GOOD), "--out", target], capsys)
+    assert code == 2 and not called and "cannot create output folder" in err, err
+
+
+def test_empty_out_is_an_error(tmp_path, capsys):
+    code, _, err = _run(["analyze", _write(tmp_path, GOOD), "--out", ""], capsys)
+    assert code == 2 and "--out is empty" in err
+
+
+def test_json_without_out_writes_nothing(tmp_path, capsys, monkeypatch):
+    monkeypatch.chdir(tmp_path)
+    spec = _write(tmp_path, GOOD)
+    code, out, _ = _run(["analyze", spec, "--json"], capsys)
+    assert code == 0 and json.loads(out)["name"] == "t"
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["spec.toml"]
+
+
+def test_critical_plot_at_a_folder_exit_2(tmp_path, capsys):
+    (tmp_path / "fig.png").mkdir()
+    code, _, err = _run(["critical", "--activation", "tanh", "--plot", tmp_path / "fig.png"], capsys)
+    assert code == 2 and "is a folder" in err, err
+
+
+def test_broken_pipe_exits_quietly():
+    # `isoscope critical ... | head -0`: the reader is gone before anything is printed
+    p = subprocess.Popen([sys.executable, "-m", "isoscope", "critical", "--activation", "tanh"],
+                         stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+    p.stdout.close()
+    err = p.stderr.read().decode()
+    code = p.wait()
+    assert "Traceback" not in err and "BrokenPipe" not in err, err
+    assert code in (0, 141)
+
+
+def test_huge_sigma_w_does_not_overflow_the_report(tmp_path, capsys):
+    # sigma_w = 1e200: sigma_w**2 overflows a Python float (OverflowError); the report shows inf
+    text = GOOD.replace("sigma_w = 1.1", "sigma_w = 1e200").replace("depth = 6", "depth = 2")
+    out = tmp_path / "o"
+    code, _, err = _run(["analyze", _write(tmp_path, text), "--out", out], capsys)
+    assert code == 0, err
+    assert "sigma_w = 1e+200" in (out / "report.html").read_text()
+
+
+def test_critical_with_huge_sigma_w(capsys):
+    code, _, err = _run(["critical", "--activation", "tanh", "--sigma-w", 1e200, "--sigma-b", 1e200], capsys)
+    assert code in (0, 2) and "Traceback" not in err and "OverflowError" not in err, err
+
+
+def test_analyze_flags_override_the_spec_and_are_recorded(tmp_path, capsys):
+    spec = _write(tmp_path, GOOD)
+    code, out, err = _run(["analyze", spec, "--json", "--seed", 11, "--inputs", 3, "--dtype", "float32",
+                           "--width", 16, "--depth", 4, "--sigma-w", 1.3, "--sigma-b", 0.2], capsys)
+    assert code == 0, err
+    r = json.loads(out)
+    assert r["spec"]["analysis"] == {**r["spec"]["analysis"], "seed": 11, "inputs": 3, "dtype": "float32"}
+    assert r["spec"]["network"]["width"] == 16 and r["spec"]["network"]["depth"] == 4
+    assert r["spec"]["init"]["sigma_w"] == 1.3 and r["spec"]["init"]["sigma_b"] == 0.2
+    assert r["measured"]["draws"] == 3 and r["measured"]["singular_values_per_draw"] == 16
+
+
+@pytest.mark.parametrize("flag,value,needle", [
+    ("--dtype", "float16", "analysis.dtype.*float16.*float64, float32"),
+    ("--inputs", 0, "analysis.inputs.*0.*>= 1"),
+    ("--sigma-w", -1, "init.sigma_w"),
+])
+def test_analyze_bad_flags_exit_2(tmp_path, capsys, flag, value, needle):
+    import re
+    code, _, err = _run(["analyze", _write(tmp_path, GOOD), "--json", flag, value], capsys)
+    assert code == 2 and re.search(needle, err), err
+
+
+def test_version(capsys):
+    import isoscope
+    with pytest.raises(SystemExit) as e:
+        cli.main(["--version"])
+    assert e.value.code == 0 and capsys.readouterr().out.strip() == f"isoscope {isoscope.__version__}"
+
+
+def test_progress_bar_only_on_a_terminal(tmp_path, capsys):
+    import io
+    tty = io.StringIO()
+    tty.isatty = lambda: True
+    bar = cli._Progress(tty, "draws", min_seconds=0.0)
+    for i in range(1, 5):
+        bar(i, 4)
+    bar.close()
+    text = tty.getvalue()
+    assert "4/4 draws" in text and "left" in text and text.endswith("\n")
+    pipe = io.StringIO()
+    bar = cli._Progress(pipe, "draws", min_seconds=0.0)
+    bar(1, 4)
+    bar.close()
+    assert pipe.getvalue() == ""
+
+
+def test_analyze_reports_progress_after_each_draw():
+    from isoscope.analysis import analyze
+    from isoscope.spec import parse_spec
+    calls = []
+    spec = parse_spec({"name": "p", "network": {"width": 8, "depth": 2}, "analysis": {"inputs": 3}})
+    analyze(spec, progress=lambda done, total: calls.append((done, total)))
+    assert calls == [(1, 3), (2, 3), (3, 3)]

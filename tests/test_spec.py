@@ -28,3 +28,37 @@ def test_replace_changes_one_key_and_keeps_the_rest():
 def test_replace_is_validated():
     with pytest.raises(InputError, match="init.sigma_w"):
         parse_spec(PLAIN).replace(init={"sigma_w": -1.0})
+
+
+def test_seed_range_is_uint64():
+    # JAX threefry keys hold two uint32 words: seeds 0 .. 2^64 - 1
+    assert parse_spec({**PLAIN, "analysis": {"seed": 2 ** 64 - 1}}).analysis.seed == 2 ** 64 - 1
+    with pytest.raises(InputError, match=r"analysis.seed.*2\^64 - 1"):
+        parse_spec({**PLAIN, "analysis": {"seed": 2 ** 64}})
+
+
+def test_input_file_path_survives_a_round_trip(tmp_path, monkeypatch):
+    monkeypatch.chdir(tmp_path)
+    (tmp_path / "d").mkdir()
+    src = "d/spec.toml"  # a relative spec path, as typed on the command line
+    spec = parse_spec({**PLAIN, "analysis": {"input": "file", "input_file": "x.npy"}}, source=src)
+    again = parse_spec(spec.to_dict(), source=f"{src} with command-line flags")
+    assert again.analysis.input_file == spec.analysis.input_file == str(tmp_path / "d" / "x.npy")
+
+
+@pytest.mark.parametrize("seed", [0, 5, 2 ** 32 + 7, 2 ** 62 + 3, 2 ** 63 - 1])
+def test_seed_key_is_prngkey_below_2_63(seed):
+    # the same seed keeps its numbers: jax.random.PRNGKey(seed) is the reference
+    import jax
+    import numpy as np
+
+    from isoscope.analysis import seed_key
+    assert np.array_equal(np.asarray(seed_key(seed)), np.asarray(jax.random.PRNGKey(seed)))
+
+
+def test_seed_keys_beyond_2_63_are_distinct_words():
+    import numpy as np
+
+    from isoscope.analysis import seed_key
+    assert np.asarray(seed_key(2 ** 64 - 1)).tolist() == [2 ** 32 - 1, 2 ** 32 - 1]
+    assert np.asarray(seed_key(2 ** 63)).tolist() == [2 ** 31, 0]

@@ -4,8 +4,32 @@ Importing isoscope turns on JAX's float64 mode (``jax_enable_x64``): analyses ru
 by default and cast to float32 only when a spec asks for it.
 """
 
-import jax as _jax
+import signal as _signal
+import threading as _threading
 
+
+def _import_jax():
+    """``import jax`` with SIGINT held back until the import is complete, then re-raised.
+
+    A KeyboardInterrupt raised inside jaxlib's import leaves its native state half-built and the
+    interpreter aborts (SIGABRT) on the way out; held back, Ctrl-C during ``import isoscope``
+    raises an ordinary KeyboardInterrupt right after the import.
+    """
+    if _threading.current_thread() is not _threading.main_thread():
+        import jax
+        return jax
+    pending = []
+    previous = _signal.signal(_signal.SIGINT, lambda signum, frame: pending.append(signum))
+    try:
+        import jax
+    finally:
+        _signal.signal(_signal.SIGINT, previous)
+    if pending and previous is not _signal.SIG_IGN:
+        raise KeyboardInterrupt
+    return jax
+
+
+_jax = _import_jax()
 _jax.config.update("jax_enable_x64", True)
 
 from isoscope.activations import Activation, activation_names, get_activation  # noqa: E402

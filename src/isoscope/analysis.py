@@ -14,6 +14,7 @@ import functools
 import math
 import time
 from pathlib import Path
+from typing import Callable
 
 import jax
 import jax.numpy as jnp
@@ -31,7 +32,7 @@ from isoscope.theory import mean_field
 from isoscope.theory.predict import Prediction, predict
 
 __all__ = ["Analysis", "DepthProfile", "InputPlan", "analyze", "build_network", "depth_profile",
-           "plan_inputs", "predict_spec", "prediction_for", "spec_activation"]
+           "plan_inputs", "predict_spec", "prediction_for", "seed_key", "spec_activation"]
 
 # Relative accuracy of an SVD is about n * eps * s_max: below 10^-(digits) of the largest,
 # small singular values are noise.  Digits usable per dtype (common practice, no source:
@@ -197,29 +198,61 @@ def _homogeneous_plan(spec: Spec, act: Activation, v: float) -> tuple[InputPlan,
 
 
 def _load_inputs(spec: Spec, dtype) -> np.ndarray:
+    """The inputs of ``input = "file"``: a real ``.npy`` array of shape ``(width,)`` (one input
+    for every draw) or ``(inputs, width)``, finite, cast to ``dtype``.
+
+    Raises:
+      InputError: the file is missing, unreadable, an ``.npz`` archive, complex, of the wrong
+        shape or not finite (each message names the file and ``analysis.input_file``).
+    """
     a, n = spec.analysis, spec.network.width
+
+    def refuse(message, expected, hint=None):
+        return InputError(message, expected=expected, hint=hint, file=spec.source,
+                          key="analysis.input_file")
+
     path = Path(a.input_file)
     try:
         x = np.load(path, allow_pickle=False)
     except FileNotFoundError:
-        raise InputError(f"input file {str(path)!r} does not exist", expected="a .npy file",
-                         file=spec.source, key="analysis.input_file") from None
-    except (ValueError, OSError) as e:
-        raise InputError(f"input file {str(path)!r} is not a readable .npy array ({e})",
-                         expected="a file written by numpy.save", file=spec.source,
-                         key="analysis.input_file") from None
+        raise refuse(f"input file {str(path)!r} does not exist", "a .npy file") from None
+    except IsADirectoryError:
+        raise refuse(f"input file {str(path)!r} is a folder", "a .npy file") from None
+    except PermissionError:
+        raise refuse(f"input file {str(path)!r} cannot be read (permission denied)", "a readable .npy file",
+                     "check its permissions") from None
+    except (ValueError, OSError, EOFError) as e:
+        raise refuse(f"input file {str(path)!r} is not a readable .npy array ({e})",
+                     "a file written by numpy.save") from None
+    if isinstance(x, np.lib.npyio.NpzFile):
+        names = list(x.files)
+        x.close()
+        raise refuse(f"input file {str(path)!r} is an .npz archive (arrays {names})", "one .npy array",
+                     "save the array you mean with numpy.save(\"x.npy\", array)")
+    if np.iscomplexobj(x):
+        raise refuse(f"input file {str(path)!r} holds a complex array (dtype {x.dtype})",
+                     "real numbers (a network input is real)",
+                     "save the real part, or the real and imaginary parts as separate coordinates")
     if x.shape == (n,):
         x = np.broadcast_to(x, (a.inputs, n))
-    if x.shape != (a.inputs, n) or not np.issubdtype(x.dtype, np.number):
-        raise InputError(f"input file {str(path)!r} holds an array of shape {x.shape} and dtype {x.dtype}",
-                         expected=f"a numeric array of shape ({n},) or ({a.inputs}, {n}) "
-                                  "(width, or inputs x width)",
-                         file=spec.source, key="analysis.input_file",
-                         hint="save one row per draw, or set analysis.inputs to the number of rows")
+    if x.shape != (a.inputs, n) or not (np.issubdtype(x.dtype, np.number) or x.dtype == np.bool_):
+        raise refuse(f"input file {str(path)!r} holds an array of shape {x.shape} and dtype {x.dtype}",
+                     f"a numeric array of shape ({n},) or ({a.inputs}, {n}) (width, or inputs x width)",
+                     "save one row per draw, or set analysis.inputs to the number of rows")
     if not np.all(np.isfinite(x)):
-        raise InputError(f"input file {str(path)!r} contains inf or NaN", expected="finite values",
-                         file=spec.source, key="analysis.input_file")
+        raise refuse(f"input file {str(path)!r} contains inf or NaN", "finite values")
     return np.asarray(x, dtype=dtype)
+
+
+def seed_key(seed: int) -> jax.Array:
+    """The root PRNG key of a seed in ``[0, 2^64)``: the raw threefry key ``[seed >> 32, seed mod 2^32]``
+    (two uint32 words, Salmon et al. 2011), equal to ``jax.random.PRNGKey(seed)`` for every seed
+    below 2^63, which ``PRNGKey`` cannot take beyond."""
+    seed = int(seed)
+    if not 0 <= seed < 2 ** 64:
+        raise InputError(f"seed {seed} is out of range", expected="an integer from 0 to 2^64 - 1",
+                         key="analysis.seed")
+    return jnp.asarray([seed >> 32, seed & 0xFFFFFFFF], dtype=jnp.uint32)
 
 
 def _draw_input(plan: InputPlan, network: Network, key, dtype) -> jax.Array:
@@ -315,13 +348,14 @@ def depth_profile(spec: Spec, plan: InputPlan, network: Network, params, x) -> D
     return DepthProfile(depths, m_std, np.array(p_std), m_m1, np.array(p_m1))
 
 
-def analyze(spec: Spec) -> Analysis:
+def analyze(spec: Spec, progress: Callable[[int, int], None] | None = None) -> Analysis:
     """Measure and score one design.
 
     For each draw i: parameters ``network.init(k_params)``, an input from the resolved
     :class:`InputPlan`, the exact Jacobian by ``jax.jacfwd``, its singular values.  Draws are
     pooled in one :class:`~isoscope.spectrum.Spectrum`.  If any draw overflows, the analysis
     reports where (forward pass or Jacobian, and the first layer) and scores ``non-finite``.
+    ``progress(done, total)``, if given, is called after each draw.
     """
     t0 = time.perf_counter()
     network = build_network(spec)
@@ -330,7 +364,7 @@ def analyze(spec: Spec) -> Analysis:
     file_inputs = _load_inputs(spec, dtype) if plan.kind == "file" else None
     if file_inputs is not None:
         plan = dataclasses.replace(plan, variance=float(np.mean(file_inputs.astype(np.float64) ** 2)))
-    root = jax.random.PRNGKey(spec.analysis.seed)
+    root = seed_key(spec.analysis.seed)
     seconds = {"jacobian": 0.0, "svd": 0.0}
     singular, fault, first = [], None, None
     for i in range(spec.analysis.inputs):
@@ -349,6 +383,8 @@ def analyze(spec: Spec) -> Analysis:
         t = time.perf_counter()
         singular.append(np.asarray(_svd_values()(jmat)))
         seconds["svd"] += time.perf_counter() - t
+        if progress is not None:
+            progress(i + 1, spec.analysis.inputs)
     if fault is not None:
         spectrum, score = None, non_finite_score(f"draw {i}: {fault.detail}")
         warnings += (f"measurement stopped: {fault.detail} (draw {i}); lower sigma_w or the depth, "

@@ -1,14 +1,19 @@
 """The ``isoscope`` command.
 
 Exit codes: 0 success, 2 bad input (the message names the file, key, value and what is
-allowed), 1 internal error.  ``--json`` sends the machine-readable result to stdout and
-keeps everything else on stderr.
+allowed), 1 internal error, 130 interrupted (Ctrl-C; no output folder is changed), 141 the
+reader of stdout went away (a broken pipe, as in ``isoscope critical ... | head -2``).
+``--json`` sends the machine-readable result to stdout and keeps everything else on stderr;
+without ``--out`` it writes nothing to disk.
 """
 
 from __future__ import annotations
 
 import argparse
+import os
+import signal
 import sys
+import time
 import traceback
 from importlib import resources
 from pathlib import Path
@@ -32,15 +37,89 @@ def _demo_specs() -> dict[str, str]:
             for p in sorted(folder.iterdir(), key=lambda p: p.name) if p.name.endswith(".toml")}
 
 
-def _cmd_analyze(args) -> int:
-    from isoscope.analysis import analyze
-    from isoscope.report import result_dict, summary_table, to_json, write_analysis_folder
-    from isoscope.spec import load_spec
+class _Progress:
+    """A one-line progress display ``[#####.....] 3/10 draws, 1.2/s, 6 s left`` on ``stream``.
+
+    Drawn only when ``stream`` is a terminal, and only once ``min_seconds`` have passed (a
+    short run shows nothing); silent when piped.  Call it as ``progress(done, total)``.
+    """
+
+    def __init__(self, stream, unit: str, min_seconds: float = 1.0):
+        self.stream, self.unit, self.min_seconds = stream, unit, min_seconds
+        self.on = bool(getattr(stream, "isatty", lambda: False)())
+        self.start, self.drawn = time.perf_counter(), False
+
+    def __call__(self, done: int, total: int) -> None:
+        elapsed = time.perf_counter() - self.start
+        if not self.on or elapsed < self.min_seconds:
+            return
+        rate = done / elapsed if elapsed > 0 else 0.0
+        left = (total - done) / rate if rate > 0 else float("inf")
+        filled = int(30 * done / max(total, 1))
+        left_text = "?" if left == float("inf") else (f"{left:.0f} s" if left < 120 else f"{left / 60:.0f} min")
+        self.stream.write(f"\r[{'#' * filled}{'.' * (30 - filled)}] {done}/{total} {self.unit}, "
+                          f"{rate:.3g}/s, {left_text} left ")
+        self.stream.flush()
+        self.drawn = True
+
+    def close(self) -> None:
+        """End the line (when something was drawn)."""
+        if self.drawn:
+            self.stream.write("\n")
+            self.stream.flush()
+            self.drawn = False
+
+
+# flag -> spec key, for the overrides `analyze` lays over its spec
+_ANALYSIS_FLAGS = (("seed", "analysis", "seed"), ("inputs", "analysis", "inputs"),
+                   ("dtype", "analysis", "dtype"), ("width", "network", "width"),
+                   ("depth", "network", "depth"), ("sigma_w", "init", "sigma_w"),
+                   ("sigma_b", "init", "sigma_b"))
+
+
+def _spec_with_flags(args, flags):
+    """``load_spec(args.spec)`` with the given flags laid over its keys, validated as spec keys."""
+    from isoscope.spec import load_spec, parse_spec
 
     spec = load_spec(args.spec)
-    out = Path(args.out) if args.out else Path("isoscope-out") / spec.name
-    result = analyze(spec)
-    write_analysis_folder(result, out)
+    given = [(section, key, getattr(args, flag)) for flag, section, key in flags
+             if getattr(args, flag, None) is not None]
+    if not given:
+        return spec
+    data = spec.to_dict()
+    for section, key, value in given:
+        data.setdefault(section, {})[key] = value
+    return parse_spec(data, source=f"{args.spec} with command-line flags")
+
+
+def _cmd_analyze(args) -> int:
+    from isoscope import budget
+    from isoscope.folders import reserve, safe_folder_name
+
+    spec = _spec_with_flags(args, _ANALYSIS_FLAGS)
+    if args.out is not None:
+        out = args.out
+    elif args.json:
+        out = None  # --json alone: the result goes to stdout, nothing to disk
+    else:
+        out = Path("isoscope-out") / safe_folder_name(spec.name)
+    budget.check(spec)  # before anything is allocated
+    target = reserve(out) if out is not None else None  # before computing: fail early
+    try:
+        from isoscope.analysis import analyze
+        from isoscope.report import result_dict, summary_table, to_json, write_analysis_folder
+
+        bar = _Progress(sys.stderr, "draws")
+        try:
+            result = analyze(spec, progress=bar)
+        finally:
+            bar.close()
+        if target is not None:
+            write_analysis_folder(result, target)
+    except BaseException:
+        if target is not None:
+            target.abort()
+        raise
     if args.json:
         sys.stdout.write(to_json(result_dict(result)))
     else:
@@ -56,14 +135,21 @@ def _cmd_demo(args) -> int:
     from isoscope.report import result_dict, summary_table, to_json, write_comparison_folder
     from isoscope.spec import parse_spec
 
+    from isoscope.folders import reserve
+
     texts = _demo_specs()
+    target = reserve(args.out)
     analyses = []
     for i, (name, text) in enumerate(texts.items(), 1):
         if sys.stderr.isatty() and not args.json:
             print(f"[{i}/{len(texts)}] {name}", file=sys.stderr, flush=True)
-        analyses.append(analyze(parse_spec(tomllib.loads(text), source=f"<built-in {name}.toml>")))
-    out = Path(args.out)
-    write_comparison_folder(analyses, out, DEMO_TITLE, DEMO_INTRO, spec_texts=texts)
+        try:
+            analyses.append(analyze(parse_spec(tomllib.loads(text), source=f"<built-in {name}.toml>")))
+        except BaseException:
+            target.abort()
+            raise
+    write_comparison_folder(analyses, target, DEMO_TITLE, DEMO_INTRO, spec_texts=texts)
+    out = args.out
     if args.json:
         sys.stdout.write(to_json({"results": [result_dict(a) for a in analyses]}))
     else:
@@ -190,26 +276,28 @@ def _cmd_critical(args) -> int:
         act = get_activation(args.activation)
     except (KeyError, ValueError) as e:
         raise InputError(str(e), expected="a registered activation name") from None
+    plot_path = _check_figure_path(Path(args.plot)) if args.plot is not None else None
     crit = mf.critical_point(act, args.sigma_b)
     sigma_w = crit.sigma_w if args.sigma_w is None else args.sigma_w
     point = mf.mean_field(act, sigma_w, args.sigma_b)
     line = mf.critical_line(act)
-    if args.plot:
+    sb2 = args.sigma_b * args.sigma_b  # not ** 2, which raises OverflowError beyond 1e154
+    if plot_path is not None:
         from isoscope import plot
-        fig = plot.critical_figure(line.sigma_w2, line.sigma_b2, (sigma_w ** 2, args.sigma_b ** 2),
+        fig = plot.critical_figure(line.sigma_w2, line.sigma_b2, (sigma_w * sigma_w, sb2),
                                    f"{act.name}: critical line", label=f"sigma_w = {sigma_w:.4g}, "
                                    f"sigma_b = {args.sigma_b:.4g}")
-        _save_figure(fig, Path(args.plot))
+        _save_figure(fig, plot_path)
     trainable = None if args.depth is None else bool(args.depth <= 6.0 * point.xi_c)
     if args.json:
         sys.stdout.write(to_json({
             "schema": "isoscope.critical/1", "activation": act.name,
-            "sigma_b": args.sigma_b, "sigma_b2": args.sigma_b ** 2,
+            "sigma_b": args.sigma_b, "sigma_b2": sb2,
             "sigma_w": crit.sigma_w, "sigma_w2": crit.sigma_w2, "q_star": crit.q_star,
             "point": point._asdict(), "depth": args.depth, "depth_within_6_xi_c": trainable,
             "line": {"sigma_w2": line.sigma_w2, "sigma_b2": line.sigma_b2, "q_star": line.q_star}}))
         return 0
-    print(f"{act.name}, sigma_b = {args.sigma_b:.6g} (sigma_b^2 = {args.sigma_b ** 2:.6g}): critical "
+    print(f"{act.name}, sigma_b = {args.sigma_b:.6g} (sigma_b^2 = {sb2:.6g}): critical "
           f"sigma_w = {crit.sigma_w:.10g} (sigma_w^2 = {crit.sigma_w2:.10g}), q* = {crit.q_star:.6g}")
     print(f"at sigma_w = {sigma_w:.6g}: q* = {_fmt(point.q_star)}, chi_1 = {point.chi1:.10g} "
           f"({point.phase}), xi_q = {_fmt(point.xi_q)}, xi_c = {_fmt(point.xi_c)}, c* = {_fmt(point.c_star)}")
@@ -221,22 +309,42 @@ def _cmd_critical(args) -> int:
     return 0
 
 
+def _check_figure_path(path: Path) -> Path:
+    """Refuse, before any work, a figure path isoscope cannot write (suffix, folder, rights)."""
+    fmt = path.suffix.lower().lstrip(".")
+    if path.is_dir():
+        raise InputError(f"--plot {str(path)!r} is a folder", expected="a file path ending in .png or .svg",
+                         hint=f"e.g. --plot {str(path / 'critical-line.png')!r}")
+    if fmt not in ("png", "svg"):
+        raise InputError(f"--plot {str(path)!r} has suffix {path.suffix!r}", expected=".png or .svg")
+    parent = path.parent
+    if not parent.is_dir():
+        raise InputError(f"--plot {str(path)!r}: folder {str(parent)!r} does not exist",
+                         expected="a path in an existing folder")
+    if not os.access(parent, os.W_OK | os.X_OK):
+        raise InputError(f"--plot {str(path)!r}: folder {str(parent)!r} is not writable",
+                         expected="a path in a folder you may write")
+    return path
+
+
 def _save_figure(fig, path: Path) -> None:
     """Save one figure atomically (a temporary file renamed into place); PNG or SVG by suffix."""
-    import os
     import tempfile
 
     from isoscope import plot
+    _check_figure_path(path)
     fmt = path.suffix.lower().lstrip(".")
-    if fmt not in ("png", "svg"):
-        raise InputError(f"--plot {str(path)!r} has suffix {path.suffix!r}", expected=".png or .svg")
-    if not path.parent.exists():
-        raise InputError(f"--plot {str(path)!r}: folder {str(path.parent)!r} does not exist",
-                         expected="a path in an existing folder")
-    fd, tmp = tempfile.mkstemp(suffix=path.suffix, dir=path.parent)
+    try:
+        fd, tmp = tempfile.mkstemp(suffix=path.suffix, prefix=f".{path.name}.", dir=path.parent)
+    except OSError as e:
+        raise InputError(f"--plot {str(path)!r} cannot be written ({e.strerror or e})",
+                         expected="a path in a folder you may write") from None
     os.close(fd)
     try:
         fig.savefig(tmp, dpi=130, format=fmt)
+        from isoscope.folders import interrupted
+        if interrupted():
+            raise KeyboardInterrupt
         os.replace(tmp, path)
     finally:
         if os.path.exists(tmp):
@@ -260,13 +368,24 @@ def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(
         prog="isoscope",
         description="Jacobian spectra of deep networks at initialization: measure, score, report.")
+    from isoscope import __version__
+    p.add_argument("--version", action="version", version=f"isoscope {__version__}")
     sub = p.add_subparsers(dest="command", required=True, metavar="COMMAND")
 
     a = sub.add_parser("analyze", help="measure and score one design from a TOML spec",
                        description="Measure the input-output Jacobian spectrum of one design.")
     a.add_argument("spec", metavar="SPEC.toml", help="the design (see docs/spec.md)")
-    a.add_argument("--out", metavar="DIR", help="output folder (default isoscope-out/NAME)")
+    a.add_argument("--out", metavar="DIR",
+                   help="output folder (default isoscope-out/ and a folder name made from the spec's name; "
+                        "with --json and no --out nothing is written to disk)")
     a.add_argument("--json", action="store_true", help="print the result JSON to stdout")
+    a.add_argument("--seed", type=int, help="PRNG seed, 0 .. 2^64 - 1 (analysis.seed)")
+    a.add_argument("--inputs", type=int, help="number of draws (analysis.inputs)")
+    a.add_argument("--dtype", help="float64 | float32 (analysis.dtype)")
+    a.add_argument("--width", type=int, help="width N (network.width)")
+    a.add_argument("--depth", type=int, help="number of weight layers (network.depth)")
+    a.add_argument("--sigma-w", dest="sigma_w", type=float, help="weight scale (init.sigma_w)")
+    a.add_argument("--sigma-b", dest="sigma_b", type=float, help="bias scale (init.sigma_b)")
     a.set_defaults(run=_cmd_analyze)
 
     d = sub.add_parser("demo", help="run the built-in scenario end to end",
@@ -299,11 +418,26 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def main(argv: list[str] | None = None) -> int:
-    """Entry point: parse ``argv``, run the command, map errors to exit codes."""
+    """Entry point: parse ``argv``, run the command, map errors to exit codes.
+
+    SIGINT is routed through :func:`isoscope.folders.install_interrupt_flag` for the run (and
+    the previous handler restored afterwards), so an interrupt that some library swallowed still
+    stops the run before any folder is switched, and the exit code is 130.
+    """
+    from isoscope import folders
+
     parser = build_parser()
     args = parser.parse_args(argv)
+    main_thread = __import__("threading").current_thread() is __import__("threading").main_thread()
+    previous = signal.getsignal(signal.SIGINT) if main_thread else None
+    if main_thread:
+        folders.install_interrupt_flag()
     try:
-        return args.run(args)
+        code = args.run(args)
+        sys.stdout.flush()
+        if folders.interrupted():
+            raise KeyboardInterrupt
+        return code
     except SolverError as e:   # a solver limit, not bad input
         print(f"isoscope {args.command}: error: {e}", file=sys.stderr)
         return 1
@@ -311,13 +445,33 @@ def main(argv: list[str] | None = None) -> int:
         print(f"isoscope {args.command}: error: {e}", file=sys.stderr)
         return 2
     except KeyboardInterrupt:
-        print("isoscope: interrupted; no output folder was changed", file=sys.stderr)
+        done = folders.committed()
+        print("isoscope: interrupted; " + (f"{done[-1]} had already been written completely" if done
+                                           else "no output folder was changed"), file=sys.stderr)
+        if argv is None:
+            # the process entry point: leave at once.  An interrupt that landed inside JAX's native
+            # code can leave it in a state that crashes the interpreter's shutdown (seen as SIGSEGV
+            # or SIGABRT); every folder is already settled, so skip the shutdown.
+            sys.stdout.flush()
+            sys.stderr.flush()
+            os._exit(130)
         return 130
+    except BrokenPipeError:
+        # the reader of stdout left (`| head`): nothing more to say, and nothing at exit either
+        try:
+            os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        except (OSError, ValueError):
+            pass
+        return 141
     except Exception:  # an internal error: show it, exit 1
         traceback.print_exc()
         print("isoscope: internal error (a bug: please report it with the spec that caused it)",
               file=sys.stderr)
         return 1
+    finally:
+        if main_thread:
+            signal.signal(signal.SIGINT, previous)
+            folders._INTERRUPTED = False
 
 
 if __name__ == "__main__":

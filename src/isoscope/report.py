@@ -1,9 +1,10 @@
 """Results as files: versioned JSON, figures, a self-contained HTML page, a terminal table.
 
-Output folders are written crash-safe: everything goes into a temporary sibling folder, which
-is renamed into place only when complete.  An existing folder is replaced only if isoscope
-wrote it (it holds the marker file ``.isoscope-output``); any other non-empty folder is left
-alone and the run stops with an error, so nothing a user saved is overwritten.
+Output folders are written crash-safe (:mod:`isoscope.folders`): everything goes into a
+version folder beside the target, and the target, a link, is switched to it in one atomic
+rename only when it is complete.  An existing folder is replaced only if isoscope wrote it;
+any other non-empty folder is left alone and the run stops with an error, so nothing a user
+saved is overwritten.
 """
 
 from __future__ import annotations
@@ -14,21 +15,19 @@ import json
 import math
 import os
 import platform
-import shutil
-import tempfile
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
 from isoscope.analysis import Analysis
-from isoscope.errors import InputError, TheoryError
+from isoscope.errors import TheoryError
+from isoscope.folders import MARKER, Reservation, reserve, safe_folder_name
 
 __all__ = ["SCHEMA", "GLOSSARY", "result_dict", "prediction_dict", "to_json", "write_analysis_folder",
            "write_comparison_folder", "summary_table", "output_folder"]
 
 SCHEMA = "isoscope.result/1"
-MARKER = ".isoscope-output"
 
 GLOSSARY = {
     "measured.draws": "independent (parameter, input) draws pooled in the spectrum",
@@ -208,42 +207,38 @@ def to_json(data: Any) -> str:
 
 # ----------------------------------------------------------------------------- folders
 class output_folder:
-    """Context manager: a temporary folder that replaces ``target`` only on success.
+    """Context manager: a version folder that replaces ``target`` only on success.
 
-    ``with output_folder(path) as tmp: ...write into tmp...``.  On an exception the
-    temporary folder is removed and ``target`` is untouched.
+    ``with output_folder(path) as tmp: ...write into tmp...``.  ``target`` is a path, or a
+    :class:`~isoscope.folders.Reservation` taken before the computation (which checks the
+    destination early).  On an exception the version folder is removed and ``target`` is
+    untouched; on success ``target`` is switched to it atomically (see :mod:`isoscope.folders`).
     """
 
-    def __init__(self, target: str | Path):
-        self.target = Path(target)
+    def __init__(self, target: "str | Path | Reservation"):
+        self.reservation = target if isinstance(target, Reservation) else None
+        self.target = target.target if isinstance(target, Reservation) else target
 
     def __enter__(self) -> Path:
-        t = self.target
-        if t.exists() and not t.is_dir():
-            raise InputError(f"output path {str(t)!r} exists and is not a folder",
-                             expected="a new or isoscope-written folder", hint="choose another --out")
-        if t.is_dir() and any(t.iterdir()) and not (t / MARKER).exists():
-            raise InputError(f"output folder {str(t)!r} is not empty and was not written by isoscope",
-                             expected="a new folder, an empty one, or one isoscope wrote before",
-                             hint="choose another --out; isoscope never overwrites other files")
-        t.parent.mkdir(parents=True, exist_ok=True)
-        self.tmp = Path(tempfile.mkdtemp(prefix=f".{t.name}.partial-", dir=t.parent))
-        return self.tmp
+        if self.reservation is None:
+            self.reservation = reserve(self.target)
+        return self.reservation.folder
 
     def __exit__(self, exc_type, exc, tb) -> bool:
         if exc_type is not None:
-            shutil.rmtree(self.tmp, ignore_errors=True)
+            self.reservation.abort()
             return False
-        (self.tmp / MARKER).write_text("written by isoscope; this folder is replaced on the next run\n")
-        os.chmod(self.tmp, 0o755)
-        old = None
-        if self.target.exists():
-            old = self.target.with_name(f".{self.target.name}.old-{os.getpid()}")
-            os.replace(self.target, old)
-        os.replace(self.tmp, self.target)
-        if old is not None:
-            shutil.rmtree(old, ignore_errors=True)
+        try:
+            self.reservation.commit()
+        except BaseException:
+            self.reservation.abort()
+            raise
         return False
+
+
+def _square(v: float) -> float:
+    """``v * v`` (inf beyond the float range; ``v ** 2`` would raise OverflowError)."""
+    return v * v
 
 
 def _separate_length_mode(p) -> float | None:
@@ -281,8 +276,9 @@ def _figures(analysis: Analysis, folder: Path, prefix: str = "") -> dict[str, Pa
             line = mean_field.critical_line(n.activation)
         except TheoryError:  # no critical line for this activation: nothing to draw
             line = None
-        if line is not None:
-            fig = plot.critical_figure(line.sigma_w2, line.sigma_b2, (i.sigma_w ** 2, i.sigma_b ** 2),
+        point = (_square(i.sigma_w), _square(i.sigma_b))
+        if line is not None and all(map(math.isfinite, point)):  # a point beyond the float range has no place
+            fig = plot.critical_figure(line.sigma_w2, line.sigma_b2, point,
                                        f"{name}: {n.activation} phase diagram")
             out["critical"] = plot.save(fig, folder / f"{prefix}critical-line")[0]
     return out
@@ -327,7 +323,7 @@ def _design_line(r: dict[str, Any]) -> str:
     n, i, a = r["spec"]["network"], r["spec"]["init"], r["spec"]["analysis"]
     extra = f", alpha = {n['alpha']:g}" if n["family"] == "residual" else ""
     return (f"{n['family']} stack, width {n['width']}, depth {n['depth']}, {n['activation']}; "
-            f"{i['weights']} weights, sigma_w = {i['sigma_w']:g} (sigma_w^2 = {i['sigma_w'] ** 2:.4g}), "
+            f"{i['weights']} weights, sigma_w = {i['sigma_w']:g} (sigma_w^2 = {_square(i['sigma_w']):.4g}), "
             f"sigma_b = {i['sigma_b']:g}{extra}; {a['inputs']} draws, seed {a['seed']}, {a['dtype']}")
 
 
@@ -360,26 +356,30 @@ def _section_html(r: dict[str, Any], figures: dict[str, Path]) -> str:
             f"<p><b>{html.escape(r['score']['verdict'])}</b>: {html.escape(r['score']['reason'])}</p>{figs}")
 
 
-def write_analysis_folder(analysis: Analysis, out: str | Path) -> Path:
-    """Write ``result.json``, the figures (PNG and SVG) and ``report.html`` for one analysis."""
+def write_analysis_folder(analysis: Analysis, out: "str | Path | Reservation") -> Path:
+    """Write ``result.json``, the figures (PNG and SVG) and ``report.html`` for one analysis.
+
+    ``out`` is the folder, or a :func:`~isoscope.folders.reserve` of it taken before computing.
+    """
     result = result_dict(analysis)
     with output_folder(out) as tmp:
         figures = _figures(analysis, tmp)
         (tmp / "result.json").write_text(to_json(result))
         page = _html_page(f"isoscope: {analysis.spec.name}", "", [result], [_section_html(result, figures)])
         (tmp / "report.html").write_text(page)
-    return Path(out)
+    return Path(out.target if isinstance(out, Reservation) else out)
 
 
-def write_comparison_folder(analyses: list[Analysis], out: str | Path, title: str, intro_html: str,
-                            spec_texts: dict[str, str] | None = None) -> Path:
-    """Write a folder comparing several designs: one sub-folder per design, a summary, a page."""
+def write_comparison_folder(analyses: list[Analysis], out: "str | Path | Reservation", title: str,
+                            intro_html: str, spec_texts: dict[str, str] | None = None) -> Path:
+    """Write a folder comparing several designs: one sub-folder per design (named by
+    :func:`~isoscope.folders.safe_folder_name` of its label), a summary, a page."""
     from isoscope import plot
     results = [result_dict(a) for a in analyses]
     with output_folder(out) as tmp:
         sections = []
         for a, r in zip(analyses, results):
-            sub = tmp / a.spec.name
+            sub = tmp / safe_folder_name(a.spec.name)
             sub.mkdir()
             (sub / "result.json").write_text(to_json(r))
             sections.append(_section_html(r, _figures(a, sub)))
@@ -392,11 +392,11 @@ def write_comparison_folder(analyses: list[Analysis], out: str | Path, title: st
         if spec_texts:
             (tmp / "specs").mkdir()
             for name, text in spec_texts.items():
-                (tmp / "specs" / f"{name}.toml").write_text(text)
+                (tmp / "specs" / f"{safe_folder_name(name)}.toml").write_text(text)
         (tmp / "summary.json").write_text(to_json({"schema": SCHEMA, "title": title, "results": results}))
         page = _html_page(title, intro_html + fig_html, results, sections)
         (tmp / "report.html").write_text(page)
-    return Path(out)
+    return Path(out.target if isinstance(out, Reservation) else out)
 
 
 def _cell(v: float, spec: str) -> str:

@@ -16,19 +16,22 @@ A spec describes one design to analyse::
     sigma_b = 0.0
     [analysis]
     inputs = 4                # independent (parameter, input) draws, pooled
-    seed = 0
+    seed = 0                  # 0 .. 2^64 - 1
     dtype = "float64"         # float64 | float32
     input = "steady-state"    # steady-state | gaussian | file
     input_variance = 1.0      # for input = "gaussian"
     input_file = "x.npy"      # for input = "file"; shape (width,) or (inputs, width)
 
-Unknown keys are errors (a misspelt key would otherwise be silently ignored).
+Unknown keys are errors (a misspelt key would otherwise be silently ignored).  ``name`` is a
+label (any text); the default output folder is derived from it by
+:func:`isoscope.folders.safe_folder_name`, never used as a path.
 """
 
 from __future__ import annotations
 
 import dataclasses
 import math
+import os
 import tomllib
 from pathlib import Path
 from typing import Any
@@ -118,12 +121,20 @@ def _err(source, key, message, expected, hint=None):
     return InputError(message, expected=expected, hint=hint, file=source, key=key)
 
 
-def _int(source, key, v, minimum):
+def _int(source, key, v, minimum, maximum=None, maximum_text=None):
+    allowed = (f"an integer >= {minimum}" if maximum is None else
+               f"an integer from {minimum} to {maximum_text or maximum} ({maximum})")
     if isinstance(v, bool) or not isinstance(v, int):
-        raise _err(source, key, f"value {v!r} is not a whole number", f"an integer >= {minimum}")
+        raise _err(source, key, f"value {v!r} is not a whole number", allowed)
     if v < minimum:
-        raise _err(source, key, f"value {v} is too small", f"an integer >= {minimum}")
+        raise _err(source, key, f"value {v} is too small", allowed)
+    if maximum is not None and v > maximum:
+        raise _err(source, key, f"value {v} is too large", allowed)
     return v
+
+
+# A JAX PRNG key (threefry) is two uint32 words, so seeds are unsigned 64-bit integers.
+SEED_MAX = 2 ** 64 - 1
 
 
 def _float(source, key, v, minimum=0.0):
@@ -218,13 +229,14 @@ def parse_spec(data: dict[str, Any], source: str | None = None) -> Spec:
             raise _err(source, "analysis.input_file", f"value {input_file!r} is not a path",
                        "a path to a .npy file (relative paths are relative to the spec file)")
         if source and not Path(input_file).is_absolute():
-            input_file = str(Path(source).parent / input_file)
+            # made absolute once, so that the resolved spec reads back to the same file
+            input_file = os.path.abspath(Path(source).parent / input_file)
     elif input_file is not None:
         raise _err(source, "analysis.input_file", "input_file is set but input is not \"file\"",
                    "input = \"file\" together with input_file")
     analysis = AnalysisSpec(
         inputs=_int(source, "analysis.inputs", ana.get("inputs", d_ana.inputs), 1),
-        seed=_int(source, "analysis.seed", ana.get("seed", d_ana.seed), 0),
+        seed=_int(source, "analysis.seed", ana.get("seed", d_ana.seed), 0, SEED_MAX, "2^64 - 1"),
         dtype=_choice(source, "analysis.dtype", ana.get("dtype", d_ana.dtype), DTYPES),
         input=kind,
         input_variance=_float(source, "analysis.input_variance",
@@ -248,15 +260,24 @@ def load_spec(path: str | Path) -> Spec:
       InputError: the file is missing, is not valid TOML, or has a bad key or value.
     """
     path = Path(path)
+    if path.is_dir():
+        raise InputError(f"spec path {str(path)!r} is a folder", expected="a readable .toml file",
+                         hint="name the spec file inside it")
     if not path.is_file():
         raise InputError(f"spec file {str(path)!r} does not exist", expected="a readable .toml file",
                          hint="check the path; `isoscope demo` writes example specs you can copy")
     try:
-        data = tomllib.loads(path.read_text(encoding="utf-8"))
-    except tomllib.TOMLDecodeError as e:
-        raise InputError(f"malformed TOML ({e})", expected="a TOML document", file=str(path),
-                         hint="fix the syntax at the line and column named") from None
+        text = path.read_text(encoding="utf-8")
     except UnicodeDecodeError:
         raise InputError("the file is not UTF-8 text", expected="a TOML text file",
                          file=str(path)) from None
+    except OSError as e:
+        raise InputError(f"spec file {str(path)!r} cannot be read ({e.strerror or e})",
+                         expected="a readable .toml file",
+                         hint="check its permissions (chmod u+r) or copy it somewhere readable") from None
+    try:
+        data = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as e:
+        raise InputError(f"malformed TOML ({e})", expected="a TOML document", file=str(path),
+                         hint="fix the syntax at the line and column named") from None
     return parse_spec(data, source=str(path))
