@@ -3,6 +3,7 @@
 import json
 
 import numpy as np
+import pytest
 
 from isoscope import cli
 from isoscope.analysis import analyze, plan_inputs
@@ -49,3 +50,33 @@ def test_demo_runs_end_to_end(tmp_path, capsys):
     assert verdicts["heron-tanh-orthogonal"] == "isometric"
     assert verdicts["heron-tanh-gaussian"] != "isometric"
     assert (out / "report.html").stat().st_size > 10000 and (out / "specs").is_dir()
+
+
+@pytest.mark.parametrize("act,sigma_w,sigma_b,depth,dtype", [
+    ("tanh", 1e-10, 0.0, 50, "float64"),   # s ~ 1e-10^l: J_l ... J_1 underflows past l ~ 30
+    ("tanh", 1e-3, 0.0, 50, "float32"),    # 1e-3^l leaves float32 (1e-45) past l ~ 15
+    ("hard-tanh", 5.0, 10.0, 8, "float64"),  # |h| >> 1 mostly: phi' = 0, products exactly 0
+])
+def test_profile_of_vanishing_jacobians_finishes(act, sigma_w, sigma_b, depth, dtype):
+    spec = parse_spec({"network": {"width": 16, "depth": depth, "activation": act},
+                       "init": {"weights": "gaussian", "sigma_w": sigma_w, "sigma_b": sigma_b},
+                       "analysis": {"inputs": 2, "seed": 1, "dtype": dtype}})
+    a = analyze(spec)
+    pr = a.profile
+    assert pr is not None and pr.depths[0] == 1 and pr.depths[-1] == depth
+    for row in (pr.measured_log_s_std, pr.measured_log_m1, pr.predicted_log_s_std, pr.predicted_log_m1):
+        assert row.shape == pr.depths.shape
+        assert not np.any(np.isinf(row))  # a value with no finite answer is NaN, never +-inf
+    if act == "tanh":
+        # |h| ~ sigma_w: tanh is linear to 1e-6 relative, so J_l ... J_1 = W_l ... W_1 and
+        # E m1 = sigma_w^(2l) (E |W v|^2 = sigma_w^2 |v|^2 for N(0, sigma_w^2/N) entries, exact).
+        # The partial products are kept as powers of two times a mantissa, so ln m1 is measured
+        # far beyond the dtype's range (-2300 at l = 50 in float64, -690 in float32); one draw's
+        # ln m1 fluctuates by O(sqrt(l / N)) around it (allowed: 0.1 l + 1).
+        want = 2 * pr.depths * np.log(sigma_w)
+        assert np.all(np.isfinite(pr.measured_log_m1))
+        assert np.all(np.abs(pr.measured_log_m1 - want) < 0.1 * pr.depths + 1), pr.measured_log_m1 - want
+    else:
+        # once a partial product is exactly zero every deeper one is: NaN from there on
+        gone = np.isnan(pr.measured_log_m1)
+        assert gone.any() and np.all(gone[np.argmax(gone):])
