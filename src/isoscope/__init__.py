@@ -1,10 +1,15 @@
 """isoscope: Jacobian spectra of deep networks at initialization.
 
 Importing isoscope turns on JAX's float64 mode (``jax_enable_x64``): analyses run in float64
-by default and cast to float32 only when a spec asks for it.
+by default and cast to float32 only when a spec asks for it.  It also applies the thread
+policy of :mod:`isoscope.threads` to XLA, which has to happen before JAX starts.
 """
 
-import jax as _jax
+from isoscope import threads as _threads
+
+_threads.configure_xla()
+
+import jax as _jax  # noqa: E402
 
 _jax.config.update("jax_enable_x64", True)
 

@@ -29,6 +29,7 @@ from isoscope.score import (Agreement, Score, agreement, censored_log_stats, non
 from isoscope.spec import Spec
 from isoscope.spectrum import Spectrum, from_singular_values, zero_threshold
 from isoscope.theory import mean_field
+from isoscope.threads import limited_blas
 from isoscope.theory.predict import Prediction, predict
 
 __all__ = ["Analysis", "DepthProfile", "InputPlan", "analyze", "build_network", "depth_profile",
@@ -315,8 +316,14 @@ def analyze(spec: Spec, progress: Callable[[int, int], None] | None = None) -> A
 
     ``seconds`` holds the wall time of each stage: sampling (parameters and input), jacobian,
     svd, theory, profile (the partial products' SVDs and the shallower predictions; the first
-    draw's own singular values come from that SVD) and total.
+    draw's own singular values come from that SVD) and total.  BLAS/LAPACK runs under the
+    thread policy of :func:`isoscope.threads.thread_policy` for the whole analysis.
     """
+    with limited_blas():
+        return _analyze(spec, progress)
+
+
+def _analyze(spec: Spec, progress: Callable[[int, int], None] | None) -> Analysis:
     t0 = time.perf_counter()
     network = build_network(spec)
     dtype = jnp.float64 if spec.analysis.dtype == "float64" else jnp.float32
