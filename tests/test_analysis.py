@@ -25,7 +25,7 @@ def test_steady_state_inputs_use_the_length_map_fixed_point():
 
 
 def test_marginal_relu_map_does_not_feed_a_constant_input():
-    # ReLU at sigma_w^2 = 2, sigma_b = 0: V(q) = q for every q (THEORY.md sec. 2, ReLU oracle)
+    # ReLU at sigma_w^2 = 2, sigma_b = 0: V(q) = q for every q (Poole et al. 2016: V(q) = sigma_w^2 q / 2 for ReLU)
     spec = _spec(act="relu", weights="gaussian", sigma_w=2 ** 0.5, sigma_b=0.0)
     plan, _ = plan_inputs(spec)
     assert plan.variance == 1.0
@@ -46,7 +46,7 @@ def test_demo_runs_end_to_end(tmp_path, capsys):
     verdicts = {r["name"]: r["score"]["verdict"] for r in summary["results"]}
     assert len(verdicts) == 4
     # orthogonal tanh at the edge of chaos with q* ~ 0.009 is near-isometric at L = 64
-    # (variance about 8 L q*^2 = 0.04, THEORY.md sec. 3); Gaussian weights spread at least like L
+    # (variance about 8 L q*^2 = 0.04, Pennington, Schoenholz & Ganguli 2017, sec. 3); Gaussian weights spread at least like L
     assert verdicts["heron-tanh-orthogonal"] == "isometric"
     assert verdicts["heron-tanh-gaussian"] != "isometric"
     assert (out / "report.html").stat().st_size > 10000 and (out / "specs").is_dir()

@@ -27,7 +27,7 @@ def test_orthogonal_is_orthogonal_and_scaled():
 
 def test_haar_trace_moments_and_det_signs():
     # Haar measure on O(N), N >= 2: E tr Q = 0 and E (tr Q)^2 = 1 (Diaconis & Shahshahani 1994,
-    # Theorem 2; THEORY.md sec. 6 notes 3.9 at N = 10 without the sign fix).
+    # Theorem 2; without the sign fix of Mezzadri 2007 the law is not Haar).
     q = _haar(10, 20000)
     tr = np.trace(q, axis1=1, axis2=2)
     se = tr.std() / np.sqrt(tr.size)

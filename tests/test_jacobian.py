@@ -22,7 +22,7 @@ def test_linear_stack_jacobian_is_product_of_weights():
     p = net.init(jax.random.PRNGKey(0))
     want = np.eye(30)
     for w in np.asarray(p["W"]):
-        want = w @ want  # J = W^L ... W^1 (THEORY.md sec. 1 with D = I)
+        want = w @ want  # J = W^L ... W^1 (Pennington, Schoenholz & Ganguli 2017, sec. 2, with D = I)
     np.testing.assert_allclose(jac.dense_jacobian(net, p, _x(30)), want, rtol=1e-12, atol=1e-14)
 
 
@@ -76,7 +76,7 @@ def test_linear_gaussian_moments_are_fuss_catalan(depth):
 
 def test_single_gaussian_layer_follows_marchenko_pastur():
     lam = np.sort(_linear_gaussian_lambdas(400, 1, 10).ravel())
-    # Marchenko-Pastur, ratio 1: rho(x) = sqrt((4 - x) x) / (2 pi x) on [0, 4] (THEORY.md sec. 3)
+    # Marchenko-Pastur, ratio 1: rho(x) = sqrt((4 - x) x) / (2 pi x) on [0, 4] (Marchenko & Pastur 1967)
     cdf = np.array([integrate.quad(lambda t: math.sqrt(max((4 - t) * t, 0)) / (2 * math.pi * t), 0, min(x, 4))[0]
                     for x in lam[::20]])
     emp = (np.arange(lam.size)[::20] + 0.5) / lam.size

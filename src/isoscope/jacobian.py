@@ -306,8 +306,8 @@ def qr_log_singular_values(network: Network, params, x: jax.Array) -> np.ndarray
     ``Q_0 = I``; for each layer ``Q_t R_t = qr(J_t Q_{t-1})`` and ``ln s_i ~ sum_t ln |(R_t)_ii|``.
     For long products ``(1/L) sum_t ln|(R_t)_ii|`` converges to the Lyapunov exponents
     (Benettin, Galgani, Giorgilli, Strelcyn 1980); for products of Gaussian matrices each
-    factor's ``ln|R_ii|`` is an independent draw with mean ``mu_i`` of Newman 1986 (THEORY.md
-    sec. 6).  Exact for the largest-volume directions, a good approximation of ``ln s`` when
+    factor's ``ln|R_ii|`` is an independent draw with mean ``mu_i`` of Newman 1986
+    (Commun. Math. Phys. 103).  Exact for the largest-volume directions, a good approximation of ``ln s`` when
     the spectrum is spread over many orders of magnitude, which is where the dense SVD fails.
     """
     logs = _compiled_qr(network.layer)(network.layer_slices(params), x)
