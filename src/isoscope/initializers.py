@@ -46,7 +46,6 @@ def _unit_uniform(key, shape, dtype):
     return jax.random.uniform(key, shape, dtype, minval=-1.0, maxval=1.0)
 
 
-@functools.partial(jax.jit, static_argnums=(1, 2))
 def _haar(key, shape, dtype):
     """Haar-distributed matrices with orthonormal rows or columns, from Householder vectors.
 
@@ -70,7 +69,16 @@ def _haar(key, shape, dtype):
     fan_out, fan_in = shape[-2], shape[-1]
     tall = fan_out >= fan_in
     rows, cols = (fan_out, fan_in) if tall else (fan_in, fan_out)
-    z = jax.random.normal(key, (*shape[:-2], rows, cols), dtype)
+    # z in its own compiled call: compiled together, XLA fuses the generator into each consumer
+    # and draws the numbers more than once (measured at 64 x 512^2: 1.20 s in one, 0.81 s in two)
+    q = _haar_from_normal(_unit_normal(key, (*shape[:-2], rows, cols), dtype))
+    return q if tall else jnp.swapaxes(q, -1, -2)
+
+
+@jax.jit
+def _haar_from_normal(z):
+    """The Householder construction of :func:`_haar` from the Gaussian matrix z."""
+    dtype = z.dtype
     below = jnp.tril(z, -1)                                 # x_k = z[k+1:, k]
     alpha = jnp.diagonal(z, axis1=-2, axis2=-1)             # first entry of a_k
     x_norm = jnp.sqrt(jnp.sum(below * below, axis=-2))
@@ -80,8 +88,7 @@ def _haar(key, shape, dtype):
     tau = jnp.where(nonzero, (beta - alpha) / beta, 0.0).astype(dtype)
     v = below / jnp.where(nonzero, alpha - beta, 1.0).astype(dtype)[..., None, :]
     signs = jnp.where(nonzero, jnp.where(positive, -1.0, 1.0), jnp.where(positive, 1.0, -1.0))
-    q = jax.lax.linalg.householder_product(v, tau) * signs.astype(dtype)[..., None, :]
-    return q if tall else jnp.swapaxes(q, -1, -2)
+    return jax.lax.linalg.householder_product(v, tau) * signs.astype(dtype)[..., None, :]
 
 
 def gaussian(scale: float = 1.0) -> Initializer:
