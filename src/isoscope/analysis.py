@@ -65,7 +65,10 @@ class DepthProfile:
     Attributes:
       depths: layer counts l (shape ``(k,)``).
       measured_log_s_std, predicted_log_s_std: std of ln s above the SVD floor of each depth.
-      measured_log_m1, predicted_log_m1: ``ln E[lambda]``.
+      measured_log_m1, predicted_log_m1: ``ln E[lambda]`` (measured in logs, so finite even
+        where lambda itself leaves the dtype's range).
+      Entries with no finite answer (an exactly zero product, fewer than two singular values
+      above the floor, a moment theory cannot represent) are NaN.
     """
 
     depths: np.ndarray
