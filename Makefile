@@ -22,6 +22,7 @@ test: $(STAMP)
 bench: $(STAMP)
 	$(BIN)/python benchmarks/jacobian.py
 	$(BIN)/python benchmarks/theory.py
+	$(BIN)/python benchmarks/analyze.py
 
 clean:
 	rm -rf $(VENV) isoscope-demo

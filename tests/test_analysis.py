@@ -3,6 +3,7 @@
 import json
 
 import numpy as np
+import pytest
 
 from isoscope import cli
 from isoscope.analysis import analyze, plan_inputs
@@ -24,7 +25,7 @@ def test_steady_state_inputs_use_the_length_map_fixed_point():
 
 
 def test_marginal_relu_map_does_not_feed_a_constant_input():
-    # ReLU at sigma_w^2 = 2, sigma_b = 0: V(q) = q for every q (THEORY.md sec. 2, ReLU oracle)
+    # ReLU at sigma_w^2 = 2, sigma_b = 0: V(q) = q for every q (Poole et al. 2016: V(q) = sigma_w^2 q / 2 for ReLU)
     spec = _spec(act="relu", weights="gaussian", sigma_w=2 ** 0.5, sigma_b=0.0)
     plan, _ = plan_inputs(spec)
     assert plan.variance == 1.0
@@ -45,7 +46,37 @@ def test_demo_runs_end_to_end(tmp_path, capsys):
     verdicts = {r["name"]: r["score"]["verdict"] for r in summary["results"]}
     assert len(verdicts) == 4
     # orthogonal tanh at the edge of chaos with q* ~ 0.009 is near-isometric at L = 64
-    # (variance about 8 L q*^2 = 0.04, THEORY.md sec. 3); Gaussian weights spread at least like L
+    # (variance about 8 L q*^2 = 0.04, Pennington, Schoenholz & Ganguli 2017, sec. 3); Gaussian weights spread at least like L
     assert verdicts["heron-tanh-orthogonal"] == "isometric"
     assert verdicts["heron-tanh-gaussian"] != "isometric"
     assert (out / "report.html").stat().st_size > 10000 and (out / "specs").is_dir()
+
+
+@pytest.mark.parametrize("act,sigma_w,sigma_b,depth,dtype", [
+    ("tanh", 1e-10, 0.0, 50, "float64"),   # s ~ 1e-10^l: J_l ... J_1 underflows past l ~ 30
+    ("tanh", 1e-3, 0.0, 50, "float32"),    # 1e-3^l leaves float32 (1e-45) past l ~ 15
+    ("hard-tanh", 5.0, 10.0, 8, "float64"),  # |h| >> 1 mostly: phi' = 0, products exactly 0
+])
+def test_profile_of_vanishing_jacobians_finishes(act, sigma_w, sigma_b, depth, dtype):
+    spec = parse_spec({"network": {"width": 16, "depth": depth, "activation": act},
+                       "init": {"weights": "gaussian", "sigma_w": sigma_w, "sigma_b": sigma_b},
+                       "analysis": {"inputs": 2, "seed": 1, "dtype": dtype}})
+    a = analyze(spec)
+    pr = a.profile
+    assert pr is not None and pr.depths[0] == 1 and pr.depths[-1] == depth
+    for row in (pr.measured_log_s_std, pr.measured_log_m1, pr.predicted_log_s_std, pr.predicted_log_m1):
+        assert row.shape == pr.depths.shape
+        assert not np.any(np.isinf(row))  # a value with no finite answer is NaN, never +-inf
+    if act == "tanh":
+        # |h| ~ sigma_w: tanh is linear to 1e-6 relative, so J_l ... J_1 = W_l ... W_1 and
+        # E m1 = sigma_w^(2l) (E |W v|^2 = sigma_w^2 |v|^2 for N(0, sigma_w^2/N) entries, exact).
+        # The partial products are kept as powers of two times a mantissa, so ln m1 is measured
+        # far beyond the dtype's range (-2300 at l = 50 in float64, -690 in float32); one draw's
+        # ln m1 fluctuates by O(sqrt(l / N)) around it (allowed: 0.1 l + 1).
+        want = 2 * pr.depths * np.log(sigma_w)
+        assert np.all(np.isfinite(pr.measured_log_m1))
+        assert np.all(np.abs(pr.measured_log_m1 - want) < 0.1 * pr.depths + 1), pr.measured_log_m1 - want
+    else:
+        # once a partial product is exactly zero every deeper one is: NaN from there on
+        gone = np.isnan(pr.measured_log_m1)
+        assert gone.any() and np.all(gone[np.argmax(gone):])

@@ -27,7 +27,7 @@ def test_orthogonal_is_orthogonal_and_scaled():
 
 def test_haar_trace_moments_and_det_signs():
     # Haar measure on O(N), N >= 2: E tr Q = 0 and E (tr Q)^2 = 1 (Diaconis & Shahshahani 1994,
-    # Theorem 2; THEORY.md sec. 6 notes 3.9 at N = 10 without the sign fix).
+    # Theorem 2; without the sign fix of Mezzadri 2007 the law is not Haar).
     q = _haar(10, 20000)
     tr = np.trace(q, axis1=1, axis2=2)
     se = tr.std() / np.sqrt(tr.size)
@@ -72,3 +72,33 @@ def test_bad_initializer_input():
         get_initializer("ortho", 1.0)
     with pytest.raises(InputError, match="negative"):
         get_initializer("gaussian", -1.0)
+
+
+@pytest.mark.parametrize("rows,cols", [(12, 12), (30, 7), (7, 30), (2, 2)])
+def test_haar_entry_follows_the_exact_beta_law(rows, cols):
+    # A column of a Haar matrix is uniform on the sphere S^(m-1), m its length, so
+    # Q_11^2 ~ Beta(1/2, (m - 1)/2) exactly (Mezzadri 2007, sec. 2; the uniform law on the sphere).
+    # Wide shapes have orthonormal rows, so the first row is uniform on S^(cols-1).
+    q = np.asarray(orthogonal(1.0)(jax.random.PRNGKey(11), (6000, rows, cols)))
+    m = max(rows, cols)
+    for entry in (q[:, 0, 0], q[:, -1, -1]):
+        assert stats.kstest(entry ** 2, stats.beta(0.5, (m - 1) / 2).cdf).pvalue > 1e-3
+        # symmetric about 0: both signs with probability 1/2
+        assert abs(np.mean(entry > 0) - 0.5) < 4 * 0.5 / np.sqrt(entry.size)
+
+
+def test_haar_entry_moments():
+    # E Q_ij^2 = 1/N and E Q_ij^4 = 3/(N(N+2)) for Haar on O(N) (moments of a coordinate of the
+    # uniform law on S^(N-1): Beta(1/2, (N-1)/2) moments, a(a+1)/((a+b)(a+b+1)) with a = 1/2)
+    n, count = 20, 3000
+    q = np.asarray(orthogonal(1.0)(jax.random.PRNGKey(12), (count, n, n)))
+    e2, e4 = (q ** 2).reshape(count, -1).mean(axis=1), (q ** 4).reshape(count, -1).mean(axis=1)
+    for sample, want in ((e2, 1.0 / n), (e4, 3.0 / (n * (n + 2)))):
+        assert abs(sample.mean() - want) < 5 * sample.std() / np.sqrt(count) + 1e-15, (sample.mean(), want)
+
+
+def test_haar_is_orthogonal_to_dtype_precision_in_both_dtypes():
+    for dtype, tol in ((jnp.float64, 1e-13), (jnp.float32, 5e-6)):
+        q = np.asarray(orthogonal(1.0)(jax.random.PRNGKey(13), (4, 256, 256), dtype), dtype=np.float64)
+        for m in q:  # Householder products are orthogonal to O(N eps) (Higham 2002, sec. 19.3)
+            assert np.max(np.abs(m @ m.T - np.eye(256))) < tol

@@ -22,7 +22,7 @@ def test_linear_stack_jacobian_is_product_of_weights():
     p = net.init(jax.random.PRNGKey(0))
     want = np.eye(30)
     for w in np.asarray(p["W"]):
-        want = w @ want  # J = W^L ... W^1 (THEORY.md sec. 1 with D = I)
+        want = w @ want  # J = W^L ... W^1 (Pennington, Schoenholz & Ganguli 2017, sec. 2, with D = I)
     np.testing.assert_allclose(jac.dense_jacobian(net, p, _x(30)), want, rtol=1e-12, atol=1e-14)
 
 
@@ -76,7 +76,7 @@ def test_linear_gaussian_moments_are_fuss_catalan(depth):
 
 def test_single_gaussian_layer_follows_marchenko_pastur():
     lam = np.sort(_linear_gaussian_lambdas(400, 1, 10).ravel())
-    # Marchenko-Pastur, ratio 1: rho(x) = sqrt((4 - x) x) / (2 pi x) on [0, 4] (THEORY.md sec. 3)
+    # Marchenko-Pastur, ratio 1: rho(x) = sqrt((4 - x) x) / (2 pi x) on [0, 4] (Marchenko & Pastur 1967)
     cdf = np.array([integrate.quad(lambda t: math.sqrt(max((4 - t) * t, 0)) / (2 * math.pi * t), 0, min(x, 4))[0]
                     for x in lam[::20]])
     emp = (np.arange(lam.size)[::20] + 0.5) / lam.size
@@ -123,3 +123,59 @@ def test_float32_overflow_is_located():
     assert not np.all(np.isfinite(np.asarray(j)))
     jf = jac.jacobian_fault(net, p, x)
     assert jf is not None and 75 <= jf.layer <= 82  # entries of 3^l Q reach 3.4e38 near l = 80
+
+
+@pytest.mark.parametrize("dtype", [jnp.float64, jnp.float32])
+@pytest.mark.parametrize("family,act", [("plain", "tanh"), ("plain", "gelu"), ("residual", "silu")])
+def test_profiled_pass_equals_jacfwd_jacrev_and_finite_differences(family, act, dtype):
+    build = plain_stack if family == "plain" else residual_stack
+    net = build(24, 9, act, weights="orthogonal", sigma_w=1.3, sigma_b=0.2)
+    p, x = net.init(jax.random.PRNGKey(2), dtype), _x(24).astype(dtype)
+    pj = jac.profiled_jacobian(net, p, x, [1, 4, 9])
+    j = np.asarray(pj.jacobian, dtype=np.float64)
+    scale = np.abs(j).max()
+    eps = float(np.finfo(np.dtype(dtype)).eps)
+    # forward and reverse mode agree to rounding: 100 eps of the largest entry (dtype-keyed)
+    for other in (jac.dense_jacobian(net, p, x), jax.jacrev(net.apply, argnums=1)(p, x)):
+        assert np.abs(j - np.asarray(other, dtype=np.float64)).max() <= 100 * eps * scale
+    if dtype == jnp.float64:
+        h = 1e-6  # central differences: truncation O(h^2), rounding O(1e-16/h)
+        fd = np.stack([(net.apply(p, x + h * e) - net.apply(p, x - h * e)) / (2 * h)
+                       for e in np.eye(24)], axis=1)
+        np.testing.assert_allclose(j, fd, rtol=1e-6, atol=1e-8)
+    # kept partial products: against numpy's SVD of the Jacobian of the first l layers alone
+    part = jac.partial_spectra(pj)
+    for row, d in enumerate(part.depths):
+        short = build(24, int(d), act, weights="orthogonal", sigma_w=1.3, sigma_b=0.2)
+        pd = {"W": p["W"][:d], "b": p["b"][:d], "alpha": p["alpha"]}
+        want = np.linalg.svd(np.asarray(jac.dense_jacobian(short, pd, x), dtype=np.float64),
+                             compute_uv=False)
+        got = np.exp(part.log_s[row])
+        assert np.abs(got - want).max() <= 100 * eps * want[0], (d, np.abs(got - want).max())
+    np.testing.assert_array_equal(part.singular_values(-1).dtype, np.dtype(dtype))
+
+
+@pytest.mark.parametrize("sigma_w", [1e-10, 1e10])
+def test_partial_spectra_hold_beyond_the_dtype_range(sigma_w):
+    # W = sigma_w Q, Q Haar orthogonal: every singular value of W_l ... W_1 is sigma_w^l exactly,
+    # so at l = 40 they are 1e-400 (below float64) or 1e400 (above it).
+    net = plain_stack(32, 40, "linear", weights="orthogonal", sigma_w=sigma_w)
+    p, x = net.init(jax.random.PRNGKey(4)), _x(32)
+    pj = jac.profiled_jacobian(net, p, x, [1, 10, 30, 40])
+    ls = jac.partial_spectra(pj).log_s
+    want = np.array([1, 10, 30, 40])[:, None] * math.log(sigma_w)
+    np.testing.assert_allclose(ls, np.broadcast_to(want, ls.shape), rtol=1e-13)
+    # the Jacobian itself leaves the range exactly as jax.jacfwd's does (zero, or not finite)
+    dense = np.asarray(jac.dense_jacobian(net, p, x))
+    if sigma_w < 1:
+        assert not np.any(np.asarray(pj.jacobian)) and not np.any(dense)
+    else:
+        assert not np.all(np.isfinite(np.asarray(pj.jacobian))) and not np.all(np.isfinite(dense))
+
+
+def test_profiled_pass_rejects_bad_depths():
+    net = plain_stack(8, 5, "tanh")
+    p, x = net.init(jax.random.PRNGKey(0)), _x(8)
+    for bad in ([], [0, 2], [3, 3], [2, 6]):
+        with pytest.raises(ValueError, match="depths must increase within 1..5"):
+            jac.profiled_jacobian(net, p, x, bad)

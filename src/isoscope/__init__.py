@@ -1,11 +1,16 @@
 """isoscope: Jacobian spectra of deep networks at initialization.
 
 Importing isoscope turns on JAX's float64 mode (``jax_enable_x64``): analyses run in float64
-by default and cast to float32 only when a spec asks for it.
+by default and cast to float32 only when a spec asks for it.  It also applies the thread
+policy of :mod:`isoscope.threads` to XLA, which has to happen before JAX starts.
 """
 
 import signal as _signal
 import threading as _threading
+
+from isoscope import threads as _threads  # noqa: E402
+
+_threads.configure_xla()
 
 
 def _import_jax():

@@ -13,26 +13,30 @@ import dataclasses
 import functools
 import math
 import time
+from collections.abc import Callable
 from pathlib import Path
 from typing import Callable
 
 import jax
 import jax.numpy as jnp
 import numpy as np
+from scipy.special import logsumexp
 
 from isoscope import jacobian as jac
 from isoscope.activations import Activation, get_activation
 from isoscope.errors import InputError, TheoryError
 from isoscope.network import Network, plain_stack, residual_stack
 from isoscope.score import (Agreement, Score, agreement, censored_log_stats, judged_gain,
-                            non_finite_score, score_spectrum, split_outliers)
+                            non_finite_score, outlier_counts, score_spectrum, split_outliers)
 from isoscope.spec import Spec
-from isoscope.spectrum import Spectrum, from_singular_values
+from isoscope.spectrum import Spectrum, from_singular_values, zero_threshold
 from isoscope.theory import mean_field
+from isoscope.threads import limited_blas
 from isoscope.theory.predict import Prediction, predict
 
 __all__ = ["Analysis", "DepthProfile", "InputPlan", "analyze", "build_network", "depth_profile",
-           "plan_inputs", "predict_spec", "prediction_for", "seed_key", "spec_activation"]
+           "plan_inputs", "predict_spec", "prediction_for", "profile_depths", "seed_key",
+           "spec_activation"]
 
 # Relative accuracy of an SVD is about n * eps * s_max: below 10^-(digits) of the largest,
 # small singular values are noise.  Digits usable per dtype (common practice, no source:
@@ -64,7 +68,10 @@ class DepthProfile:
     Attributes:
       depths: layer counts l (shape ``(k,)``).
       measured_log_s_std, predicted_log_s_std: std of ln s above the SVD floor of each depth.
-      measured_log_m1, predicted_log_m1: ``ln E[lambda]``.
+      measured_log_m1, predicted_log_m1: ``ln E[lambda]`` (measured in logs, so finite even
+        where lambda itself leaves the dtype's range).
+      Entries with no finite answer (an exactly zero product, fewer than two singular values
+      above the floor, a moment theory cannot represent) are NaN.
     """
 
     depths: np.ndarray
@@ -322,41 +329,93 @@ def prediction_for(spec: Spec, plan: InputPlan) -> tuple[Prediction | None, tupl
 PROFILE_POINTS = 8
 
 
-def depth_profile(spec: Spec, plan: InputPlan, network: Network, params, x) -> DepthProfile:
-    """Measured and predicted spread at up to ``PROFILE_POINTS`` log-spaced depths.
+def profile_depths(depth: int) -> np.ndarray:
+    """Up to ``PROFILE_POINTS`` log-spaced depths in ``1..depth``, always ending at ``depth``."""
+    return np.unique(np.round(np.geomspace(1, depth, min(PROFILE_POINTS, depth))).astype(int))
 
-    Measured: singular values of ``J_l ... J_1`` for one draw
-    (:func:`~isoscope.jacobian.partial_singular_values`), std of ln s above the SVD floor
-    ``s > n eps s_max``.  Predicted: :func:`~isoscope.theory.predict.predict` at depth l (a
-    coarser 120-point density), std of ln s of the law restricted to the same floor.  When the
-    stack grows a mean mode (residual, ``E[phi] != 0``) the largest singular value is left out.
+
+def _log_or_nan(moments) -> float:
+    """``ln m1`` of a prediction: its own log when theory carries one, else ``ln m1`` when
+    ``m1`` is a positive float, NaN when it is not representable."""
+    log_m1 = getattr(moments, "log_m1", None)
+    if log_m1 is not None:
+        return float(log_m1) if math.isfinite(log_m1) else math.nan
+    m1 = moments.m1
+    return math.log(m1) if m1 is not None and 0 < m1 < math.inf else math.nan
+
+
+def _measured_row(log_s: np.ndarray, dtype) -> tuple[float, float, float]:
+    """``(floor, std, ln m1)`` of one partial product's ``ln s`` (decreasing): the SVD floor
+    ``ln(n eps s_max)`` (:func:`~isoscope.spectrum.zero_threshold`), the std of ln s above it
+    and ``ln m1 = ln((1/n) sum s^2)`` by log-sum-exp.  NaN where a value has no finite answer
+    (every s is zero, fewer than two above the floor)."""
+    floor = math.log(zero_threshold(log_s.size, dtype)) + float(log_s[0])
+    above = log_s[log_s > floor]
+    std = float(above.std()) if above.size > 1 else math.nan
+    log_m1 = float(logsumexp(2.0 * log_s) - math.log(log_s.size)) if np.isfinite(log_s[0]) else math.nan
+    return floor, std, log_m1
+
+
+def depth_profile(spec: Spec, plan: InputPlan, partial: jac.PartialSpectra,
+                  predicted: Prediction) -> DepthProfile:
+    """Measured and predicted spread at the depths of ``partial`` (:func:`profile_depths`).
+
+    Measured: singular values of ``J_l ... J_1`` for one draw, kept by the Jacobian pass
+    itself (:func:`~isoscope.jacobian.profiled_jacobian`), so they are right in ``ln s``
+    even where the product leaves the dtype's range; std of ln s above the SVD floor
+    ``s > n eps s_max`` and ``ln m1``.  Predicted: ``predicted`` at the full depth, and
+    :func:`~isoscope.theory.predict.predict` at each shallower depth l (a coarser 120-point
+    density); std of ln s of the law restricted to the same floor (Pennington, Schoenholz &
+    Ganguli 2017, sec. 3, for the law).  When the stack grows a mean mode (residual,
+    ``E[phi] != 0``) the largest singular value is left out.  A value with no finite answer
+    (a product that is exactly zero, a moment theory cannot represent) is NaN.
     """
     n, i = spec.network, spec.init
-    depths = np.unique(np.round(np.geomspace(1, n.depth, min(PROFILE_POINTS, n.depth))).astype(int))
-    s = jac.partial_singular_values(network, params, x, depths)
     m_std, m_m1, p_std, p_m1 = [], [], [], []
-    for d, row in zip(depths, s):
-        p = predict(spec_activation(spec), i.weights, i.sigma_w, i.sigma_b, int(d), family=n.family,
-                    alpha=n.alpha, input_variance=_input_mean_square(spec, plan), points=120)
-        sp = from_singular_values(row[1:] if p.mean_mode else row, spec.analysis.dtype)
-        m_std.append(sp.log_s_std)
-        m_m1.append(math.log(sp.lambda_moment(1)))
-        floor = 2.0 * (math.log(sp.threshold) + float(sp.log_s[0, 0]))
-        p_std.append(censored_log_stats(p.density, floor)[1] / 2.0)
-        p_m1.append(p.moments.log_m1)
-    m_std, m_m1 = np.array(m_std), np.array(m_m1)
-    return DepthProfile(depths, m_std, np.array(p_std), m_m1, np.array(p_m1))
+    for d, row in zip(partial.depths, partial.log_s):
+        p = predicted if d == n.depth else predict(
+            spec_activation(spec), i.weights, i.sigma_w, i.sigma_b, int(d), family=n.family,
+            alpha=n.alpha, input_variance=_input_mean_square(spec, plan), points=120)
+        top, bottom = outlier_counts(p)
+        floor, std, log_m1 = _measured_row(row[top:row.size - bottom], spec.analysis.dtype)
+        m_std.append(std)
+        m_m1.append(log_m1)
+        p_std.append(censored_log_stats(p.density, 2.0 * floor)[1] / 2.0)
+        p_m1.append(_log_or_nan(p.moments))
+    return DepthProfile(np.asarray(partial.depths), np.array(m_std), np.array(p_std),
+                        np.array(m_m1), np.array(p_m1))
 
 
 def analyze(spec: Spec, progress: Callable[[int, int], None] | None = None) -> Analysis:
     """Measure and score one design.
 
     For each draw i: parameters ``network.init(k_params)``, an input from the resolved
-    :class:`InputPlan`, the exact Jacobian by ``jax.jacfwd``, its singular values.  Draws are
-    pooled in one :class:`~isoscope.spectrum.Spectrum`.  If any draw overflows, the analysis
-    reports where (forward pass or Jacobian, and the first layer) and scores ``non-finite``.
-    ``progress(done, total)``, if given, is called after each draw.
+    :class:`InputPlan`, the exact Jacobian by forward mode, its singular values.  Draws are
+    pooled in one :class:`~isoscope.spectrum.Spectrum`.  The first draw's Jacobian pass also
+    keeps the partial products for the depth profile
+    (:func:`~isoscope.jacobian.profiled_jacobian`, equal to ``jax.jacfwd``); the others use
+    :func:`~isoscope.jacobian.dense_jacobian`.  If any draw overflows, the analysis reports
+    where (forward pass or Jacobian, and the first layer) and scores ``non-finite``.
+
+    Args:
+      spec: the design.
+      progress: called as ``progress(done, total)`` after each draw (``total`` = draws).
+
+    The bulk is scored: outliers that the bulk law does not describe (a residual stack's mean
+    mode, a plain stack's input-length direction) are set apart first
+    (:func:`~isoscope.score.split_outliers`), and a gain that N values per draw cannot
+    estimate is judged by the robust statistic (:func:`~isoscope.score.judged_gain`).
+
+    ``seconds`` holds the wall time of each stage: sampling (parameters and input), jacobian,
+    svd, theory, profile (the partial products' SVDs and the shallower predictions; the first
+    draw's own singular values come from that SVD) and total.  BLAS/LAPACK runs under the
+    thread policy of :func:`isoscope.threads.thread_policy` for the whole analysis.
     """
+    with limited_blas():
+        return _analyze(spec, progress)
+
+
+def _analyze(spec: Spec, progress: Callable[[int, int], None] | None) -> Analysis:
     t0 = time.perf_counter()
     network = build_network(spec)
     dtype = jnp.float64 if spec.analysis.dtype == "float64" else jnp.float32
@@ -364,27 +423,45 @@ def analyze(spec: Spec, progress: Callable[[int, int], None] | None = None) -> A
     file_inputs = _load_inputs(spec, dtype) if plan.kind == "file" else None
     if file_inputs is not None:
         plan = dataclasses.replace(plan, variance=float(np.mean(file_inputs.astype(np.float64) ** 2)))
+    seconds = {"sampling": 0.0, "jacobian": 0.0, "svd": 0.0, "profile": 0.0}
+    t = time.perf_counter()
+    predicted, notes = prediction_for(spec, plan)
+    seconds["theory"] = time.perf_counter() - t
+    depths = (profile_depths(spec.network.depth)
+              if predicted is not None and network.layer is not None else None)
     root = seed_key(spec.analysis.seed)
-    seconds = {"jacobian": 0.0, "svd": 0.0}
-    singular, fault, first = [], None, None
-    for i in range(spec.analysis.inputs):
+    total = spec.analysis.inputs
+    singular, fault, partial = [], None, None
+    for i in range(total):
+        t = time.perf_counter()
         k_params, k_input = jax.random.split(jax.random.fold_in(root, i))
         params = network.init(k_params, dtype)
         x = (jnp.asarray(file_inputs[i]) if file_inputs is not None
              else _draw_input(plan, network, k_input, dtype))
-        first = first or (params, x)
+        jax.block_until_ready((params, x))
+        seconds["sampling"] += time.perf_counter() - t
         t = time.perf_counter()
-        jmat = jac.dense_jacobian(network, params, x).block_until_ready()
+        profiled = (jac.profiled_jacobian(network, params, x, depths)
+                    if i == 0 and depths is not None else None)
+        jmat = (profiled.jacobian if profiled is not None
+                else jac.dense_jacobian(network, params, x)).block_until_ready()
         seconds["jacobian"] += time.perf_counter() - t
         if not bool(jnp.all(jnp.isfinite(jmat))):
             fault = (jac.forward_fault(network, params, x) or jac.jacobian_fault(network, params, x)
                      or jac.Fault("jacobian", 0, "the Jacobian is not finite"))
+            if progress is not None:
+                progress(i + 1, total)
             break
         t = time.perf_counter()
-        singular.append(np.asarray(_svd_values()(jmat)))
-        seconds["svd"] += time.perf_counter() - t
+        if profiled is not None:
+            partial = jac.partial_spectra(profiled)
+            singular.append(partial.singular_values(-1))  # the last kept depth is the full depth
+            seconds["profile"] += time.perf_counter() - t
+        else:
+            singular.append(np.asarray(_svd_values()(jmat)))
+            seconds["svd"] += time.perf_counter() - t
         if progress is not None:
-            progress(i + 1, spec.analysis.inputs)
+            progress(i + 1, total)
     if fault is not None:
         spectrum, score = None, non_finite_score(f"draw {i}: {fault.detail}")
         warnings += (f"measurement stopped: {fault.detail} (draw {i}); lower sigma_w or the depth, "
@@ -393,9 +470,6 @@ def analyze(spec: Spec, progress: Callable[[int, int], None] | None = None) -> A
         spectrum = from_singular_values(np.stack(singular), dtype)
         score = score_spectrum(spectrum, spec.network.depth)
         warnings += _precision_warnings(spectrum)
-    t = time.perf_counter()
-    predicted, notes = prediction_for(spec, plan)
-    seconds["theory"] = time.perf_counter() - t
     warnings += notes
     agree = profile = None
     if predicted is not None and spectrum is not None:
@@ -404,12 +478,13 @@ def analyze(spec: Spec, progress: Callable[[int, int], None] | None = None) -> A
         bulk, _ = split_outliers(spectrum, predicted)
         score = score_spectrum(bulk, spec.network.depth, judged_gain(agree, predicted, bulk),
                                scored=agree.compared)
-        t = time.perf_counter()
-        try:
-            profile = depth_profile(spec, plan, network, *first)
-        except TheoryError as e:
-            warnings += (f"no depth profile: {e}",)
-        seconds["profile"] = time.perf_counter() - t
+        if partial is not None:
+            t = time.perf_counter()
+            try:
+                profile = depth_profile(spec, plan, partial, predicted)
+            except TheoryError as e:
+                warnings += (f"no depth profile: {e}",)
+            seconds["profile"] += time.perf_counter() - t
     seconds["total"] = time.perf_counter() - t0
     return Analysis(spec=spec, inputs=plan, spectrum=spectrum, fault=fault, score=score,
                     predicted=predicted, agreement=agree, profile=profile, warnings=warnings, seconds=seconds)

@@ -46,22 +46,49 @@ def _unit_uniform(key, shape, dtype):
     return jax.random.uniform(key, shape, dtype, minval=-1.0, maxval=1.0)
 
 
-@functools.partial(jax.jit, static_argnums=(1, 2))
 def _haar(key, shape, dtype):
-    """Haar-distributed matrices with orthonormal rows or columns (Mezzadri 2007, sec. 5).
+    """Haar-distributed matrices with orthonormal rows or columns, from Householder vectors.
 
-    Z has i.i.d. N(0, 1) entries; Z = Q R; Q <- Q diag(sign(diag R)).  Without the sign fix
-    the law of Q is not Haar (det Q takes one sign only).
+    The law is that of ``Q diag(sign(diag R))`` for the QR factorisation ``Z = Q R`` of a
+    matrix Z with i.i.d. N(0, 1) entries (Mezzadri 2007, sec. 5), built without factorising Z.
+    Householder QR of Z (LAPACK geqrf) computes, for column k, a reflector from the working
+    vector ``a_k = (H_{k-1} ... H_1 Z)[k:, k]``.  Since ``H_{k-1} ... H_1`` is orthogonal and
+    independent of column k of Z, ``a_k`` is i.i.d. N(0, 1) of length ``m - k + 1`` and
+    independent of the earlier reflectors (Stewart 1980, SIAM J. Numer. Anal. 17, sec. 3).  So
+    drawing ``a_k`` directly (the lower triangle of a Gaussian matrix), forming the reflector
+    exactly as LAPACK's dlarfg does::
+
+        beta_k = -sign(alpha) sqrt(alpha^2 + |x|^2),  tau_k = (beta_k - alpha) / beta_k,
+        v_k = (1, x / (alpha - beta_k)),               (tau_k = 0, beta_k = alpha if x = 0)
+
+    for ``a_k = (alpha, x)``, and multiplying the reflectors out (LAPACK orgqr,
+    ``jax.lax.linalg.householder_product``) gives Q with the same joint law, then
+    ``Q diag(sign(beta))`` is Haar.  It skips the factorisation (geqrf): about half the flops
+    of a QR and no change in the distribution.
     """
     fan_out, fan_in = shape[-2], shape[-1]
     tall = fan_out >= fan_in
     rows, cols = (fan_out, fan_in) if tall else (fan_in, fan_out)
-    z = jax.random.normal(key, (*shape[:-2], rows, cols), dtype)
-    q, r = jnp.linalg.qr(z)
-    signs = jnp.sign(jnp.diagonal(r, axis1=-2, axis2=-1))
-    signs = jnp.where(signs == 0, 1.0, signs).astype(dtype)
-    q = q * signs[..., None, :]
+    # z in its own compiled call: compiled together, XLA fuses the generator into each consumer
+    # and draws the numbers more than once (measured at 64 x 512^2: 1.20 s in one, 0.81 s in two)
+    q = _haar_from_normal(_unit_normal(key, (*shape[:-2], rows, cols), dtype))
     return q if tall else jnp.swapaxes(q, -1, -2)
+
+
+@jax.jit
+def _haar_from_normal(z):
+    """The Householder construction of :func:`_haar` from the Gaussian matrix z."""
+    dtype = z.dtype
+    below = jnp.tril(z, -1)                                 # x_k = z[k+1:, k]
+    alpha = jnp.diagonal(z, axis1=-2, axis2=-1)             # first entry of a_k
+    x_norm = jnp.sqrt(jnp.sum(below * below, axis=-2))
+    nonzero = x_norm > 0                                    # false only for a length-1 a_k
+    positive = alpha >= 0
+    beta = jnp.where(positive, -1.0, 1.0).astype(dtype) * jnp.hypot(alpha, x_norm)
+    tau = jnp.where(nonzero, (beta - alpha) / beta, 0.0).astype(dtype)
+    v = below / jnp.where(nonzero, alpha - beta, 1.0).astype(dtype)[..., None, :]
+    signs = jnp.where(nonzero, jnp.where(positive, -1.0, 1.0), jnp.where(positive, 1.0, -1.0))
+    return jax.lax.linalg.householder_product(v, tau) * signs.astype(dtype)[..., None, :]
 
 
 def gaussian(scale: float = 1.0) -> Initializer:
@@ -87,7 +114,9 @@ def orthogonal(scale: float = 1.0) -> Initializer:
     ``scale``; its mean squared entry is ``scale^2 / max(fan_in, fan_out)``.
 
     References: Mezzadri 2007, "How to generate random matrices from the classical compact
-    groups", Notices AMS 54, sec. 5 (QR with the sign fix).
+    groups", Notices AMS 54, sec. 5 (QR with the sign fix); Stewart 1980, "The efficient
+    generation of random orthogonal matrices with an application to condition estimators",
+    SIAM J. Numer. Anal. 17 (the same law from Householder reflectors, no factorisation).
     """
     scale = float(scale)
 

@@ -8,6 +8,9 @@ Routes (each a pure function of ``(network, params, x)``):
 * :func:`layer_product` -- the same J as an explicit product of per-layer Jacobians
   ``J_l = d x^l / d x^{l-1}`` (each by ``jax.jacfwd`` of one layer).  An independent route for
   tests, and the diagnostic that finds the first layer where J stops being finite.
+* :func:`profiled_jacobian` -- J by one forward-mode scan that also keeps the partial
+  products ``J_l ... J_1`` at chosen depths (the depth profile at no extra pass), and
+  :func:`partial_spectra`, their singular values.
 * :func:`qr_log_singular_values` -- log singular values of very deep products by QR
   accumulation (Benettin et al. 1980): ``Q_t R_t = qr(J_t Q_{t-1})``, ``ln s ~ sum_t ln|diag R_t|``,
   which never forms J and so never over- or underflows.
@@ -19,6 +22,7 @@ built-in families share across networks of one family and activation.
 from __future__ import annotations
 
 import functools
+import math
 from typing import NamedTuple
 
 import jax
@@ -28,7 +32,8 @@ import numpy as np
 from isoscope.network import Network
 
 __all__ = ["dense_jacobian", "layer_product", "qr_log_singular_values", "forward_fault",
-           "jacobian_fault", "Fault", "trace_count", "partial_singular_values"]
+           "jacobian_fault", "Fault", "trace_count", "ProfiledJacobian", "profiled_jacobian",
+           "PartialSpectra", "partial_spectra"]
 
 _TRACES = {"count": 0}
 
@@ -141,33 +146,76 @@ def jacobian_fault(network: Network, params, x: jax.Array) -> Fault | None:
                  f" in {jnp.asarray(x).dtype}")
 
 
-@functools.lru_cache(maxsize=None)
-def _compiled_partial_spectra(layer):
-    layer_jac = jax.jacfwd(layer, argnums=1)
+class ProfiledJacobian(NamedTuple):
+    """The Jacobian and the partial products ``T_l = J_l ... J_1`` kept at chosen depths.
 
-    def run(slices, x, keep):
-        n = x.shape[0]
+    Each kept ``T_l`` is stored as a mantissa matrix and a power of two,
+    ``T_l = 2^(exponents[i]) * mantissas[i]`` with ``max |mantissas[i]| in [1/2, 1)``, so a
+    partial product far outside the dtype's range (a vanishing or exploding stack) keeps its
+    shape; :func:`partial_spectra` gives their singular values.
+
+    Attributes:
+      jacobian: ``J = T_L``, shape ``(N, N)`` (under- or overflows exactly where the product does).
+      depths: the kept depths l, increasing, in ``1..L``.
+      mantissas: ``(len(depths), N, N)``.
+      exponents: ``(len(depths),)`` integers.
+    """
+
+    jacobian: jax.Array
+    depths: np.ndarray
+    mantissas: jax.Array
+    exponents: jax.Array
+
+
+def _power_of_two_split(t: jax.Array, dtype) -> tuple[jax.Array, jax.Array]:
+    """``t = 2^k m`` with ``max|m|`` in ``[1/2, 1)`` (``k = 0`` for a zero or non-finite t).
+
+    Scaling by a power of two is exact in binary floating point (no rounding unless the result
+    leaves the normal range), so carrying ``(m, k)`` instead of t changes no digit of the
+    product while it is representable (IEEE 754-2019, sec. 5.3.3 scaleB).
+    """
+    fi = jnp.finfo(dtype)
+    big = jnp.max(jnp.abs(t))
+    _, k = jnp.frexp(big)
+    k = jnp.where(jnp.isfinite(big) & (big > 0), k, 0)
+    k = jnp.clip(k, fi.minexp + 1, fi.maxexp - 1)  # 2^-k stays a normal number
+    return t * jnp.ldexp(jnp.ones((), dtype), -k), k
+
+
+@functools.lru_cache(maxsize=None)
+def _compiled_profiled(layer):
+    def run(slices, x, slot, count):
+        n, dtype = x.shape[0], x.dtype
 
         def step(carry, inputs):
-            p, wanted = inputs
-            x, t = carry
-            t = layer_jac(p, x) @ t
-            s = jax.lax.cond(wanted, lambda m: jnp.linalg.svd(m, compute_uv=False),
-                             lambda m: jnp.zeros(n, m.dtype), t)
-            return (layer(p, x), t), s
+            p, where = inputs
+            x, t, k, buf, exps = carry
+            y, t = jax.vmap(lambda v: jax.jvp(lambda u: layer(p, u), (x,), (v,)), in_axes=1,
+                            out_axes=(None, 1))(t)
+            t, dk = _power_of_two_split(t, dtype)
+            k = k + dk
+            buf = jax.lax.dynamic_update_index_in_dim(buf, t, where, 0)
+            exps = jax.lax.dynamic_update_index_in_dim(exps, k, where, 0)
+            return (y, t, k, buf, exps), None
 
-        _, s = jax.lax.scan(step, (x, jnp.eye(n, dtype=x.dtype)), (slices, keep))
-        return s
+        init = (x, jnp.eye(n, dtype=dtype), jnp.zeros((), jnp.int32),
+                jnp.zeros((count + 1, n, n), dtype), jnp.zeros(count + 1, jnp.int32))
+        (_, t, k, buf, exps), _ = jax.lax.scan(step, init, (slices, slot))
+        return jnp.ldexp(t, k), buf[:count], exps[:count]
 
-    return jax.jit(_counted(run))
+    return jax.jit(_counted(run), static_argnums=(3,))
 
 
-def partial_singular_values(network: Network, params, x: jax.Array,
-                            depths: np.ndarray) -> np.ndarray:
-    """Singular values of the partial Jacobians ``J_l ... J_1`` at the requested depths l.
+def profiled_jacobian(network: Network, params, x: jax.Array, depths) -> ProfiledJacobian:
+    """The Jacobian by one forward-mode pass that also keeps ``T_l = J_l ... J_1`` at ``depths``.
 
-    One pass over the layers (the per-layer product of :func:`layer_product`), with an SVD
-    at each requested depth; compiled once per (width, depth, dtype).
+    One ``lax.scan`` over the layers carries the forward state ``x^l`` and the tangent matrix
+    ``T_l = (d x^l / d x^0)``: ``T_l = J_l T_{l-1}``, each step the forward-mode
+    push of the N tangent columns through layer l (``jax.jvp`` under ``jax.vmap``, which is
+    what ``jax.jacfwd`` of the whole stack does), so J costs what :func:`dense_jacobian`
+    costs and the partial products come for free.  T is carried as ``2^k m`` (see
+    :func:`_power_of_two_split`), which is exact while T is representable and keeps the shape
+    of T when it is not.  Compiled once per (layer function, width, depth, dtype, len(depths)).
 
     Args:
       network: a built-in stack (with per-layer structure).
@@ -175,15 +223,61 @@ def partial_singular_values(network: Network, params, x: jax.Array,
       depths: increasing layer counts in ``1..network.depth``.
 
     Returns:
-      ``(len(depths), N)`` singular values, each row decreasing.
+      A :class:`ProfiledJacobian`.
     """
     if network.layer is None:
-        raise ValueError("partial_singular_values needs a built-in stack with per-layer structure")
+        raise ValueError("profiled_jacobian needs a built-in stack with per-layer structure")
     depths = np.asarray(depths, dtype=int)
-    keep = np.zeros(network.depth, dtype=bool)
-    keep[depths - 1] = True
-    s = _compiled_partial_spectra(network.layer)(network.layer_slices(params), x, jnp.asarray(keep))
-    return np.asarray(s)[depths - 1]
+    if depths.size == 0 or np.any(np.diff(depths) <= 0) or depths[0] < 1 or depths[-1] > network.depth:
+        raise ValueError(f"depths must increase within 1..{network.depth}, got {depths.tolist()}")
+    slot = np.full(network.depth, depths.size, dtype=np.int32)  # unkept layers write a scratch slot
+    slot[depths - 1] = np.arange(depths.size, dtype=np.int32)
+    j, m, e = _compiled_profiled(network.layer)(network.layer_slices(params), x, jnp.asarray(slot),
+                                                int(depths.size))
+    return ProfiledJacobian(j, depths, m, e)
+
+
+class PartialSpectra(NamedTuple):
+    """Singular values of the kept partial products, ``s_i(T_l) = 2^(exponents[l]) * s[l, i]``.
+
+    Attributes:
+      depths: the depths l.
+      s: ``(len(depths), N)`` singular values of the mantissas, rows decreasing, in the
+        working dtype.
+      exponents: ``(len(depths),)`` the powers of two.
+    """
+
+    depths: np.ndarray
+    s: np.ndarray
+    exponents: np.ndarray
+
+    @property
+    def log_s(self) -> np.ndarray:
+        """``ln s_i(T_l) = ln s[l, i] + exponents[l] ln 2`` (``-inf`` for exact zeros), in float64."""
+        with np.errstate(divide="ignore"):
+            return np.log(self.s.astype(np.float64)) + self.exponents[:, None] * math.log(2.0)
+
+    def singular_values(self, row: int) -> np.ndarray:
+        """``s(T_l)`` of one row in the working dtype (a power-of-two scaling: exact while in
+        range, underflowing to zero as the product itself does)."""
+        return np.ldexp(self.s[row], int(self.exponents[row]))
+
+
+@functools.lru_cache(maxsize=None)
+def _batched_svd():
+    return jax.jit(lambda m: jnp.linalg.svd(m, compute_uv=False))
+
+
+def partial_spectra(profiled: ProfiledJacobian) -> PartialSpectra:
+    """Singular values of each kept partial product ``T_l = 2^(k_l) m_l`` of a
+    :class:`ProfiledJacobian`.
+
+    ``s_i(T_l) = 2^(k_l) s_i(m_l)``: singular values scale with the matrix, and the SVD of the
+    mantissa ``m_l`` runs in range, so ``ln s`` is right even where ``T_l`` itself under- or
+    overflows.  One batched SVD (LAPACK gesdd, values only).
+    """
+    s = np.asarray(_batched_svd()(profiled.mantissas))
+    return PartialSpectra(profiled.depths, s, np.asarray(profiled.exponents, dtype=np.int64))
 
 
 @functools.lru_cache(maxsize=None)
@@ -212,8 +306,8 @@ def qr_log_singular_values(network: Network, params, x: jax.Array) -> np.ndarray
     ``Q_0 = I``; for each layer ``Q_t R_t = qr(J_t Q_{t-1})`` and ``ln s_i ~ sum_t ln |(R_t)_ii|``.
     For long products ``(1/L) sum_t ln|(R_t)_ii|`` converges to the Lyapunov exponents
     (Benettin, Galgani, Giorgilli, Strelcyn 1980); for products of Gaussian matrices each
-    factor's ``ln|R_ii|`` is an independent draw with mean ``mu_i`` of Newman 1986 (THEORY.md
-    sec. 6).  Exact for the largest-volume directions, a good approximation of ``ln s`` when
+    factor's ``ln|R_ii|`` is an independent draw with mean ``mu_i`` of Newman 1986
+    (Commun. Math. Phys. 103).  Exact for the largest-volume directions, a good approximation of ``ln s`` when
     the spectrum is spread over many orders of magnitude, which is where the dense SVD fails.
     """
     logs = _compiled_qr(network.layer)(network.layer_slices(params), x)

@@ -33,7 +33,7 @@ from isoscope.spectrum import Spectrum
 __all__ = ["Score", "score_spectrum", "VERDICTS", "GAIN_LIMIT", "ISOMETRIC_SCORE", "Agreement",
            "agreement", "ks_distance", "censored_log_stats", "KS_LIMIT", "Outlier",
            "split_outliers", "length_mode_side", "tail_share", "atom_tolerance", "snap_to_atoms",
-           "judged_gain", "non_finite_score"]
+           "judged_gain", "non_finite_score", "outlier_counts"]
 
 GAIN_LIMIT = 10.0      # convention, see module docstring
 ISOMETRIC_SCORE = 0.8  # convention, see module docstring
@@ -386,6 +386,24 @@ def length_mode_side(prediction) -> str | None:
     return None
 
 
+def _outlier_kinds(prediction) -> list[tuple[str, str, float]]:
+    """``(kind, side, predicted s)`` of the outliers a prediction implies (see split_outliers)."""
+    found = []
+    if prediction.mean_mode:
+        found.append(("mean mode", "top", math.nan))
+    side = length_mode_side(prediction)
+    if side is not None and not any(f[1] == side for f in found):
+        found.append(("input-length direction", side,
+                      _exp(float(prediction.log_length_mode_s))))
+    return found
+
+
+def outlier_counts(prediction) -> tuple[int, int]:
+    """How many values per draw :func:`split_outliers` sets apart: ``(top, bottom)``."""
+    kinds = _outlier_kinds(prediction)
+    return sum(k[1] == "top" for k in kinds), sum(k[1] == "bottom" for k in kinds)
+
+
 def split_outliers(spectrum: Spectrum, prediction) -> tuple[Spectrum, tuple[Outlier, ...]]:
     """Set apart the values per draw that the bulk law does not describe.
 
@@ -397,14 +415,7 @@ def split_outliers(spectrum: Spectrum, prediction) -> tuple[Spectrum, tuple[Outl
     Returns:
       ``(bulk, outliers)``.
     """
-    found = []
-    if prediction.mean_mode:
-        found.append(("mean mode", "top", math.nan))
-    side = length_mode_side(prediction)
-    if side is not None and not any(f[1] == side for f in found):
-        found.append(("input-length direction", side,
-                      _exp(float(prediction.log_length_mode_s))))
-    found = [f for f in found if spectrum.size > len(found)]
+    found = [f for f in _outlier_kinds(prediction) if spectrum.size > 2]
     top = sum(f[1] == "top" for f in found)
     bottom = sum(f[1] == "bottom" for f in found)
     outliers = tuple(Outlier(kind, where, float(np.exp(np.median(
