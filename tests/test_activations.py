@@ -47,7 +47,7 @@ def test_symmetry_and_dtype(name):
 def test_reference_values():
     # SELU constants: Klambauer et al. 2017, eq. (14); selu(1) = lambda.
     np.testing.assert_allclose(get_activation("selu").fn(jnp.asarray(1.0)), 1.0507009873554805, rtol=1e-15)
-    # 4 sigmoid(x) - 2 = 2 tanh(x/2) (THEORY.md sec. 2)
+    # 4 sigmoid(x) - 2 = 2 tanh(x/2) (docs/theory-mean-field.md)
     x = jnp.linspace(-5, 5, 11)
     np.testing.assert_allclose(get_activation("centred-sigmoid").fn(x), 2 * np.tanh(np.asarray(x) / 2), atol=1e-14)
     # gelu(1) = Phi(1) = 0.8413447460685429 (scipy.stats.norm.cdf(1))

@@ -176,7 +176,7 @@ def test_relu_matches_and_zero_atom_is_the_rank_deficit():
     # sampler seed 0 gives KS 0.035, most of it the zero atom's shift), hence the bound above.
     spec, plan, spectrum, pred, agree = _case("relu-orthogonal")
     assert not pred.notes, pred.notes
-    (a0, w0), = pred.density.atoms                  # the atom at zero, weight 1/2 (THEORY.md sec. 3)
+    (a0, w0), = pred.density.atoms                  # the atom at zero, weight 1/2 (docs/theory-free-probability.md)
     assert a0 == 0.0 and w0 == pytest.approx(0.5, abs=1e-6)
     _, zero_sim = _simulate(spec, plan, pred)
     zero_meas = agree.zero_fraction[1]

@@ -177,7 +177,7 @@ def test_predict_bad_requests_exit_2(capsys, args, needle):
 
 
 def test_critical_json_matches_the_tanh_check_value(tmp_path, capsys):
-    # THEORY.md sec. 2 check value: tanh at sigma_b^2 = 0.05 is critical at sigma_w^2 = 1.760954639607,
+    # docs/theory-mean-field.md check value: tanh at sigma_b^2 = 0.05 is critical at sigma_w^2 = 1.760954639607,
     # q* = 0.570047881641 (Schoenholz et al. 2017 show about 1.76)
     fig = tmp_path / "line.png"
     code, out, _ = _run(["critical", "--activation", "tanh", "--sigma-b", 0.05 ** 0.5,
@@ -188,7 +188,7 @@ def test_critical_json_matches_the_tanh_check_value(tmp_path, capsys):
     assert r["sigma_w2"] == pytest.approx(1.760954639607, abs=1e-9)
     assert r["sigma_w"] == pytest.approx(1.760954639607 ** 0.5, abs=1e-9)
     assert r["q_star"] == pytest.approx(0.570047881641, abs=1e-9)
-    # the user's point sigma_w^2 = 1, sigma_b^2 = 0.05 (THEORY.md sec. 2):
+    # the user's point sigma_w^2 = 1, sigma_b^2 = 0.05 (docs/theory-mean-field.md):
     # q* = 0.193593, chi_1 = 0.759032, xi_q = 1.7476, xi_c = 3.6270; ordered, 50 > 6 xi_c
     pt = r["point"]
     assert pt["q_star"] == pytest.approx(0.193593, abs=1e-6)

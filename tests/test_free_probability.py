@@ -1,7 +1,7 @@
 """Free-probability theory of plain and residual stacks (isoscope.theory.free_probability).
 
 Every check value is computed here by a route independent of the module -- scipy quadrature or
-closed forms for mu_k, the closed-form moments and exact laws of THEORY.md sec. 3-4, the
+closed forms for mu_k, the closed-form moments and exact laws of docs/theory-free-probability.md, the
 Fuss-Catalan law of Penson & Zyczkowski 2011, scipy root finding on the real inverse maps,
 mpmath Taylor coefficients -- and its source is named beside it.
 
@@ -22,7 +22,7 @@ from isoscope.theory import mean_field as mf
 ACTIVATIONS = ("linear", "relu", "hard-tanh", "tanh", "erf")
 KINDS = ("gaussian", "orthogonal")
 DEPTHS = (1, 2, 8, 100, 1000)
-SIGMA_B_NEAR_CRITICAL = math.sqrt(0.05)   # sigma_b^2 = 0.05, as in THEORY.md sec. 2 check values
+SIGMA_B_NEAR_CRITICAL = math.sqrt(0.05)   # sigma_b^2 = 0.05, as in docs/theory-mean-field.md check values
 
 
 def _point(act: str) -> tuple[float, float]:
@@ -43,7 +43,7 @@ def _mu_reference(act: str, q: float, k: int) -> float:
     if act == "relu":
         return 0.5                                           # P(h > 0)
     if act == "hard-tanh":
-        return special.erf(1.0 / math.sqrt(2.0 * q))         # P(|h| < 1), THEORY.md sec. 2
+        return special.erf(1.0 / math.sqrt(2.0 * q))         # P(|h| < 1), docs/theory-mean-field.md
     if act == "erf":
         # phi' = (2/sqrt(pi)) e^{-h^2}: E[e^{-2k h^2}] = 1/sqrt(1 + 4 k q) (Gaussian integral)
         return (4.0 / math.pi) ** k / math.sqrt(1.0 + 4.0 * k * q)
@@ -55,7 +55,7 @@ def _mu_reference(act: str, q: float, k: int) -> float:
 
 
 def _closed_moments(act: str, kind: str, sigma_w: float, q: float, depth: int):
-    """m1, m2, m3 from THEORY.md sec. 3 (t1, t2 in terms of mu_k; *derived* there)."""
+    """m1, m2, m3 from docs/theory-free-probability.md (t1, t2 in terms of mu_k; *derived* there)."""
     mu1, mu2, mu3 = (_mu_reference(act, q, k) for k in (1, 2, 3))
     if kind == "orthogonal":
         t1 = mu2 / mu1 ** 2 - 1.0
@@ -91,7 +91,7 @@ def test_derivative_law_moments_match_independent_integrals(laws, act):
 
 
 def test_derivative_law_atoms_of_piecewise_linear():
-    # ReLU {0: 1/2, 1: 1/2}; hard-tanh {1: erf(1/sqrt(2q)), 0: erfc(1/sqrt(2q))} (THEORY.md sec. 3)
+    # ReLU {0: 1/2, 1: 1/2}; hard-tanh {1: erf(1/sqrt(2q)), 0: erfc(1/sqrt(2q))} (docs/theory-free-probability.md)
     relu = fp.derivative_law("relu", 0.7)
     assert relu.exact and relu.zero_weight == pytest.approx(0.5, abs=1e-15)
     np.testing.assert_allclose(relu.values, [1.0])
@@ -140,7 +140,7 @@ def test_plain_density_mass_and_moments(laws, act, kind, L):
     law, sw, q = laws[act]
     d = fp.plain_density(law, kind, sw, L)
     m1, m2, _ = _closed_moments(act, kind, sw, q, L)
-    # atom at zero: P(phi'(h) = 0) in both ensembles (THEORY.md sec. 3, atoms)
+    # atom at zero: P(phi'(h) = 0) in both ensembles (docs/theory-free-probability.md, atoms)
     # (for the Bernoulli laws of ReLU and hard-tanh, P(phi' = 0) = 1 - mu_1)
     zero = 1.0 - _mu_reference(act, q, 1) if act in ("relu", "hard-tanh") else 0.0
     assert d.atom_at_zero == pytest.approx(zero, abs=1e-12)
@@ -152,7 +152,7 @@ def test_plain_density_mass_and_moments(laws, act, kind, L):
 
 @pytest.mark.parametrize("L", [1, 2, 3, 4])
 def test_linear_gaussian_density_is_fuss_catalan(L):
-    """Product of L Ginibre matrices: Penson & Zyczkowski 2011, eqs. (5)-(6) (THEORY.md sec. 3):
+    """Product of L Ginibre matrices: Penson & Zyczkowski 2011, eqs. (5)-(6) (docs/theory-free-probability.md):
     x(phi) = sin^{L+1}((L+1)phi) / (sin(phi) sin^L(L phi)),
     rho = sin^2(phi) sin^{L-1}(L phi) / (pi sin^L((L+1)phi)), 0 < phi < pi/(L+1)."""
     s = L
@@ -184,7 +184,7 @@ def test_linear_gaussian_density_is_fuss_catalan(L):
 
 
 def test_relu_orthogonal_depth_two_is_arcsine():
-    # THEORY.md sec. 3 (*derived*): L = 2, sigma_w^2 = 2: (1/2) delta(0) + 1/(2 pi sqrt(l (4 - l)))
+    # docs/derivations.md: L = 2, sigma_w^2 = 2: (1/2) delta(0) + 1/(2 pi sqrt(l (4 - l)))
     d = fp.plain_density(fp.derivative_law("relu", 1.0), "orthogonal", math.sqrt(2.0), 2)
     assert d.atom_at_zero == pytest.approx(0.5, abs=1e-15)
     assert d.support[1] == pytest.approx(4.0, rel=1e-9)
@@ -197,7 +197,7 @@ def test_relu_orthogonal_depth_two_is_arcsine():
 
 
 def _bernoulli_edge(kind: str, p: float, sigma_w: float, L: int) -> float:
-    """Largest lambda from the real inverse map of THEORY.md sec. 3, by scipy alone:
+    """Largest lambda from the real inverse map of docs/theory-free-probability.md, by scipy alone:
     orthogonal z(M) = s^{2L} (M+p)^L / (M (1+M)^{L-1}), Gaussian z(M) = s^{2L}(1+M)(M+p)^L / M;
     the edge is the minimum of z over M > 0."""
     s2L = sigma_w ** (2 * L)
@@ -212,7 +212,7 @@ def _bernoulli_edge(kind: str, p: float, sigma_w: float, L: int) -> float:
 
 @pytest.mark.parametrize("L, edge", [(8, 20.372), (32, 85.622)])
 def test_relu_orthogonal_edges(L, edge):
-    # THEORY.md sec. 3 check values (ReLU orthogonal largest lambda), and the real inverse map
+    # docs/theory-free-probability.md check values (ReLU orthogonal largest lambda), and the real inverse map
     d = fp.plain_density(fp.derivative_law("relu", 1.0), "orthogonal", math.sqrt(2.0), L)
     assert d.support[1] == pytest.approx(edge, abs=6e-4)
     assert d.support[1] == pytest.approx(_bernoulli_edge("orthogonal", 0.5, math.sqrt(2), L),
@@ -222,7 +222,7 @@ def test_relu_orthogonal_edges(L, edge):
 
 
 def test_tanh_check_values_at_q_half():
-    # THEORY.md sec. 3: tanh, q* = 0.5 on chi_1 = 1: sigma_w^2 = 1.687975, sigma_b^2 = 0.0380412,
+    # docs/theory-free-probability.md: tanh, q* = 0.5 on chi_1 = 1: sigma_w^2 = 1.687975, sigma_b^2 = 0.0380412,
     # mu_2/mu_1^2 - 1 = 0.299244; largest lambda of the orthogonal stack at L = 8: 7.493
     law = fp.derivative_law("tanh", 0.5)
     sw2 = 1.0 / law.moment(1)
@@ -236,7 +236,7 @@ def test_tanh_check_values_at_q_half():
 
 @pytest.mark.parametrize("L", [1, 2, 5, 100, 1000])
 def test_orthogonal_bernoulli_atoms(L):
-    # THEORY.md sec. 3 atoms (*derived*): weight 1 - p at 0; with L(1 - p) < 1 an atom at
+    # docs/theory-free-probability.md atoms (*derived*): weight 1 - p at 0; with L(1 - p) < 1 an atom at
     # sigma_w^{2L} of weight 1 - L(1 - p).  hard-tanh at q = 0.1: 1 - p = erfc(sqrt(5)) = 1.6e-3.
     q, sw = 0.1, 1.05
     p = special.erf(1 / math.sqrt(2 * q))
@@ -257,7 +257,7 @@ def test_orthogonal_bernoulli_atoms(L):
 
 @pytest.mark.parametrize("sigma_b", [1e-3, 1e-4])
 def test_near_isometric_tanh_orthogonal_depth_1000(sigma_b):
-    # chi_1 = 1 at tiny q*: the spectrum of 1000 layers is squeezed near 1 (THEORY.md sec. 3:
+    # chi_1 = 1 at tiny q*: the spectrum of 1000 layers is squeezed near 1 (docs/theory-free-probability.md:
     # variance L (mu_2/mu_1^2 - 1), about 8 L q*^2 for tanh; for small c = L(mu_2/mu_1^2 - 1)
     # the law is close to a semicircle of variance c, edges 1 +- 2 sqrt(c))
     cp = mf.critical_point("tanh", sigma_b)
@@ -274,7 +274,7 @@ def test_near_isometric_tanh_orthogonal_depth_1000(sigma_b):
     assert 0 < lo < 1 < hi
     if c < 0.1:
         assert hi - lo == pytest.approx(4 * math.sqrt(c), rel=0.05)
-    # well inside the large-depth limit's support, slightly narrower (THEORY.md sec. 3)
+    # well inside the large-depth limit's support, slightly narrower (docs/theory-free-probability.md)
     llo, lhi = fp.plain_limit_edges(c)
     assert llo * 0.8 < lo and hi < lhi
 
@@ -304,7 +304,7 @@ def _lagrange_mp(k: int, log_inv_s) -> float:
 
 @pytest.mark.parametrize("tau", [0.0, 0.05, 1.0, 3.0])
 def test_residual_moments(tau):
-    # THEORY.md sec. 4: m1 = e^tau, m2 = e^{2 tau}(1 + 2 tau); m3, m4 by Lagrange inversion (mpmath)
+    # docs/theory-free-probability.md sec. 7: m1 = e^tau, m2 = e^{2 tau}(1 + 2 tau); m3, m4 by Lagrange inversion (mpmath)
     got = fp.residual_moments(tau)
     assert got.m1 == pytest.approx(math.exp(tau), rel=1e-14)
     assert got.m2 == pytest.approx(math.exp(2 * tau) * (1 + 2 * tau), rel=1e-14)
@@ -327,7 +327,7 @@ def _exp_law_edges_scipy(a: float, c: float) -> tuple[float, float]:
 @pytest.mark.parametrize("tau", [1e-3, 0.1, 1.0, 5.0])
 def test_residual_edges(tau):
     lo, hi = fp.residual_edges(tau)
-    assert lo * hi == pytest.approx(1.0, rel=1e-12)          # THEORY.md sec. 4
+    assert lo * hi == pytest.approx(1.0, rel=1e-12)          # docs/theory-free-probability.md sec. 7
     for p, edge in zip(((-1 + math.sqrt(1 + 2 / tau)) / 2, (-1 - math.sqrt(1 + 2 / tau)) / 2),
                        (hi, lo)):
         assert edge == pytest.approx((1 + p) / p * math.exp(tau * (1 + 2 * p)), rel=1e-12)
@@ -349,7 +349,7 @@ def test_residual_density(tau):
 
 
 def test_residual_tau():
-    # THEORY.md sec. 4: ReLU with sigma_b = 0: tau = L alpha^2 sigma_w^2 / 2 exactly (any q^l);
+    # docs/theory-free-probability.md sec. 7: ReLU with sigma_b = 0: tau = L alpha^2 sigma_w^2 / 2 exactly (any q^l);
     # linear: L alpha^2 sigma_w^2; tanh: the sum of sigma_w^2 alpha^2 E[sech^4] along q^l
     qs = np.geomspace(0.3, 40.0, 50)
     assert fp.residual_tau("relu", 0.2, qs, alpha=0.7) == pytest.approx(50 * 0.49 * 0.04 / 2,

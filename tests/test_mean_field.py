@@ -1,10 +1,10 @@
 """Tests for isoscope.theory.mean_field.
 
 Oracles, each named beside its use:
-  * closed forms of THEORY.md sec. 2 (linear; ReLU arc-cosine kernel, Cho & Saul 2009; erf,
+  * closed forms of docs/theory-mean-field.md (linear; ReLU arc-cosine kernel, Cho & Saul 2009; erf,
     Williams 1997; hard-tanh, derived in-house), and Gaussian integrals derived from them;
   * mpmath quadrature at 30 digits (tanh, hard-tanh bivariate moments);
-  * the THEORY.md check values (tanh critical line and depth scales, two independent solvers);
+  * the docs/check-values.md (tanh critical line and depth scales, two independent solvers);
   * exact identities between activations: 4 sigmoid(h) - 2 = 2 tanh(h/2), and
     sigmoid(h) = (1 + tanh(h/2))/2;
   * a direct NumPy simulation of wide networks (N = 2000) for the variance trajectories.
@@ -30,7 +30,7 @@ CS = (-0.6, 0.0, 0.3, 0.9, 0.999, 0.99999)
 
 
 # ---------------------------------------------------------------------------------------------
-# Closed forms (THEORY.md sec. 2 unless noted)
+# Closed forms (docs/theory-mean-field.md unless noted)
 # ---------------------------------------------------------------------------------------------
 
 def relu_kernel(q: float, c: float) -> tuple[float, float]:
@@ -46,7 +46,7 @@ def erf_kernel(q: float, c: float) -> tuple[float, float]:
 
 
 def hard_tanh_second(q: float) -> float:
-    """E[clip(u, -1, 1)^2], u ~ N(0, q) (THEORY.md sec. 2, derived in-house)."""
+    """E[clip(u, -1, 1)^2], u ~ N(0, q) (docs/theory-mean-field.md, derived in-house)."""
     r = 1 / math.sqrt(2 * q)
     return q * (math.erf(r) - math.sqrt(2 / (PI * q)) * math.exp(-1 / (2 * q))) + math.erfc(r)
 
@@ -56,7 +56,7 @@ def test_length_map_and_chi1_closed_forms(q):
     sw, sb = 1.3, 0.4
     sw2, sb2 = sw * sw, sb * sb
     cases = {
-        # activation: (V(q), chi_1) -- THEORY.md sec. 2
+        # activation: (V(q), chi_1) -- docs/theory-mean-field.md
         "linear": (sw2 * q + sb2, sw2),
         "relu": (sw2 * q / 2 + sb2, sw2 / 2),
         "erf": (sw2 * (2 / PI) * math.asin(2 * q / (1 + 2 * q)) + sb2,
@@ -75,9 +75,9 @@ def test_length_map_slope_against_derivative_of_closed_forms(q):
     # erf: d/dq (2/pi) asin(2q/(1+2q)) = (4/pi)/((1+2q) sqrt(1+4q))  (derived in-house)
     erf_slope = sw * sw * (4 / PI) / ((1 + 2 * q) * math.sqrt(1 + 4 * q))
     assert mf.length_map_slope("erf", sw, q) == pytest.approx(erf_slope, rel=1e-10)
-    # relu: V = sigma_w^2 q / 2 (THEORY.md sec. 2)
+    # relu: V = sigma_w^2 q / 2 (docs/theory-mean-field.md)
     assert mf.length_map_slope("relu", sw, q) == pytest.approx(sw * sw / 2, rel=1e-10)
-    # hard-tanh: mpmath.diff of the closed form of E[phi^2] (THEORY.md sec. 2), 30 digits
+    # hard-tanh: mpmath.diff of the closed form of E[phi^2] (docs/theory-mean-field.md), 30 digits
     ht = lambda t: t * (mp.erf(1 / mp.sqrt(2 * t)) - mp.sqrt(2 / (mp.pi * t)) * mp.exp(-1 / (2 * t))) \
         + mp.erfc(1 / mp.sqrt(2 * t))  # noqa: E731
     assert mf.length_map_slope("hard-tanh", sw, q) == pytest.approx(
@@ -149,7 +149,7 @@ def test_tanh_expectation_mpmath_spot_check():
 def test_derivative_moments_closed_forms():
     q = 0.8
     ks = np.arange(1, 6)
-    # relu: phi'^2 in {0, 1} with P = 1/2; hard-tanh: P(|h| < 1) = erf(1/sqrt(2q)) (THEORY.md sec. 3)
+    # relu: phi'^2 in {0, 1} with P = 1/2; hard-tanh: P(|h| < 1) = erf(1/sqrt(2q)) (docs/theory-free-probability.md)
     np.testing.assert_allclose(mf.derivative_moments("relu", q, 5), 0.5, atol=1e-12)
     np.testing.assert_allclose(mf.derivative_moments("hard-tanh", q, 5),
                                math.erf(1 / math.sqrt(2 * q)), atol=1e-12)
@@ -167,7 +167,7 @@ def test_derivative_moments_closed_forms():
 # Fixed points, phases, depth scales
 # ---------------------------------------------------------------------------------------------
 
-# THEORY.md sec. 2 check values (two independent in-house solvers, agree to 1e-12)
+# docs/theory-mean-field.md check values (two independent in-house solvers, agree to 1e-12)
 TANH_CRITICAL = [(0.01, 1.424205290489, 0.273300913458), (0.05, 1.760954639607, 0.570047881641),
                  (0.1, 1.986072641136, 0.805799181913)]
 
@@ -188,7 +188,7 @@ def test_tanh_critical_points(sb2, sw2, q_star):
 
 def test_tanh_depth_scales_check_values():
     sb = math.sqrt(0.05)
-    # THEORY.md sec. 2: sigma_w^2 = 1.0: q* = 0.193593, chi_1 = 0.759032, xi_q = 1.7476, xi_c = 3.6270
+    # docs/theory-mean-field.md: sigma_w^2 = 1.0: q* = 0.193593, chi_1 = 0.759032, xi_q = 1.7476, xi_c = 3.6270
     r = mf.mean_field("tanh", 1.0, sb)
     assert r.phase == "ordered" and r.c_star == 1.0
     assert r.q_star == pytest.approx(0.193593, abs=5e-7)
@@ -210,7 +210,7 @@ def test_tanh_depth_scales_check_values():
 
 
 def test_erf_closed_form_critical_line():
-    # THEORY.md sec. 2 (derived): q* = ((4 sw2/pi)^2 - 1)/4, sb2 = q* - sw2 (2/pi) asin(2q*/(1+2q*))
+    # docs/theory-mean-field.md (derived): q* = ((4 sw2/pi)^2 - 1)/4, sb2 = q* - sw2 (2/pi) asin(2q*/(1+2q*))
     for sw2 in (0.9, 1.2, 2.0, 3.0):
         q = ((4 * sw2 / PI) ** 2 - 1) / 4
         sb2 = q - sw2 * (2 / PI) * math.asin(2 * q / (1 + 2 * q))
@@ -240,7 +240,7 @@ def test_default_critical_line_spans_sigma_b2_up_to_one():
 
 
 def test_centred_sigmoid_identities():
-    # THEORY.md sec. 2: 4 sigmoid - 2 = 2 tanh(h/2): chi_1 = 1 exactly at sigma_w = 1, sigma_b = 0,
+    # docs/theory-mean-field.md: 4 sigmoid - 2 = 2 tanh(h/2): chi_1 = 1 exactly at sigma_w = 1, sigma_b = 0,
     # with q* = 0
     r = mf.mean_field("centred-sigmoid", 1.0, 0.0)
     assert r.q_star == 0.0
@@ -258,7 +258,7 @@ def test_sigmoid_critical_point_maps_onto_tanh():
     # stack at sigma_w' = sw/4, sigma_b'^2 = sw^2/16 + sb^2/4 with variance q/4, and
     # chi_1(sigmoid) = chi_1(tanh) there (derived in-house by substitution).
     cp = mf.critical_point("sigmoid", 0.0)
-    assert cp.sigma_w2 > 16.0  # chi_1 <= sigma_w^2/16 for the sigmoid (THEORY.md sec. 2)
+    assert cp.sigma_w2 > 16.0  # chi_1 <= sigma_w^2/16 for the sigmoid (docs/theory-mean-field.md)
     tanh = mf.mean_field("tanh", cp.sigma_w / 4, math.sqrt(cp.sigma_w2 / 16))
     assert tanh.q_star == pytest.approx(cp.q_star / 4, rel=1e-9)
     assert tanh.chi1 == pytest.approx(1.0, abs=1e-9)
@@ -288,7 +288,7 @@ def test_relu_critical_point_and_errors():
 
 
 def test_relu_fixed_point_exact_below_criticality():
-    # V(q) = sw^2 q / 2 + sb^2 is linear: q* = sb^2 / (1 - sw^2/2); chi_1 = sw^2/2 (THEORY.md sec. 2)
+    # V(q) = sw^2 q / 2 + sb^2 is linear: q* = sb^2 / (1 - sw^2/2); chi_1 = sw^2/2 (docs/theory-mean-field.md)
     sw, sb = 1.2, 0.3
     r = mf.mean_field("relu", sw, sb)
     assert r.q_star == pytest.approx(sb * sb / (1 - sw * sw / 2), rel=1e-12)
@@ -303,7 +303,7 @@ def test_relu_fixed_point_exact_below_criticality():
 
 
 def test_zero_fixed_point_is_exact():
-    # tanh below criticality, sigma_b = 0: q* = 0 exactly (THEORY.md sec. 2: root-find, do not iterate)
+    # tanh below criticality, sigma_b = 0: q* = 0 exactly (docs/theory-mean-field.md: root-find, do not iterate)
     assert mf.fixed_point("tanh", 0.9, 0.0) == 0.0
     assert mf.fixed_point("erf", 0.8, 0.0) == 0.0  # chi_1(0) = 4 * 0.64 / pi < 1
     assert mf.fixed_point("tanh", 1.0, 0.0) == 0.0  # marginal: V(q) < q for q > 0

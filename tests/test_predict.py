@@ -1,6 +1,6 @@
 """The joined prediction (theory/predict.py) and the measured-vs-predicted agreement (score.py).
 
-Check values: closed forms of THEORY.md sec. 2-4 (m1 = chi_1^L; ReLU tau = L alpha^2 sigma_w^2/2;
+Check values: closed forms of docs/theory-mean-field.md, docs/theory-free-probability.md (m1 = chi_1^L; ReLU tau = L alpha^2 sigma_w^2/2;
 the length-map slope), scipy.stats.kstest for the KS distance, and the KS definition evaluated
 by brute force.
 """
@@ -62,7 +62,7 @@ def test_ks_distance_with_an_atom_at_zero_matches_the_definition():
 
 
 def test_plain_prediction_m1_is_chi1_to_the_depth():
-    # THEORY.md sec. 3: m1 = chi_1^L; chi_1 from mean field at the same point
+    # docs/theory-free-probability.md: m1 = chi_1^L; chi_1 from mean field at the same point
     p = predict("tanh", "orthogonal", 1.2, 0.1, 20)
     x1 = mf.chi1("tanh", 1.2, p.mean_field.q_star)
     assert p.moments.m1 == pytest.approx(x1 ** 20, rel=1e-10)
@@ -77,7 +77,7 @@ def test_length_mode_is_the_length_map_slope_to_the_depth():
 
 
 def test_marginal_relu_takes_every_layer_at_its_own_variance():
-    # ReLU at sigma_w^2 = 2, sigma_b = 0: V(q) = q for every q (THEORY.md sec. 2), q* = 0 says
+    # ReLU at sigma_w^2 = 2, sigma_b = 0: V(q) = q for every q (docs/theory-mean-field.md), q* = 0 says
     # nothing; the law of phi'^2 is Bernoulli(1/2) at any q, the zero atom 1/2 (sec. 3).
     # input_variance is the input mean square q^0, so q^1 = sigma_w^2 q^0 = 1.4 at every layer
     p = predict("relu", "orthogonal", math.sqrt(2.0), 0.0, 8, input_variance=0.7)
@@ -93,7 +93,7 @@ def test_inputs_off_the_fixed_point_are_noted():
 
 
 def test_residual_relu_tau_is_exact():
-    # THEORY.md sec. 4: ReLU, sigma_b = 0: tau = L alpha^2 sigma_w^2 / 2 whatever q^l does;
+    # docs/theory-free-probability.md sec. 7: ReLU, sigma_b = 0: tau = L alpha^2 sigma_w^2 / 2 whatever q^l does;
     # m1 = e^tau, m2/m1^2 = 1 + 2 tau; the mean mode is flagged (E[relu(h)] > 0)
     p = predict("relu", "gaussian", math.sqrt(2.0), 0.0, 64, family="residual", alpha=0.125)
     assert p.tau == pytest.approx(64 * 0.125 ** 2 * 2.0 / 2.0, rel=1e-12)
@@ -299,7 +299,7 @@ def test_narrow_law_matches_the_large_depth_edges(sb):
 
 
 def test_relative_variance_is_accurate_below_rounding():
-    # mu2/mu1^2 - 1 for tanh at q = 1e-12 is about 8 q^2 = 8e-24 (THEORY.md: tanh variance
+    # mu2/mu1^2 - 1 for tanh at q = 1e-12 is about 8 q^2 = 8e-24 (docs/check-values.md: tanh variance
     # ~ 8 L q*^2); the naive difference rounds to 0 in float64.  mpmath at 60 digits.
     import mpmath
 

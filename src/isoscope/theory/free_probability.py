@@ -1,6 +1,6 @@
 """Free probability for the Jacobian spectrum of deep networks at infinite width.
 
-The model (THEORY.md sec. 1, 3): ``J = D^L W^L ... D^1 W^1`` with ``D^l = diag(phi'(h^l))``,
+The model (docs/theory-free-probability.md sec. 1, 3): ``J = D^L W^L ... D^1 W^1`` with ``D^l = diag(phi'(h^l))``,
 ``h^l ~ N(0, q)`` and W Gaussian (``W_ij ~ N(0, sigma_w^2/N)``) or scaled Haar orthogonal
 (``W = sigma_w Q``).  lambda = s^2 is an eigenvalue of ``J J^T``.  As N -> infinity the
 factors are asymptotically free, their S-transforms multiply, and the spectrum of ``J J^T``
@@ -22,7 +22,7 @@ What is here:
   (the method is described in ``docs/theory-free-probability.md``);
 * :func:`residual_tau`, :func:`residual_moments`, :func:`residual_edges`,
   :func:`residual_density` -- the universal law of deep residual stacks,
-  ``S(z) = exp(-tau (1 + 2 z))`` (Tarnowski et al. 2019; THEORY.md sec. 4);
+  ``S(z) = exp(-tau (1 + 2 z))`` (Tarnowski et al. 2019; docs/theory-free-probability.md sec. 7);
 * :func:`plain_limit_edges` -- the support of the large-depth orthogonal law ``S = exp(-c z)``.
 
 The solver works in ``ell = ln(lambda)`` and in the relative imaginary part ``y/lambda``, so
@@ -146,7 +146,7 @@ class DerivativeLaw:
 
     @property
     def positive_weight(self) -> float:
-        """``P(d > 0)``, the p of THEORY.md sec. 3 for Bernoulli laws."""
+        """``P(d > 0)``, the p of docs/theory-free-probability.md for Bernoulli laws."""
         return float(np.sum(self.weights))
 
     def moment(self, k: int) -> float:
@@ -159,11 +159,11 @@ class DerivativeLaw:
 
     @property
     def mu(self) -> tuple[float, float, float, float]:
-        """``(mu_1, mu_2, mu_3, mu_4)``, ``mu_k = E[phi'(h)^{2k}]`` (THEORY.md sec. 3)."""
+        """``(mu_1, mu_2, mu_3, mu_4)``, ``mu_k = E[phi'(h)^{2k}]`` (docs/theory-free-probability.md)."""
         return tuple(self.moment(k) for k in (1, 2, 3, 4))
 
     def m_transform(self, w) -> np.ndarray:
-        """``M_{D^2}(w) = E[d/(w - d)]`` for complex w (any shape; THEORY.md sec. 3).
+        """``M_{D^2}(w) = E[d/(w - d)]`` for complex w (any shape; docs/theory-free-probability.md).
 
         Args:
           w: complex array (off the support of d).
@@ -283,7 +283,7 @@ def _grouped(log_values: np.ndarray, weights: np.ndarray, exact: bool, name: str
 
 
 def derivative_law(activation: str | Activation, q: float) -> DerivativeLaw:
-    """The law of ``d = phi'(h)^2``, ``h ~ N(0, q)`` (THEORY.md sec. 3, ``M_{D^2}``).
+    """The law of ``d = phi'(h)^2``, ``h ~ N(0, q)`` (docs/theory-free-probability.md, ``M_{D^2}``).
 
     For phi' piecewise constant (``activation.derivative_values`` is not None) the law is
     exact: one atom per piece between kinks, of weight ``P(a < h < b)`` from the normal CDF
@@ -311,7 +311,7 @@ def derivative_law(activation: str | Activation, q: float) -> DerivativeLaw:
       TheoryError: for a negative or non-finite q, or q = 0 when phi' jumps at 0.
 
     References:
-      Pennington, Schoenholz, Ganguli 2017 (NeurIPS), sec. 2.3; THEORY.md sec. 3.
+      Pennington, Schoenholz, Ganguli 2017 (NeurIPS), sec. 2.3; docs/theory-free-probability.md.
     """
     act = get_activation(activation)
     q = _check_q(q)
@@ -481,7 +481,7 @@ def plain_moments(law: DerivativeLaw, weights: str, sigma_w: float, depth: int) 
     Lagrange inversion: ``m_k = (1/k) [z^{k-1}] ((1+z)/S_{JJ^T}(z))^k`` with
     ``S_{JJ^T} = S_W^L S_{D^2}^L``.  ``S_{D^2}`` comes from the moments ``mu_k`` by series
     reversion of ``psi(z) = sum_k mu_k z^k`` (``S = (1+z) psi^{-1}(z)/z``).  Closed forms that
-    this reproduces (THEORY.md sec. 3): ``m1 = chi_1^L``, ``m2 = m1^2 (1 + L t1)``,
+    this reproduces (docs/theory-free-probability.md): ``m1 = chi_1^L``, ``m2 = m1^2 (1 + L t1)``,
     ``m3 = m1^3 [1 + 3 L t1 + L t2 + L(3L-1) t1^2/2]``; for linear Gaussian layers with
     sigma_w = 1 the Fuss-Catalan numbers ``binom((L+1)k, k)/(Lk+1)``.
 
@@ -497,7 +497,7 @@ def plain_moments(law: DerivativeLaw, weights: str, sigma_w: float, depth: int) 
 
     References:
       Pennington, Schoenholz, Ganguli 2017 (NeurIPS), sec. 2.3 (moments by Lagrange
-      inversion); THEORY.md sec. 3.
+      inversion); docs/theory-free-probability.md.
     """
     kind, sigma, depth = _check_stack(law, weights, sigma_w, depth)
     if law.positive_weight <= 0:
@@ -538,7 +538,7 @@ class _PlainProblem:
     Orthogonal: ``log z + (1-L)(log M - log(1+M)) - L log sigma_w^2 - L log w = 0``;
     Gaussian:   ``log z + (1-L) log M - log(1+M) - L log sigma_w^2 - L log w = 0``
     (logarithms of ``z M (1+M)^{L-1} = (sigma_w^2 M w)^L`` and ``z M = (1+M)(sigma_w^2 M w)^L``,
-    THEORY.md sec. 3).  Each logarithm is taken of a number in a known half-plane (z, w up;
+    docs/theory-free-probability.md).  Each logarithm is taken of a number in a known half-plane (z, w up;
     M, 1+M down), so the branch is the one continuous from z = infinity.
     """
 
@@ -594,7 +594,7 @@ class _PlainProblem:
 class _ExponentialProblem:
     """Master equation for ``S(z) = exp(a - c z)``: ``log z + log M + a - c M - log(1+M) = 0``.
 
-    Covers the residual law (``a = -tau``, ``c = 2 tau``, THEORY.md sec. 4) and the
+    Covers the residual law (``a = -tau``, ``c = 2 tau``, docs/theory-free-probability.md sec. 7) and the
     large-depth orthogonal law ``S = exp(-c z)`` (a = 0).  Unknown: M itself.
     """
 
@@ -852,7 +852,7 @@ class Density:
 
 
 def _plain_atoms(law: DerivativeLaw, kind: str, sigma: float, depth: int):
-    """Atoms of ``J J^T``: ``(log location or -inf, weight)`` (THEORY.md sec. 3, *derived*).
+    """Atoms of ``J J^T``: ``(log location or -inf, weight)`` (docs/theory-free-probability.md, *derived*).
 
     Zero: weight ``P(d = 0)`` in both ensembles.  Orthogonal weights: an atom of d at a with
     weight p_a > 1 - 1/L gives an atom at ``(sigma_w^2 a)^L`` of weight ``1 - L(1 - p_a)``
@@ -1290,7 +1290,7 @@ def plain_density(law: DerivativeLaw, weights: str, sigma_w: float, depth: int,
     Solves the master equation ``z M S_{JJ^T}(M) = 1 + M`` (``G = (1 + M)/z``,
     ``rho = -Im G/pi``) with the auxiliary variable w, ``M = M_{D^2}(w)``:
     orthogonal ``z M (1+M)^{L-1} = (sigma_w^2 M w)^L``, Gaussian
-    ``z M = (1+M)(sigma_w^2 M w)^L`` (THEORY.md sec. 3, *derived*).  For each lambda the solution
+    ``z M = (1+M)(sigma_w^2 M w)^L`` (docs/theory-free-probability.md, *derived*).  For each lambda the solution
     is followed along ``z = lambda + i y`` from ``y = 1e3 max(lambda_+, lambda)`` down to
     ``y = 1e-9 lambda`` (damped Newton on the logarithmic form, all points advancing together);
     the atoms are subtracted from G before taking the imaginary part.  The upper edge is the
@@ -1379,7 +1379,7 @@ def _narrow_density(log_m1: float, rel_var: float, points: int, regime: str) -> 
     """The near-isometric limit: a semicircle in lambda of mean m1 and variance ``m1^2 rel_var``.
 
     Used when the predicted relative spread ``sqrt(m2/m1^2 - 1) = sqrt(L Var(d)/E[d]^2)``
-    (orthogonal weights, THEORY.md sec. 3: ``m2 = m1^2 (1 + L t1)``) is below
+    (orthogonal weights, docs/theory-free-probability.md: ``m2 = m1^2 (1 + L t1)``) is below
     ``NARROW_SPREAD`` = 1e-3: the law is then narrower than the continuation solver resolves.
     ``J J^T`` is a free product of L factors ``sigma_w^2 D_l^2`` each within a relative
     ``sqrt(Var(d))/E[d]`` of a multiple of the identity, so to leading order ``lambda/m1 - 1`` is
@@ -1430,7 +1430,7 @@ def residual_tau(activation: str | Activation, sigma_w: float, q_trajectory: Seq
       tau (float).
 
     References:
-      Tarnowski, Warchol, Jastrzebski, Tabor, Nowak 2019 (AISTATS); THEORY.md sec. 4.
+      Tarnowski, Warchol, Jastrzebski, Tabor, Nowak 2019 (AISTATS); docs/theory-free-probability.md sec. 7.
     """
     act = get_activation(activation)
     sigma = _check_sigma(sigma_w)
@@ -1467,7 +1467,7 @@ def residual_moments(tau: float) -> LambdaMoments:
       :class:`LambdaMoments`.
 
     References:
-      Tarnowski et al. 2019 (AISTATS); THEORY.md sec. 4 (law *derived* in-house).
+      Tarnowski et al. 2019 (AISTATS); docs/derivations.md sec. 6 (law derived in-house).
     """
     tau = _check_tau(tau)
     log_t = np.zeros(_ORDER)
@@ -1498,7 +1498,7 @@ def residual_edges(tau: float) -> tuple[float, float]:
       ``(lo, hi)``.
 
     References:
-      Tarnowski et al. 2019 (AISTATS); THEORY.md sec. 4 (*derived*).
+      Tarnowski et al. 2019 (AISTATS); docs/derivations.md.
     """
     tau = _check_tau(tau)
     if tau == 0.0:
@@ -1521,7 +1521,7 @@ def plain_limit_edges(c: float) -> tuple[float, float]:
       ``(lo, hi)``.
 
     References:
-      Pennington, Schoenholz, Ganguli 2018 (AISTATS); THEORY.md sec. 3 (*derived*).
+      Pennington, Schoenholz, Ganguli 2018 (AISTATS); docs/derivations.md.
     """
     c = _real("c", c, positive=False, what="c = L (mu_2/mu_1^2 - 1)")
     if c == 0.0:
@@ -1545,7 +1545,7 @@ def residual_density(tau: float, points: int = 400) -> Density:
       :class:`Density`.
 
     References:
-      Tarnowski et al. 2019 (AISTATS); THEORY.md sec. 4 (*derived*).
+      Tarnowski et al. 2019 (AISTATS); docs/derivations.md.
     """
     tau = _check_tau(tau)
     points = _check_points(points)

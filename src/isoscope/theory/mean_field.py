@@ -1,10 +1,10 @@
 """Mean-field signal propagation: length map, fixed point, chi_1, correlation map, depth scales.
 
-Model (THEORY.md sec. 1): ``h^l = W^l x^{l-1} + b^l``, ``x^l = phi(h^l)`` with
+Model (docs/theory-free-probability.md sec. 1): ``h^l = W^l x^{l-1} + b^l``, ``x^l = phi(h^l)`` with
 ``W_ij ~ N(0, sigma_w^2/N)`` (``sigma_w`` is a *scale*, not a variance) and ``b_i ~ N(0, sigma_b^2)``;
 residual stacks ``x^l = x^{l-1} + alpha phi(h^l)``.  At infinite width the pre-activations of one
 layer are i.i.d. ``N(0, q^l)`` and two inputs stay jointly Gaussian with correlation ``c^l``.  This
-module computes (THEORY.md sec. 2; Poole et al. 2016; Schoenholz et al. 2017, sec. 3):
+module computes (docs/theory-mean-field.md; Poole et al. 2016; Schoenholz et al. 2017, sec. 3):
 
 * the length map ``V(q) = sigma_w^2 E[phi(sqrt(q) z)^2] + sigma_b^2`` and its slope,
 * the stable fixed point ``q*`` (root finding on ``V(q) - q``, never plain iteration),
@@ -339,7 +339,7 @@ def length_map(activation: str | Activation, sigma_w: float, sigma_b: float, q: 
       V(q) as a float.
 
     References:
-      Poole et al. 2016 (NeurIPS), sec. 2; Schoenholz et al. 2017 (ICLR), sec. 3; THEORY.md sec. 2.
+      Poole et al. 2016 (NeurIPS), sec. 2; Schoenholz et al. 2017 (ICLR), sec. 3; docs/theory-mean-field.md.
     """
     act = _act(activation)
     sw, sb, q = _scale("sigma_w", sigma_w), _scale("sigma_b", sigma_b), _variance(q)
@@ -364,7 +364,7 @@ def length_map_slope(activation: str | Activation, sigma_w: float, q: float) -> 
       V'(q).  At a fixed point, ``1/xi_q = -ln V'(q*)``.
 
     References:
-      Schoenholz et al. 2017 (ICLR), sec. 3 (depth scale of q); THEORY.md sec. 2.
+      Schoenholz et al. 2017 (ICLR), sec. 3 (depth scale of q); docs/theory-mean-field.md.
     """
     act = _act(activation)
     sw, q = _scale("sigma_w", sigma_w), _variance(q)
@@ -404,7 +404,7 @@ def fixed_point(activation: str | Activation, sigma_w: float, sigma_b: float) ->
         depth (ReLU with sigma_w^2 > 2, or sigma_w^2 = 2 and sigma_b > 0).
 
     References:
-      Poole et al. 2016 (NeurIPS), sec. 2; THEORY.md sec. 2 (root finding at q* = 0).
+      Poole et al. 2016 (NeurIPS), sec. 2; docs/theory-mean-field.md (root finding at q* = 0).
     """
     act = _act(activation)
     sw, sb = _scale("sigma_w", sigma_w), _scale("sigma_b", sigma_b)
@@ -482,7 +482,7 @@ def derivative_moments(activation: str | Activation, q: float, kmax: int = 4) ->
     """Moments of the squared derivative, ``mu_k = E[phi'(sqrt(q) z)^{2k}]`` for k = 1..kmax.
 
     These are the moments of the law of ``D^2 = phi'(h)^2`` entering the free-probability
-    S-transform (THEORY.md sec. 3: ``t1 = mu_2/mu_1^2 - 1`` etc.).  At q = 0 the limit q -> 0+ is
+    S-transform (docs/theory-free-probability.md: ``t1 = mu_2/mu_1^2 - 1`` etc.).  At q = 0 the limit q -> 0+ is
     returned (ReLU: every mu_k = 1/2).
 
     Args:
@@ -494,7 +494,7 @@ def derivative_moments(activation: str | Activation, q: float, kmax: int = 4) ->
       float64 array of shape ``(kmax,)``: ``[mu_1, ..., mu_kmax]``.
 
     References:
-      Pennington, Schoenholz, Ganguli 2017 (NeurIPS), sec. 2.3; THEORY.md sec. 3 (moments).
+      Pennington, Schoenholz, Ganguli 2017 (NeurIPS), sec. 2.3; docs/theory-free-probability.md (moments).
     """
     act = _act(activation)
     q = _variance(q)
@@ -524,7 +524,7 @@ def chi1(activation: str | Activation, sigma_w: float, q: float) -> float:
       chi_1 as a float.
 
     References:
-      Poole et al. 2016 (NeurIPS), sec. 3; Schoenholz et al. 2017 (ICLR), sec. 3; THEORY.md sec. 2.
+      Poole et al. 2016 (NeurIPS), sec. 3; Schoenholz et al. 2017 (ICLR), sec. 3; docs/theory-mean-field.md.
     """
     act = _act(activation)
     sw, q = _scale("sigma_w", sigma_w), _variance(q)
@@ -596,7 +596,7 @@ def correlation_map(activation: str | Activation, sigma_w: float, sigma_b: float
 
     References:
       Poole et al. 2016 (NeurIPS), sec. 2; Schoenholz et al. 2017 (ICLR), eq. for C and sec. 3;
-      THEORY.md sec. 2.
+      docs/theory-mean-field.md.
     """
     act = _act(activation)
     sw, sb, q, c = (_scale("sigma_w", sigma_w), _scale("sigma_b", sigma_b), _variance(q),
@@ -630,7 +630,7 @@ def correlation_slope(activation: str | Activation, sigma_w: float, q: float, c:
       C'(c) as a float; ``1/xi_c = -ln C'(c*)``.
 
     References:
-      Schoenholz et al. 2017 (ICLR), sec. 3 (chi_c and xi_c); THEORY.md sec. 2.
+      Schoenholz et al. 2017 (ICLR), sec. 3 (chi_c and xi_c); docs/theory-mean-field.md.
     """
     act = _act(activation)
     sw, q, c = _scale("sigma_w", sigma_w), _variance(q), _correlation(c)
@@ -680,7 +680,7 @@ def correlation_fixed_point(activation: str | Activation, sigma_w: float, sigma_
 
     References:
       Poole et al. 2016 (NeurIPS), sec. 2 (c* < 1 in the chaotic phase); Schoenholz et al. 2017
-      (ICLR), sec. 3; THEORY.md sec. 2.
+      (ICLR), sec. 3; docs/theory-mean-field.md.
     """
     act = _act(activation)
     sw, sb, q = _scale("sigma_w", sigma_w), _scale("sigma_b", sigma_b), _variance(q)
@@ -795,7 +795,7 @@ def mean_field(activation: str | Activation, sigma_w: float, sigma_b: float) -> 
 
     References:
       Schoenholz et al. 2017 (ICLR), sec. 3 (depth scales, phase diagram); Poole et al. 2016;
-      THEORY.md sec. 2 (check values for tanh).
+      docs/theory-mean-field.md (check values for tanh).
     """
     act = _act(activation)
     sw, sb = _scale("sigma_w", sigma_w), _scale("sigma_b", sigma_b)
@@ -975,7 +975,7 @@ def critical_point(activation: str | Activation, sigma_b: float) -> CriticalPoin
 
     References:
       Schoenholz et al. 2017 (ICLR), sec. 3 and fig. 1 (critical line of tanh); He et al. 2015
-      (ReLU, sigma_w^2 = 2); THEORY.md sec. 2 (check values).
+      (ReLU, sigma_w^2 = 2); docs/theory-mean-field.md (check values).
     """
     act = _act(activation)
     sb = _scale("sigma_b", sigma_b)
@@ -1086,7 +1086,7 @@ def critical_line(activation: str | Activation, q_max: float | None = None,
       TheoryError: no point of the line has sigma_b^2 >= 0 and a stable fixed point up to q_max.
 
     References:
-      Schoenholz et al. 2017 (ICLR), fig. 1 (phase diagram); THEORY.md sec. 2 (erf closed form).
+      Schoenholz et al. 2017 (ICLR), fig. 1 (phase diagram); docs/theory-mean-field.md (erf closed form).
     """
     act = _act(activation)
     if isinstance(points, bool) or not isinstance(points, (int, np.integer)) or points < 2:

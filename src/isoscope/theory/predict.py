@@ -7,11 +7,11 @@ probability (:mod:`isoscope.theory.free_probability`) turns it into the law of
 
 * plain stacks: every layer at the stable fixed point q* of the length map
   (``V(q) = sigma_w^2 E[phi(sqrt(q) z)^2] + sigma_b^2``), ``S_{JJ^T} = S_W^L S_{D^2}^L``
-  (Pennington, Schoenholz, Ganguli 2017, sec. 2.3; THEORY.md sec. 2-3);
+  (Pennington, Schoenholz, Ganguli 2017, sec. 2.3; docs/theory-mean-field.md, docs/theory-free-probability.md);
 * residual stacks ``x' = x + alpha phi(W x + b)``: the universal large-depth law
   ``S(z) = exp(-tau (1 + 2 z))`` with ``tau = sum_l alpha^2 sigma_w^2 E[phi'(h^l)^2]``
   accumulated along the q^l trajectory from the input variance (Tarnowski et al. 2019;
-  THEORY.md sec. 4).
+  docs/theory-free-probability.md sec. 7).
 
 Nothing here samples or differentiates a network: the prediction depends on the design only.
 """
@@ -143,7 +143,7 @@ def predict(activation, weights: str, sigma_w: float, sigma_b: float, depth: int
 
     Plain stacks: q* and the phase from :func:`~isoscope.theory.mean_field.mean_field`; the law of
     ``d = phi'(h)^2`` at q*; moments by Lagrange inversion and the density from the master
-    equation ``z M S(M) = 1 + M`` with ``S = S_W^L S_{D^2}^L`` (THEORY.md sec. 3).  The q^l
+    equation ``z M S(M) = 1 + M`` with ``S = S_W^L S_{D^2}^L`` (docs/theory-free-probability.md).  The q^l
     trajectory from the input is computed as well; when it leaves q* by more than 5 % the
     prediction still uses q* and says so in ``notes``.
 
