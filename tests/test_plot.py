@@ -211,3 +211,15 @@ def test_predicted_law_masses_outside_a_range():
     assert law.mass_below(-1.0) == pytest.approx(0.5 + 0.25, abs=1e-12)
     assert law.mass_above(-0.5) == pytest.approx(0.125, abs=1e-12)
     assert law.mass_below(-5.0) == pytest.approx(0.5, abs=1e-12)
+
+
+def test_depth_figure_with_no_measured_spread_says_so_without_warnings():
+    # every partial product numerically zero (tanh, sigma_w = 1e-10): the measured spreads are
+    # all NaN.  Before: numpy's "All-NaN slice" RuntimeWarning and an empty axis
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        fig = plot.depth_figure(np.array([1, 4, 16]), np.full(3, np.nan), np.array([0.1, 0.2, 0.4]),
+                                "all zero", 16)
+    texts = [t.get_text() for t in fig.axes[0].texts]
+    assert any("no measured spread" in s for s in texts), texts
+    plot._pyplot().close(fig)

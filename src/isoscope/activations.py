@@ -109,6 +109,14 @@ class Activation:
         return 2.0 * jnp.log(jnp.abs(self.derivative(h)))
 
     @property
+    def law_free_of_q(self) -> bool:
+        """True when the law of ``phi'(h)^2``, ``h ~ N(0, q)``, is the same for every q > 0:
+        phi' piecewise constant with its only kink at 0 (linear, ReLU, leaky ReLU).  With
+        ``phi(0) = 0`` such a phi is positively homogeneous, ``phi(t h) = t phi(h)`` for t > 0,
+        so the Jacobian of a stack without biases does not depend on the input's scale."""
+        return self.derivative_values is not None and all(k == 0.0 for k in self.kinks)
+
+    @property
     def piecewise_linear(self) -> bool:
         """True when phi' is piecewise constant (phi'(h)^2 is then a discrete law)."""
         return self.derivative_values is not None

@@ -164,7 +164,7 @@ def plan_inputs(spec: Spec) -> tuple[InputPlan, tuple[str, ...]]:
                f"x ~ N(0, {a.input_variance:g})")
         return InputPlan("gaussian", a.input_variance, msg), (msg,)
     v = a.input_variance
-    if q == 0.0 and v > 0 and _homogeneous(act):
+    if q == 0.0 and v > 0 and act.law_free_of_q:
         return _homogeneous_plan(spec, act, v)
     if q == 0.0 and v > 0 and abs(mean_field.length_map(act, spec.init.sigma_w,
                                                        spec.init.sigma_b, v) - v) <= 1e-12 * v:
@@ -174,11 +174,6 @@ def plan_inputs(spec: Spec) -> tuple[InputPlan, tuple[str, ...]]:
                           "fixed point of the length map here, input_variance sets it"), ())
     return (InputPlan("steady-state", q, f"x = phi(h), h ~ N(0, q*) with q* = {q:.6g} "
                       "(fixed point of the length map)"), ())
-
-
-def _homogeneous(act: Activation) -> bool:
-    """phi(t h) = t phi(h) for t > 0: piecewise-constant phi' with its only kink at 0."""
-    return act.derivative_values is not None and all(k == 0.0 for k in act.kinks)
 
 
 def _homogeneous_plan(spec: Spec, act: Activation, v: float) -> tuple[InputPlan, tuple[str, ...]]:

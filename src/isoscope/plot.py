@@ -379,8 +379,14 @@ def depth_figure(depths: np.ndarray, measured: np.ndarray, predicted: np.ndarray
     ax.plot(depths, predicted, color=PREDICTED, lw=2.0, label="predicted (N -> infinity)")
     ax.plot(depths, measured, "o", color=MEASURED, ms=6, label=f"measured (width {width}, one draw)")
     ax.set_xscale("log")
-    if np.nanmax(np.concatenate([measured, predicted])) > 20 * max(np.nanmin(measured), 1e-12):
+    both = np.concatenate([measured, predicted])
+    shown = both[np.isfinite(both) & (both > 0)]
+    if shown.size and shown.max() > 20 * max(shown.min(), 1e-12):
         ax.set_yscale("log")
+    if not np.isfinite(measured).any():
+        ax.text(0.5, 0.5, "no measured spread: every partial product is numerically zero\n"
+                "or has fewer than two values above the SVD floor", transform=ax.transAxes,
+                ha="center", va="center", fontsize=9)
     ax.set_xlabel("depth l (layers in the partial Jacobian J_l ... J_1)")
     ax.set_ylabel("std of ln s above the SVD floor")
     ax.set_title(title)

@@ -28,6 +28,7 @@ from typing import NamedTuple
 import numpy as np
 from scipy.special import logsumexp
 
+from isoscope.activations import get_activation
 from isoscope.spectrum import Spectrum
 
 __all__ = ["Score", "score_spectrum", "VERDICTS", "GAIN_LIMIT", "ISOMETRIC_SCORE", "Agreement",
@@ -328,15 +329,16 @@ def ks_distance(sample_log_lam: np.ndarray, density, floor_ell: float = -math.in
 
 
 def tail_share(density, k: int, count: int) -> float:
-    """Share of the predicted ``m_k = E[lambda^k]`` carried by the top ``1/count`` of the law.
+    """Share of the predicted ``m_k = E[lambda^k]`` that lies above the top ``1/count`` quantile.
 
-    ``share = E[lambda^k; lambda > Q] / E[lambda^k]`` with Q the ``1 - 1/count`` quantile.  The
-    N eigenvalues of one finite matrix fill the quantiles of their law about one per ``1/N`` of
+    ``share = E[(lambda^k - Q^k)_+] / E[lambda^k]`` with Q the ``1 - 1/count`` quantile.  The N
+    eigenvalues of one finite matrix fill the quantiles of their law about one per ``1/N`` of
     probability, and the largest ones undershoot the infinite-width edge (Pennington,
-    Schoenholz, Ganguli 2018, sec. 5): what the top 1/N of the law holds is the part of
-    ``m_k`` a measurement of N values per draw does not reach.  A heavy-tailed law (a deep
-    leaky-ReLU stack) can hold most of its m1 there; a light one holds about ``1/N``.
-    Computed on the solver's grid (trapezoid cells in ``ln lambda``) and the atoms, in logs.
+    Schoenholz, Ganguli 2018, sec. 5): a measurement of N values per draw reaches the top
+    quantile level Q but not what the law holds beyond it.  A law with no tail beyond Q (an
+    atom, a hard edge) gives 0; Exp(1) gives ``e^{-Q}/1 = 1/N``; a heavy-tailed law (a deep
+    leaky-ReLU stack) can hold most of its m1 there.  Computed on the solver's grid
+    (trapezoid cells in ``ln lambda``) and the atoms, in logs.
     """
     e, r = density.log_x, density.rho_log
     cells_ell, cells_p, cells_logm = [], [], []
@@ -356,7 +358,7 @@ def tail_share(density, k: int, count: int) -> float:
         return 0.0
     ell, p, logm = (np.concatenate(a) for a in (cells_ell, cells_p, cells_logm))
     order = np.argsort(-ell)
-    p, logm = p[order], logm[order]
+    ell, p, logm = ell[order], p[order], logm[order]
     total = float(logsumexp(logm))
     cum = np.cumsum(p)
     need = 1.0 / count
@@ -366,7 +368,11 @@ def tail_share(density, k: int, count: int) -> float:
     before = float(cum[j - 1]) if j else 0.0
     frac = (need - before) / p[j] if p[j] > 0 else 0.0   # the part of cell j above Q
     parts = list(logm[:j]) + ([math.log(frac) + logm[j]] if frac > 0 else [])
-    return float(np.exp(logsumexp(parts) - total)) if parts else 0.0
+    if not parts:
+        return 0.0
+    above = float(np.exp(logsumexp(parts) - total))               # E[lambda^k; lambda > Q]/m_k
+    level = float(np.exp(k * ell[j] - total)) * need              # Q^k P(lambda > Q)/m_k
+    return max(above - level, 0.0)
 
 
 def length_mode_side(prediction) -> str | None:
@@ -427,6 +433,8 @@ def split_outliers(spectrum: Spectrum, prediction) -> tuple[Spectrum, tuple[Outl
 def _broken_assumption(prediction) -> str | None:
     """The prediction's own premise that this design breaks, as a phrase (or None)."""
     if prediction.family == "plain":
+        if get_activation(prediction.activation).law_free_of_q:
+            return None    # phi'(h)^2 has one law at every q: the layers' variance is irrelevant
         q, q_law = np.asarray(prediction.q_layers, dtype=float), prediction.q_law
         if q_law > 0 and q.size and float(np.max(np.abs(q - q_law))) > STEADY_RTOL * q_law:
             worst = int(np.argmax(np.abs(q - q_law)))
@@ -437,6 +445,18 @@ def _broken_assumption(prediction) -> str | None:
         return (f"each residual block contributes {prediction.tau / prediction.depth:.3g} > "
                 f"{BLOCK_LIMIT} to tau while the residual law assumes O(1/L) per block: scale "
                 "alpha^2 sigma_w^2 like 1/L")
+    return None
+
+
+def _out_of_range(prediction, spectrum: Spectrum) -> str | None:
+    """A phrase when the predicted singular values lie below the dtype's range, so that the
+    dense Jacobian underflows (its entries, products of L small factors, round to zero)."""
+    top = prediction.density.log_support[1] / 2.0      # ln s at the predicted upper edge
+    tiny = math.log(float(np.finfo(np.dtype(spectrum.dtype)).tiny))
+    if math.isfinite(top) and top < tiny + math.log(spectrum.size):
+        return (f"underflow: theory puts the largest singular value near e^{top:.4g}, below the "
+                f"{spectrum.dtype} range (e^{tiny:.4g}), so the dense Jacobian rounds to zero; "
+                "raise sigma_w towards the critical value or lower the depth")
     return None
 
 
@@ -456,7 +476,8 @@ def agreement(spectrum: Spectrum, prediction) -> Agreement:
     Measurement and theory *disagree* when KS > KS_LIMIT or a reliable m1 is off by more than
     MOMENT_LIMIT.  Only then is a disagreement warning given, once, naming the most likely
     cause, in this order: a premise of the prediction that the design breaks (inputs off the
-    fixed point; a residual branch too strong for the large-depth law); finite width
+    fixed point, when the law of phi'(h)^2 depends on q; a residual branch too strong for the
+    large-depth law); singular values below the dtype's range (underflow); finite width
     (``sqrt(L/N) > FINITE_WIDTH_LIMIT``); values lost below the SVD floor; otherwise no known
     cause.  Depth at or above the width alone is not a warning when the spectra agree.
 
@@ -508,7 +529,9 @@ def agreement(spectrum: Spectrum, prediction) -> Agreement:
         warnings.append(f"heavy tail: the top 1/{width} of the predicted law carries "
                         f"{100 * shares[0]:.1f}% of m1, so {width} singular values per draw "
                         "cannot estimate the gain m1 (it is not compared); compare the mean of "
-                        f"ln s instead: measured {measured_stats[0]:.4g}, predicted {pm / 2.0:.4g}")
+                        "ln s instead: " + (f"measured {measured_stats[0]:.4g}, predicted "
+                                            f"{pm / 2.0:.4g}" if kept.size else
+                                            "but no measured value lies above the SVD floor"))
     elif not m2_ok:
         warnings.append(f"heavy tail: the top 1/{width} of the predicted law carries "
                         f"{100 * shares[1]:.1f}% of m2, so m2 is not compared; compare the KS "
@@ -521,7 +544,7 @@ def agreement(spectrum: Spectrum, prediction) -> Agreement:
     disagree = ks > KS_LIMIT or (m1_ok and math.isfinite(e1) and abs(e1) > MOMENT_LIMIT)
     cause = None
     if disagree:
-        cause = _broken_assumption(prediction)
+        cause = _broken_assumption(prediction) or _out_of_range(prediction, spectrum)
         if cause is None and ratio > FINITE_WIDTH_LIMIT:
             cause = (f"finite width (sqrt(L/N) = {ratio:.2f} > {FINITE_WIDTH_LIMIT}): widen the "
                      "network or compare at a smaller depth")

@@ -1383,8 +1383,8 @@ def _narrow_density(log_m1: float, rel_var: float, points: int, regime: str) -> 
     ``NARROW_SPREAD`` = 1e-3: the law is then narrower than the continuation solver resolves.
     ``J J^T`` is a free product of L factors ``sigma_w^2 D_l^2`` each within a relative
     ``sqrt(Var(d))/E[d]`` of a multiple of the identity, so to leading order ``lambda/m1 - 1`` is
-    a free sum of L small free variables and, by the free central limit theorem (Voiculescu;
-    Nica and Speicher 2006, Lecture 8), semicircular: density
+    a free sum of L small free variables and, by the free central limit theorem (Voiculescu 1985;
+    Nica and Speicher 2006, the free central limit theorem), semicircular: density
     ``2 sqrt(R^2 - (u - 1)^2)/(pi R^2)`` in ``u = lambda/m1`` with ``R = 2 sqrt(rel_var)``.  Its
     first two moments are exact (m1 and m2 of the Lagrange series); the skewness it drops is of
     relative order ``sqrt(rel_var)`` < 1e-3.  Built in logs: ``ln lambda = ln m1 + log1p(R cos t)``.

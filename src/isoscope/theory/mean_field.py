@@ -310,9 +310,7 @@ def _slope_ratio(act: Activation, q: float) -> float:
 
 def _homogeneous(act: Activation) -> bool:
     """phi piecewise linear with phi(0) = 0 and no kink away from 0: phi(t h) = t phi(h), t > 0."""
-    if not act.piecewise_linear or any(k != 0.0 for k in act.kinks):
-        return False
-    return _phi0(act) == 0.0
+    return act.law_free_of_q and _phi0(act) == 0.0
 
 
 def _residual_g(act: Activation, sw2: float, sb2: float, q: float) -> float:

@@ -206,14 +206,14 @@ def predict(activation, weights: str, sigma_w: float, sigma_b: float, depth: int
     try:
         summary = mf.mean_field(act, sigma_w, sigma_b)
     except TheoryError:
-        if not _law_free_of_q(act):
+        if not act.law_free_of_q:
             raise
         return _finish(_predict_unbounded(act, kind, sigma_w, sigma_b, depth, input_variance,
                                           points), act, asked)
     q_star = summary.q_star
     notes: list[str] = []
     factor = math.nan
-    if _law_free_of_q(act) and q_star == 0.0:
+    if act.law_free_of_q and q_star == 0.0:
         # q* = 0 for a homogeneous phi: the law is q-free, take it at the input variance
         q0 = 1.0 if input_variance is None or input_variance <= 0 else float(input_variance)
         q_layers = mf.q_trajectory(act, sigma_w, sigma_b, q0, depth)
@@ -227,7 +227,7 @@ def predict(activation, weights: str, sigma_w: float, sigma_b: float, depth: int
     else:
         q_layers = mf.q_trajectory(act, sigma_w, sigma_b, float(input_variance), depth)
         q_law = _steady_variance(act, sigma_w, sigma_b, q_star, q_layers)
-    if not _law_free_of_q(act):
+    if not act.law_free_of_q:
         off = np.abs(q_layers - q_law) / max(q_law, 1e-300) if q_law > 0 else q_layers
         if np.max(off) > _STEADY_RTOL:
             worst = int(np.argmax(off))
@@ -307,15 +307,9 @@ def _plain_prediction(act, kind, sigma_w, sigma_b, depth, points, summary, q_lay
                       log_length_mode_s=log_length_mode)
 
 
-def _law_free_of_q(act) -> bool:
-    """True when the law of ``phi'(h)^2``, ``h ~ N(0, q)``, is the same for every q > 0:
-    phi' piecewise constant with its only kink at 0 (linear, ReLU, leaky ReLU)."""
-    return act.derivative_values is not None and all(k == 0.0 for k in act.kinks)
-
-
 def _predict_unbounded(act, kind, sigma_w, sigma_b, depth, input_variance, points) -> Prediction:
     """Plain stack whose variance has no finite fixed point but whose Jacobian law does not
-    depend on q (see :func:`_law_free_of_q`): the spectrum is predicted exactly as at a fixed
+    depend on q (see ``Activation.law_free_of_q``): the spectrum is predicted exactly as at a fixed
     point, with the law taken at q = 1 (``q_law`` NaN) and a note that the forward pass grows."""
     q0 = 1.0 if input_variance is None else float(input_variance)
     q_layers = mf.q_trajectory(act, sigma_w, sigma_b, q0, depth)
