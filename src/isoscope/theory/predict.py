@@ -270,6 +270,24 @@ def _decay_note(act, factor: float, q_layers: np.ndarray, q_law: float) -> str:
     return text
 
 
+# A note on the float64 range is given when more of the law than this lies outside it (a soft
+# tail reaching below 1e-308 with a negligible share, as in any deep Gaussian stack, is not worth
+# a note; the log representation carries it either way).
+_OUTSIDE_NOTE = 1e-3
+
+
+def _mass_outside_float_range(density: fp.Density) -> float:
+    """``P(lambda < 1e-308 or lambda > 1e308)`` of a law (atoms included), from its log grid."""
+    lo, hi = math.log(np.finfo(float).tiny), math.log(np.finfo(float).max)
+    out = sum(w for la, w in density.log_atoms if (la < lo and la > -math.inf) or la > hi)
+    e, r = density.log_x, density.rho_log
+    if e.size >= 2:
+        cum = np.concatenate([[0.0], np.cumsum(0.5 * (r[1:] + r[:-1]) * np.diff(e))])
+        at = np.interp([lo, hi], e, cum, left=0.0, right=cum[-1])
+        out += float(at[0] + (cum[-1] - at[1]))
+    return out
+
+
 def _finish(p: Prediction, act, asked: str) -> Prediction:
     """Record the asked weights, the ensemble, the slope, and the float-range notes."""
     notes = list(p.notes)
@@ -280,11 +298,13 @@ def _finish(p: Prediction, act, asked: str) -> Prediction:
                          if f"{k}" in bad)
         notes.append(f"{', '.join(bad)} lie outside the float64 range and are reported as null "
                      f"({logs}): read lambda_moments in logs (log_m1 .. log_m4)")
-    if not p.density.in_float_range:
+    outside = _mass_outside_float_range(p.density)
+    if outside > _OUTSIDE_NOTE:
         lo, hi = p.density.log_support
-        notes.append(f"lambda leaves the float64 range (ln lambda from {lo:.6g} to {hi:.6g}): "
-                     "the density is reported in ln lambda (log_x, rho_log, log_support); "
-                     "its lambda form (x, rho, support) is not faithful outside 1e-308 .. 1e308")
+        notes.append(f"{100 * outside:.3g}% of the law of lambda lies outside the float64 range "
+                     f"(ln lambda from {lo:.6g} to {hi:.6g}): the density is reported in ln lambda "
+                     "(log_x, rho_log, log_support); its lambda form (x, rho, support) is not "
+                     "faithful outside 1e-308 .. 1e308")
     regime = p.regime
     if asked == "uniform" and "gaussian weights" in regime:
         regime = regime.replace("gaussian weights", _ensemble_text(asked))
