@@ -14,8 +14,8 @@ import functools
 import math
 import time
 from collections.abc import Callable
+from concurrent import futures
 from pathlib import Path
-from typing import Callable
 
 import jax
 import jax.numpy as jnp
@@ -35,6 +35,7 @@ from isoscope.threads import limited_blas
 from isoscope.theory.predict import Prediction, predict
 
 __all__ = ["Analysis", "DepthProfile", "InputPlan", "analyze", "build_network", "depth_profile",
+           "profile_predictions",
            "plan_inputs", "predict_spec", "prediction_for", "profile_depths", "seed_key",
            "spec_activation"]
 
@@ -351,26 +352,38 @@ def _measured_row(log_s: np.ndarray, dtype) -> tuple[float, float, float]:
     return floor, std, log_m1
 
 
-def depth_profile(spec: Spec, plan: InputPlan, partial: jac.PartialSpectra,
-                  predicted: Prediction) -> DepthProfile:
+def profile_predictions(spec: Spec, plan: InputPlan, depths: np.ndarray,
+                        predicted: Prediction) -> dict[int, Prediction]:
+    """The predictions the depth profile compares with: ``predicted`` at the full depth and
+    :func:`~isoscope.theory.predict.predict` at each shallower depth l (a coarser 120-point
+    density).  Pure (it depends on the design and the depths only), so :func:`analyze` runs it
+    beside the measurement."""
+    n, i = spec.network, spec.init
+    out = {}
+    for d in (int(v) for v in depths):
+        out[d] = predicted if d == n.depth else predict(
+            spec_activation(spec), i.weights, i.sigma_w, i.sigma_b, d, family=n.family,
+            alpha=n.alpha, input_variance=_input_mean_square(spec, plan), points=120)
+    return out
+
+
+def depth_profile(spec: Spec, partial: jac.PartialSpectra,
+                  predictions: dict[int, Prediction]) -> DepthProfile:
     """Measured and predicted spread at the depths of ``partial`` (:func:`profile_depths`).
 
     Measured: singular values of ``J_l ... J_1`` for one draw, kept by the Jacobian pass
     itself (:func:`~isoscope.jacobian.profiled_jacobian`), so they are right in ``ln s``
     even where the product leaves the dtype's range; std of ln s above the SVD floor
-    ``s > n eps s_max`` and ``ln m1``.  Predicted: ``predicted`` at the full depth, and
-    :func:`~isoscope.theory.predict.predict` at each shallower depth l (a coarser 120-point
-    density); std of ln s of the law restricted to the same floor (Pennington, Schoenholz &
-    Ganguli 2017, sec. 3, for the law).  When the stack grows a mean mode (residual,
-    ``E[phi] != 0``) the largest singular value is left out.  A value with no finite answer
+    ``s > n eps s_max`` and ``ln m1``.  Predicted: ``predictions[l]``
+    (:func:`profile_predictions`); std of ln s of the law restricted to the same floor
+    (Pennington, Schoenholz & Ganguli 2017, sec. 3, for the law).  Outliers the bulk law does
+    not describe (a residual stack's mean mode, a plain stack's input-length direction) are
+    left out as in :func:`~isoscope.score.split_outliers`.  A value with no finite answer
     (a product that is exactly zero, a moment theory cannot represent) is NaN.
     """
-    n, i = spec.network, spec.init
     m_std, m_m1, p_std, p_m1 = [], [], [], []
     for d, row in zip(partial.depths, partial.log_s):
-        p = predicted if d == n.depth else predict(
-            spec_activation(spec), i.weights, i.sigma_w, i.sigma_b, int(d), family=n.family,
-            alpha=n.alpha, input_variance=_input_mean_square(spec, plan), points=120)
+        p = predictions[int(d)]
         top, bottom = outlier_counts(p)
         floor, std, log_m1 = _measured_row(row[top:row.size - bottom], spec.analysis.dtype)
         m_std.append(std)
@@ -424,6 +437,21 @@ def _analyze(spec: Spec, progress: Callable[[int, int], None] | None) -> Analysi
     seconds["theory"] = time.perf_counter() - t
     depths = (profile_depths(spec.network.depth)
               if predicted is not None and network.layer is not None else None)
+    # the profile's shallower predictions depend on the design only: solve them on a worker
+    # thread while the draws run (the solver is NumPy; XLA and LAPACK release the GIL)
+    pool = futures.ThreadPoolExecutor(max_workers=1, thread_name_prefix="isoscope-profile")
+    pending = (pool.submit(profile_predictions, spec, plan, depths, predicted)
+               if depths is not None else None)
+    try:
+        return _measure(spec, network, dtype, plan, file_inputs, warnings + notes, predicted,
+                        depths, pending, seconds, progress, t0)
+    finally:
+        pool.shutdown(wait=False, cancel_futures=True)
+
+
+def _measure(spec, network, dtype, plan, file_inputs, warnings, predicted, depths, pending,
+             seconds, progress, t0) -> Analysis:
+    """The draws, the score, the agreement and the profile (the second half of analyze)."""
     root = seed_key(spec.analysis.seed)
     total = spec.analysis.inputs
     singular, fault, partial = [], None, None
@@ -465,7 +493,6 @@ def _analyze(spec: Spec, progress: Callable[[int, int], None] | None) -> Analysi
         spectrum = from_singular_values(np.stack(singular), dtype)
         score = score_spectrum(spectrum, spec.network.depth)
         warnings += _precision_warnings(spectrum)
-    warnings += notes
     agree = profile = None
     if predicted is not None and spectrum is not None:
         agree = agreement(spectrum, predicted)
@@ -476,7 +503,7 @@ def _analyze(spec: Spec, progress: Callable[[int, int], None] | None) -> Analysi
         if partial is not None:
             t = time.perf_counter()
             try:
-                profile = depth_profile(spec, plan, partial, predicted)
+                profile = depth_profile(spec, partial, pending.result())
             except TheoryError as e:
                 warnings += (f"no depth profile: {e}",)
             seconds["profile"] += time.perf_counter() - t
