@@ -44,6 +44,7 @@ Numerical conventions (see ``docs/theory-mean-field.md``):
 
 from __future__ import annotations
 
+import functools
 import math
 from collections.abc import Callable
 from typing import NamedTuple
@@ -795,8 +796,14 @@ def mean_field(activation: str | Activation, sigma_w: float, sigma_b: float) -> 
       Schoenholz et al. 2017 (ICLR), sec. 3 (depth scales, phase diagram); Poole et al. 2016;
       docs/theory-mean-field.md (check values for tanh).
     """
-    act = _act(activation)
-    sw, sb = _scale("sigma_w", sigma_w), _scale("sigma_b", sigma_b)
+    return _mean_field(_act(activation), _scale("sigma_w", sigma_w), _scale("sigma_b", sigma_b))
+
+
+@functools.lru_cache(maxsize=256)
+def _mean_field(act: Activation, sw: float, sb: float) -> MeanField:
+    """:func:`mean_field` on checked arguments, cached: a pure function of (phi, sigma_w,
+    sigma_b) that an analysis asks for once per profile depth (the chaotic-phase c* solve of a
+    kinked phi costs seconds)."""
     q = fixed_point(act, sw, sb)
     x1 = chi1(act, sw, q)
     if abs(x1 - 1.0) <= CRITICAL_TOL:
