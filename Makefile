@@ -25,4 +25,4 @@ bench: $(STAMP)
 	$(BIN)/python benchmarks/analyze.py
 
 clean:
-	rm -rf $(VENV) isoscope-demo
+	rm -rf $(VENV) isoscope-demo .isoscope-demo.* isoscope-out .isoscope-out.*
