@@ -554,7 +554,7 @@ def agreement(spectrum: Spectrum, prediction) -> Agreement:
         if cause is None:
             cause = "no known cause: the design lies outside what the theory was checked on"
         warnings.append(f"measured and predicted spectra disagree (KS = {ks:.3f}"
-                        + (f", m1 off by {_pct(e1)}" if m1_ok else "")
+                        + (f", m1 off by {_pct(e1)}" if m1_ok and math.isfinite(e1) else "")
                         + f"); the most likely cause is {cause}")
     return Agreement(ks=ks, floor=_exp(floor_ell), compared=compared, m1_rel_error=e1,
                      m2_rel_error=e2, m1_sampling_error=m1_se,
