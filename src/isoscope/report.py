@@ -13,7 +13,6 @@ import base64
 import html
 import json
 import math
-import os
 import platform
 from pathlib import Path
 from typing import Any
@@ -22,7 +21,7 @@ import numpy as np
 
 from isoscope.analysis import Analysis
 from isoscope.errors import TheoryError
-from isoscope.folders import MARKER, Reservation, reserve, safe_folder_name
+from isoscope.folders import Reservation, reserve, safe_folder_name
 
 __all__ = ["SCHEMA", "GLOSSARY", "result_dict", "prediction_dict", "to_json", "write_analysis_folder",
            "write_comparison_folder", "summary_table", "output_folder"]
