@@ -330,16 +330,6 @@ def profile_depths(depth: int) -> np.ndarray:
     return np.unique(np.round(np.geomspace(1, depth, min(PROFILE_POINTS, depth))).astype(int))
 
 
-def _log_or_nan(moments) -> float:
-    """``ln m1`` of a prediction: its own log when theory carries one, else ``ln m1`` when
-    ``m1`` is a positive float, NaN when it is not representable."""
-    log_m1 = getattr(moments, "log_m1", None)
-    if log_m1 is not None:
-        return float(log_m1) if math.isfinite(log_m1) else math.nan
-    m1 = moments.m1
-    return math.log(m1) if m1 is not None and 0 < m1 < math.inf else math.nan
-
-
 def _measured_row(log_s: np.ndarray, dtype) -> tuple[float, float, float]:
     """``(floor, std, ln m1)`` of one partial product's ``ln s`` (decreasing): the SVD floor
     ``ln(n eps s_max)`` (:func:`~isoscope.spectrum.zero_threshold`), the std of ln s above it
@@ -389,7 +379,7 @@ def depth_profile(spec: Spec, partial: jac.PartialSpectra,
         m_std.append(std)
         m_m1.append(log_m1)
         p_std.append(censored_log_stats(p.density, 2.0 * floor)[1] / 2.0)
-        p_m1.append(_log_or_nan(p.moments))
+        p_m1.append(p.moments.log_m1 if math.isfinite(p.moments.log_m1) else math.nan)
     return DepthProfile(np.asarray(partial.depths), np.array(m_std), np.array(p_std),
                         np.array(m_m1), np.array(p_m1))
 

@@ -515,8 +515,8 @@ def agreement(spectrum: Spectrum, prediction) -> Agreement:
     meas_zero = float(np.mean(~np.isfinite(log_lam)))
     shares = (tail_share(density, 1, width), tail_share(density, 2, width))
     m1_ok, m2_ok = shares[0] <= TAIL_LIMIT, shares[1] <= TAIL_LIMIT
-    e1 = _rel_log(log_m1, _log_moment(moments, 1))
-    e2 = _rel_log(log_m2, _log_moment(moments, 2))
+    e1 = _rel_log(log_m1, moments.log_m1)
+    e2 = _rel_log(log_m2, moments.log_m2)
     ratio = math.sqrt(depth / spectrum.size)
     warnings = []
     for o in outliers:
@@ -581,7 +581,7 @@ def judged_gain(agree: Agreement, prediction, spectrum: Spectrum) -> tuple[float
     per_draw = np.array([np.mean(r[np.isfinite(r)]) for r in spectrum.log_s
                          if np.isfinite(r).any()])
     se = float(np.std(per_draw) / math.sqrt(per_draw.size)) if per_draw.size > 1 else 0.0
-    log_m1 = _log_moment(prediction.moments, 1)
+    log_m1 = prediction.moments.log_m1
     close = math.isfinite(pred_mean) and abs(meas_mean - pred_mean) <= max(LOG_MEAN_LIMIT, 3 * se)
     if not close or not math.isfinite(log_m1):
         return None
@@ -589,18 +589,6 @@ def judged_gain(agree: Agreement, prediction, spectrum: Spectrum) -> tuple[float
             f"cannot be estimated from {spectrum.size} values per draw (heavy tail), and the mean "
             f"of ln s, which can, agrees with theory: measured {meas_mean:.4g}, predicted "
             f"{pred_mean:.4g}")
-
-
-def _log_moment(moments, k: int) -> float:
-    """``ln m_k`` of predicted moments: the log field when the theory gives one, else the log
-    of the value (``-inf`` for 0, NaN when unknown)."""
-    log_value = getattr(moments, f"log_m{k}", None)
-    if log_value is not None and not (isinstance(log_value, float) and math.isnan(log_value)):
-        return float(log_value)
-    v = getattr(moments, f"m{k}")
-    if v is None or not v >= 0:
-        return math.nan
-    return math.log(v) if v > 0 else -math.inf
 
 
 def _rel_log(log_got: float, log_want: float) -> float:
