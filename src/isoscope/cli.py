@@ -82,14 +82,22 @@ def _spec_with_flags(args, flags):
     from isoscope.spec import load_spec, parse_spec
 
     spec = load_spec(args.spec)
-    given = [(section, key, getattr(args, flag)) for flag, section, key in flags
-             if getattr(args, flag, None) is not None]
-    if not given:
-        return spec
     data = spec.to_dict()
-    for section, key, value in given:
-        data.setdefault(section, {})[key] = value
+    if not _lay_flags(data, args, flags):
+        return spec
     return parse_spec(data, source=f"{args.spec} with command-line flags")
+
+
+def _lay_flags(data: dict, args, flags) -> dict:
+    """Write every flag that was given into the spec mapping ``data`` (``flag -> section.key``);
+    returns the given flags and their values."""
+    given = {}
+    for flag, section, key in flags:
+        value = getattr(args, flag, None)
+        if value is not None:
+            data.setdefault(section, {})[key] = value
+            given[flag] = value
+    return given
 
 
 def _cmd_analyze(args) -> int:
@@ -185,9 +193,7 @@ def _design_from_flags(args):
                              hint="e.g. isoscope predict --activation tanh --sigma-w 1.01 --depth 100")
         base = {"name": "command-line design", "network": {}, "init": {}}
         source = "<command-line flags>"
-    for flag, section, key in _DESIGN_FLAGS:
-        if flag in given:
-            base.setdefault(section, {})[key] = given[flag]
+    _lay_flags(base, args, _DESIGN_FLAGS)
     if base["network"].get("family", "plain") != "residual":
         base["network"].pop("alpha", None)
     if "activation" in given:   # a spec's leaky_slope does not carry over to another activation
