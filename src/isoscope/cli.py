@@ -231,8 +231,8 @@ def _prediction_text(p) -> str:
     weights = (f"{p.weights} weights (predicted as Gaussian: same variance, same infinite-width "
                "limit)" if p.weights == "uniform" else f"{p.weights} weights")
     lines = [f"prediction for a {p.family} stack: {act}, {weights}, depth {p.depth}, "
-             f"sigma_w = {p.sigma_w:.6g} (sigma_w^2 = {_fmt(p.sigma_w ** 2 if p.sigma_w < 1e150 else None)}), "
-             f"sigma_b = {p.sigma_b:.6g} (sigma_b^2 = {_fmt(p.sigma_b ** 2 if p.sigma_b < 1e150 else None)})"
+             f"sigma_w = {p.sigma_w:.6g} (sigma_w^2 = {_fmt(p.sigma_w * p.sigma_w)}), "
+             f"sigma_b = {p.sigma_b:.6g} (sigma_b^2 = {_fmt(p.sigma_b * p.sigma_b)})"
              + (f", alpha = {p.alpha:g}" if p.family == "residual" else "")]
     lines.append(f"assumes: {p.regime}")
     if mf is not None:

@@ -128,13 +128,12 @@ def prediction_dict(p) -> dict[str, Any]:
     used (uniform is predicted as Gaussian); ``leaky_slope`` is present for leaky ReLU.
     """
     mf, d = p.mean_field, p.density
-    square = lambda v: v * v if abs(v) < 1e150 else None  # noqa: E731
     extra = {"leaky_slope": p.slope} if p.slope is not None else {}
     return {
         "family": p.family, "activation": p.activation, **extra, "weights": p.weights,
         "ensemble": p.ensemble,
-        "sigma_w": p.sigma_w, "sigma_w2": square(p.sigma_w), "sigma_b": p.sigma_b,
-        "sigma_b2": square(p.sigma_b), "depth": p.depth,
+        "sigma_w": p.sigma_w, "sigma_w2": _square(p.sigma_w), "sigma_b": p.sigma_b,
+        "sigma_b2": _square(p.sigma_b), "depth": p.depth,
         "alpha": p.alpha if p.family == "residual" else None,
         "regime": p.regime,
         "q_star": mf.q_star if mf else None, "chi": mf.chi1 if mf else None,
