@@ -21,7 +21,7 @@ import pytest
 
 import isoscope  # noqa: F401  (turns on float64 in jax)
 from isoscope.activations import activation_names, get_activation
-from isoscope.errors import InputError, TheoryError
+from isoscope.errors import InputError, SolverError, TheoryError
 from isoscope.theory import mean_field as mf
 
 PI = math.pi
@@ -475,3 +475,14 @@ def test_every_activation_critical_point_or_reason(name):
     assert mf.chi1(name, cp.sigma_w, cp.q_star) == pytest.approx(1.0, abs=1e-10)
     assert mf.fixed_point(name, cp.sigma_w, cp.sigma_b) == pytest.approx(cp.q_star, rel=1e-9,
                                                                          abs=1e-14)
+
+
+def test_relu_trajectory_without_bias_is_geometric():
+    # ReLU (Cho & Saul 2009): E[relu(sqrt(q) z)^2] = q/2, so q^{l+1} = sigma_w^2 q^l / 2 and
+    # q^l = sigma_w^2 q0 (sigma_w^2/2)^(l-1) exactly; at depth 10^5 too (one quadrature)
+    q = mf.q_trajectory("relu", 1.2, 0.0, 0.7, 100_000)
+    want = 1.44 * 0.7 * 0.72 ** np.arange(100_000, dtype=float)
+    np.testing.assert_allclose(q[:2000], want[:2000], rtol=1e-12)
+    assert q[-1] == 0.0 or q[-1] == pytest.approx(want[-1], rel=1e-9)
+    with pytest.raises(SolverError, match="overflowed at layer"):
+        mf.q_trajectory("linear", 2.0, 0.0, 1.0, 2000)

@@ -890,6 +890,8 @@ def q_trajectory(activation: str | Activation, sigma_w: float, sigma_b: float, q
                          hint="use alpha = 1.0 for the default residual block")
     sw2, sb2 = sw * sw, sb * sb
     fn = _integrand(act)
+    if family == "plain" and sb2 == 0.0 and _homogeneous(act):
+        return _geometric_trajectory(act, fn, sw, sw2 * q0, int(depth))
     out = np.empty(int(depth))
     big_q, m = q0, 0.0
     for layer in range(int(depth)):
@@ -911,6 +913,24 @@ def q_trajectory(activation: str | Activation, sigma_w: float, sigma_b: float, q
         else:
             big_q = big_q + 2.0 * a * m * mu + a * a * nu
             m = m + a * mu
+    return out
+
+
+def _geometric_trajectory(act: Activation, fn: _Integrand, sw: float, q1: float,
+                          depth: int) -> np.ndarray:
+    """``q^l = q^1 f^{l-1}`` for a positively homogeneous phi without bias: ``E[phi(sqrt(q) z)^2]
+    = q E[phi(z)^2]``, so the length map is linear, ``V(q) = f q`` with ``f = sigma_w^2
+    E[phi(z)^2]`` (ReLU: sigma_w^2/2), and the trajectory is geometric (one quadrature, not one
+    per layer).  Raises SolverError where it overflows, as the layer-by-layer recursion does."""
+    h, w = _rule(fn, 1.0)
+    p = fn.phi(h)
+    f = sw * sw * float(np.dot(w, p * p))
+    with np.errstate(over="ignore", under="ignore"):
+        out = q1 * np.power(f, np.arange(depth, dtype=float))
+    bad = np.flatnonzero(~np.isfinite(out))
+    if bad.size:
+        raise SolverError(f"variance overflowed at layer {int(bad[0]) + 1} of {depth} "
+                          f"({act.name}, sigma_w = {sw:g}, sigma_b = 0); lower sigma_w or the depth")
     return out
 
 
