@@ -166,6 +166,157 @@ def _cmd_demo(args) -> int:
     return 0
 
 
+def _compare_specs(args):
+    """The specs of ``compare``, each checked before anything runs: every file exists and parses,
+    at least two designs, no two share a name or an output sub-folder."""
+    from isoscope.folders import safe_folder_name
+    from isoscope.spec import load_spec, parse_spec
+
+    if len(args.specs) < 2:
+        raise InputError(f"compare received {len(args.specs)} spec", expected="two or more SPEC.toml files",
+                         hint="use `isoscope analyze` for one design")
+    specs, seen, folders = [], {}, {}
+    for path in args.specs:
+        spec = load_spec(path)
+        data = spec.to_dict()
+        if _lay_flags(data, args, (("seed", "analysis", "seed"), ("inputs", "analysis", "inputs"))):
+            spec = parse_spec(data, source=f"{path} with command-line flags")
+        if spec.name in seen:
+            raise InputError(f"{path} and {seen[spec.name]} both name their design {spec.name!r}",
+                             expected="a distinct name per design (the name labels its row, "
+                                      "its figures and its sub-folder)",
+                             hint=f"change `name = ...` in one of them", file=path, key="name")
+        folder = safe_folder_name(spec.name).casefold()   # case-insensitive file systems too
+        if folder in folders:
+            raise InputError(f"the names {spec.name!r} ({path}) and {folders[folder][0]!r} "
+                             f"({folders[folder][1]}) give the same folder name {folder!r}",
+                             expected="names whose folders differ also on a file system "
+                                      "that ignores case", file=path, key="name")
+        seen[spec.name] = path
+        folders[folder] = (spec.name, path)
+        specs.append(spec)
+    return specs
+
+
+def _cmd_compare(args) -> int:
+    from isoscope import budget
+    from isoscope.folders import reserve
+
+    specs = _compare_specs(args)
+    for spec in specs:
+        budget.check(spec)
+    out = args.out if args.out is not None else (None if args.json else "isoscope-out/comparison")
+    texts = {s.name: Path(p).read_text(encoding="utf-8") for s, p in zip(specs, args.specs)}
+    policy = (f"every design at seed {args.seed} (--seed)" if args.seed is not None
+              else "each design at its own spec's analysis.seed")
+    analyses, limits, ranking = _run_comparison(specs, out, texts, policy, args.json)
+    if args.json:
+        from isoscope.report import comparison_dict, to_json
+        sys.stdout.write(to_json(comparison_dict(analyses, limits, ranking, policy)))
+    else:
+        from isoscope.report import comparison_table
+        print(comparison_table(analyses, limits, ranking))
+        if out is not None:
+            print(f"\nwrote {out}/report.html, comparison.json, figures and one folder per design")
+    return 0
+
+
+def _run_comparison(specs, out, texts, policy, quiet, title="isoscope comparison", intro=""):
+    """Analyse every spec (as ``analyze`` would), estimate each trainable depth, rank, and write
+    the folder when ``out`` is given (reserved before computing; untouched on failure)."""
+    from isoscope.analysis import analyze
+    from isoscope.folders import reserve
+    from isoscope.recommend import rank, trainable_depth
+    from isoscope.report import write_compare_folder
+
+    target = reserve(out) if out is not None else None
+    try:
+        analyses, limits = [], []
+        for i, spec in enumerate(specs, 1):
+            if sys.stderr.isatty() and not quiet:
+                print(f"[{i}/{len(specs)}] {spec.name}", file=sys.stderr, flush=True)
+            analyses.append(analyze(spec))
+            limits.append(trainable_depth(spec, plan=analyses[-1].inputs))
+        ranking = rank(analyses, limits)
+        if target is not None:
+            write_compare_folder(analyses, limits, ranking, policy, target, spec_texts=texts,
+                                 title=title, intro=intro)
+    except BaseException:
+        if target is not None:
+            target.abort()
+        raise
+    return analyses, limits, ranking
+
+
+def _positive(flag: str, value, kind=int):
+    if value is None:
+        return None
+    ok = (value >= 1) if kind is int else (value > 0 and value == value and value != float("inf"))
+    if not ok:
+        raise InputError(f"{flag} {value!r} is not allowed",
+                         expected="a whole number >= 1" if kind is int else "a positive finite number")
+    return value
+
+
+def _cmd_recommend(args) -> int:
+    import math
+
+    from isoscope import budget
+    from isoscope.activations import get_activation
+    from isoscope.folders import reserve
+    from isoscope.recommend import propose, recommend
+
+    try:
+        act = get_activation(args.activation)
+    except (KeyError, ValueError) as e:
+        raise InputError(str(e), expected="a registered activation name") from None
+    _positive("--depth", args.depth)
+    _positive("--width", args.width)
+    _positive("--inputs", args.inputs)
+    _positive("--target-spread", args.target_spread, float)
+    if args.sigma_b is not None and not (math.isfinite(args.sigma_b) and args.sigma_b >= 0):
+        raise InputError(f"--sigma-b {args.sigma_b!r} is not allowed", expected="a finite scale >= 0")
+    if args.family not in ("plain", "residual"):
+        raise InputError(f"--family {args.family!r} is not allowed", expected="plain or residual")
+    from isoscope.spec import SEED_MAX
+    if not 0 <= args.seed <= SEED_MAX:
+        raise InputError(f"--seed {args.seed} is out of range", expected="an integer from 0 to 2^64 - 1")
+    budget.check(propose_budget_spec(act.name, args))
+    out = args.out if args.out is not None else None
+    target = reserve(out) if out is not None else None
+    try:
+        bar = _Progress(sys.stderr, "candidates measured")
+        try:
+            rec = recommend(act.name, args.depth, args.width, args.family, args.sigma_b,
+                            args.target_spread, args.inputs, args.seed, progress=bar)
+        finally:
+            bar.close()
+        if target is not None:
+            from isoscope.report import write_recommend_folder
+            write_recommend_folder(rec, target)
+    except BaseException:
+        if target is not None:
+            target.abort()
+        raise
+    if args.json:
+        from isoscope.report import recommendation_dict, to_json
+        sys.stdout.write(to_json(recommendation_dict(rec)))
+    else:
+        from isoscope.report import recommendation_text
+        print(recommendation_text(rec))
+        if out is not None:
+            print(f"\nwrote {out}/report.html, recommendation.json and recommended.toml")
+    return 0
+
+
+def propose_budget_spec(activation: str, args):
+    """The largest design ``recommend`` will measure (for the memory check before it starts)."""
+    from isoscope.spec import parse_spec
+    return parse_spec({"name": "recommend", "network": {"width": args.width, "depth": args.depth,
+                                                        "activation": activation},
+                       "analysis": {"inputs": args.inputs}}, source="<recommend flags>")
+
+
 # flag -> spec key, for `predict` and `critical`
 _DESIGN_FLAGS = (("activation", "network", "activation"), ("family", "network", "family"),
                  ("depth", "network", "depth"), ("alpha", "network", "alpha"),
@@ -399,6 +550,38 @@ def build_parser() -> argparse.ArgumentParser:
     d.add_argument("--out", metavar="DIR", default="isoscope-demo", help="output folder (default isoscope-demo)")
     d.add_argument("--json", action="store_true", help="print the results JSON to stdout")
     d.set_defaults(run=_cmd_demo)
+
+    cm = sub.add_parser("compare", help="rank several designs side by side",
+                        description="Analyse several designs (each exactly as `analyze` would) and "
+                                    "rank them by isometry score, with gain, spread, outliers, "
+                                    "agreement with theory and a trainable-depth estimate.")
+    cm.add_argument("specs", metavar="SPEC.toml", nargs="+", help="two or more designs")
+    cm.add_argument("--out", metavar="DIR", help="output folder (default isoscope-out/comparison; "
+                    "with --json and no --out nothing is written to disk)")
+    cm.add_argument("--json", action="store_true", help="print comparison.json to stdout")
+    cm.add_argument("--seed", type=int, help="one seed for every design (default: each spec's own)")
+    cm.add_argument("--inputs", type=int, help="draws per design (default: each spec's own)")
+    cm.set_defaults(run=_cmd_compare)
+
+    rc = sub.add_parser("recommend", help="propose an initialization and check it by measurement",
+                        description="Propose weights, sigma_w and sigma_b (alpha for residual "
+                                    "stacks) for an activation, depth and width from theory, then "
+                                    "measure every candidate at that width. Advice judged at "
+                                    "initialization only.")
+    rc.add_argument("--activation", required=True, help="activation name")
+    rc.add_argument("--depth", type=int, required=True, help="number of weight layers L")
+    rc.add_argument("--width", type=int, required=True, help="width N")
+    rc.add_argument("--family", default="plain", help="plain | residual (default plain)")
+    rc.add_argument("--sigma-b", dest="sigma_b", type=float,
+                    help="bias scale to keep (default: chosen for the target spread)")
+    rc.add_argument("--target-spread", dest="target_spread", type=float,
+                    help="target std of ln s (default 0.1: a gain-1 log-normal spectrum of that "
+                         "spread scores 0.86, inside the isometric verdict)")
+    rc.add_argument("--inputs", type=int, default=2, help="draws per candidate (default 2)")
+    rc.add_argument("--seed", type=int, default=0, help="seed of every candidate (default 0)")
+    rc.add_argument("--out", metavar="DIR", help="also write a folder with the report")
+    rc.add_argument("--json", action="store_true", help="print recommendation.json to stdout")
+    rc.set_defaults(run=_cmd_recommend)
 
     pr = sub.add_parser("predict", help="theory only: mean field and the predicted spectrum",
                         description="Predict the Jacobian spectrum of a design at infinite width "

@@ -15,7 +15,7 @@ import numpy as np
 
 from isoscope.spectrum import Spectrum
 
-__all__ = ["log_s_figure", "lambda_figure", "comparison_figure", "depth_figure", "critical_figure",
+__all__ = ["log_s_figure", "lambda_figure", "comparison_figure", "cdf_overlay_figure", "depth_figure", "critical_figure",
            "PredictedLaw", "save", "SPREAD_DECADES"]
 
 MEASURED = "#2f6f73"
@@ -416,6 +416,45 @@ def critical_figure(sigma_w2: np.ndarray, sigma_b2: np.ndarray, point: tuple[flo
     ax.text(0.03, 0.90, "ordered (chi_1 < 1)", transform=ax.transAxes, ha="left", fontsize=9)
     ax.set_xlabel("sigma_w^2  (weight variance x fan-in)")
     ax.set_ylabel("sigma_b^2  (bias variance)")
+    ax.set_title(title)
+    _legend_outside(ax)
+    return fig
+
+
+def cdf_overlay_figure(spectra: dict[str, Spectrum], title: str):
+    """All designs on one axis: the empirical CDF of log10 s, one step line per design.
+
+    The fraction of singular values at or below s, zeros included: a design with a share of
+    numerically zero singular values starts at that share on the left edge (the legend says so).
+    A perfect isometry is a step from 0 to 1 at s = 1 (dashed); the steeper a curve and the
+    closer it crosses 1/2 at s = 1, the nearer the design is to an isometry.  Colours follow
+    ``DESIGN_COLOURS`` and each line also has its own dash pattern, so the figure reads in grey.
+    """
+    plt = _pyplot()
+    fig, ax = plt.subplots(figsize=(8.0, 4.4), layout="constrained")
+    dashes = ("-", "--", "-.", ":")
+    values = {name: np.sort(_log10_s(s)) for name, s in spectra.items()}
+    shown = [v for v in values.values() if v.size]
+    lo = min((float(v[0]) for v in shown), default=-1.0)
+    hi = max((float(v[-1]) for v in shown), default=1.0)
+    x0, x1 = _axis_range((lo, hi), [0.0])
+    for k, (name, s) in enumerate(spectra.items()):
+        v = values[name]
+        colour = DESIGN_COLOURS[k % len(DESIGN_COLOURS)]
+        zero = s.zero_fraction
+        label = name + (f" ({_percent(zero)} numerically zero)" if zero > 0 else "")
+        if v.size:
+            y = zero + (1.0 - zero) * np.arange(1, v.size + 1) / v.size
+            ax.step(np.concatenate([[x0], v, [x1]]), np.concatenate([[zero], y, [1.0]]),
+                    where="post", color=colour, lw=1.8, ls=dashes[k % len(dashes)], label=label)
+        else:
+            ax.plot([], [], color=colour, ls=dashes[k % len(dashes)],
+                    label=f"{name} (every singular value numerically zero)")
+    ax.axvline(0.0, color=REFERENCE, ls="--", lw=1.0)
+    ax.set_xlim(x0, x1)
+    ax.set_ylim(0.0, 1.0)
+    ax.set_xlabel("log10 s   (s: singular value of the input-output Jacobian; dashed: s = 1)")
+    ax.set_ylabel("fraction of singular values <= s")
     ax.set_title(title)
     _legend_outside(ax)
     return fig

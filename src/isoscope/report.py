@@ -419,3 +419,208 @@ def summary_table(analyses: list[Analysis]) -> str:
     for a in analyses:
         out += [f"! {a.spec.name}: {w}" for w in a.warnings]
     return "\n".join(out)
+
+
+# ----------------------------------------------------------------------------- decisions
+COMPARISON_SCHEMA = "isoscope.comparison/1"
+RECOMMENDATION_SCHEMA = "isoscope.recommendation/1"
+
+CRITERIA = {
+    "isometry": "highest measured isometry score E[min(lambda, 1/lambda)] (the ranking's key)",
+    "gain": "measured gain m1 closest to 1 on a log scale (smallest |log10 m1|)",
+    "spread": "smallest measured std of ln s",
+    "agreement": "smallest Kolmogorov-Smirnov distance between measurement and theory",
+    "trainable_depth": "deepest trainable-depth estimate (trainable_depth.depth)",
+}
+
+
+def depth_limit_dict(d) -> dict[str, Any]:
+    """A :class:`~isoscope.recommend.DepthLimit` as plain data (infinite depths become null,
+    with ``beyond`` saying how deep the search looked)."""
+    from isoscope.recommend import MAX_DEPTH, SIGNAL_MULTIPLE
+    return {"depth": d.depth, "spread_depth": d.spread_depth, "signal_depth": d.signal_depth,
+            "xi_c": d.xi_c, "spread_limit": d.limit, "signal_multiple": SIGNAL_MULTIPLE,
+            "binding": d.binding, "reason": d.reason, "searched_to": MAX_DEPTH}
+
+
+def comparison_dict(analyses: list[Analysis], limits: list, ranking, seed_policy: str) -> dict[str, Any]:
+    """Several designs side by side (schema ``isoscope.comparison/1``): ``ranking`` (names, best
+    first), ``winners`` (criterion -> names), ``criteria`` (what each criterion means), and
+    ``designs`` in rank order, each with its ``rank``, its whole ``result`` (the result.json of
+    ``analyze`` on the same spec, :func:`result_dict`) and its ``trainable_depth``."""
+    designs = [{"rank": k, "name": analyses[i].spec.name, "result": result_dict(analyses[i]),
+                "trainable_depth": depth_limit_dict(limits[i])}
+               for k, i in enumerate(ranking.order, 1)]
+    return _clean({"schema": COMPARISON_SCHEMA, "seed_policy": seed_policy,
+                   "ranking": [analyses[i].spec.name for i in ranking.order],
+                   "winners": ranking.winners, "criteria": CRITERIA, "designs": designs,
+                   "environment": _environment(analyses[0])})
+
+
+def _depth_cell(d) -> str:
+    if d.depth == math.inf:
+        from isoscope.recommend import MAX_DEPTH
+        return f">{MAX_DEPTH}"
+    return f"{d.depth:.0f} ({d.binding})"
+
+
+def comparison_table(analyses: list[Analysis], limits: list, ranking) -> str:
+    """The terminal form of a comparison: one row per design in rank order, then the winners
+    per criterion and every design's warnings."""
+    cols = ("#", "design", "verdict", "isometry", "gain m1", "std ln s", "outliers/draw",
+            "KS vs theory", "trainable depth")
+    rows = []
+    for k, i in enumerate(ranking.order, 1):
+        a = analyses[i]
+        sc, g = a.score, a.agreement
+        outliers = "—" if g is None else str(len(g.outliers))
+        rows.append((str(k), a.spec.name, sc.verdict, _cell(sc.isometry, ".3f"), _cell(sc.gain, ".4g"),
+                     _cell(sc.log_s_std, ".3f"), outliers,
+                     _cell(g.ks, ".3f") if g is not None else "—", _depth_cell(limits[i])))
+    widths = [max(len(c), *(len(r[j]) for r in rows)) for j, c in enumerate(cols)]
+    line = lambda r: "  ".join(v.ljust(w) if j in (1, 2) else v.rjust(w)
+                               for j, (v, w) in enumerate(zip(r, widths)))
+    out = [line(cols), "  ".join("-" * w for w in widths)] + [line(r) for r in rows]
+    out.append("")
+    for criterion, names in ranking.winners.items():
+        out.append(f"best {criterion}: {', '.join(names) if names else '—'}")
+    for i in ranking.order:
+        a = analyses[i]
+        out += [f"! {a.spec.name}: {w}" for w in a.warnings]
+    return "\n".join(out)
+
+
+def candidate_dict(c, why: str | None = None) -> dict[str, Any]:
+    """One candidate of a recommendation: its full ``spec`` (``analyze`` accepts it), the
+    initialization (``weights, sigma_w, sigma_b, alpha``; alpha null for plain stacks), the
+    ``predicted`` and ``measured`` spread side by side, and ``why`` it lost (alternatives)."""
+    a, n, i = c.analysis, c.spec.network, c.spec.init
+    p = a.predicted if a is not None else None
+    mf = p.mean_field if p is not None else None
+    sc = a.score if a is not None else None
+    measured = None if a is None else {
+        "log_s_std": sc.log_s_std, "log_s_mean": a.spectrum.log_s_mean if a.spectrum else None,
+        "isometry": sc.isometry, "gain": sc.gain, "verdict": sc.verdict,
+        "draws": a.spectrum.draws if a.spectrum else 0, "warnings": list(a.warnings)}
+    return _clean({
+        "name": c.spec.name, "role": c.role, "spec": c.spec.to_dict(), "weights": i.weights,
+        "sigma_w": i.sigma_w, "sigma_w2": _square(i.sigma_w), "sigma_b": i.sigma_b,
+        "sigma_b2": _square(i.sigma_b), "alpha": n.alpha if n.family == "residual" else None,
+        "meets_target": c.meets_target,
+        "predicted": {"log_s_std": c.predicted_spread,
+                      "log_s_mean": p.log_s_mean if p is not None else None,
+                      "log_m1": p.moments.log_m1 if p is not None else None,
+                      "q_star": mf.q_star if mf else None, "chi": mf.chi1 if mf else None,
+                      "tau": p.tau if p is not None else None},
+        "measured": measured, **({} if why is None else {"why": why})})
+
+
+def recommendation_dict(rec) -> dict[str, Any]:
+    """A :class:`~isoscope.recommend.Recommendation` as plain data (schema
+    ``isoscope.recommendation/1``): ``recommended`` and ``alternatives`` (same fields, see
+    :func:`candidate_dict`), the recommended candidate's ``predicted`` and ``measured`` spread
+    repeated at the top level, ``reason`` (sentences) and ``advice`` (its limits)."""
+    from isoscope.recommend import ADVICE
+    best = candidate_dict(rec.recommended)
+    return _clean({
+        "schema": RECOMMENDATION_SCHEMA, "advice": ADVICE, "question": rec.question,
+        "plain_isometric": rec.plain_isometric, "recommended": best,
+        "predicted": {"log_s_std": best["predicted"]["log_s_std"]},
+        "measured": {"log_s_std": (best["measured"] or {}).get("log_s_std"),
+                     "draws": (best["measured"] or {}).get("draws")},
+        "alternatives": [candidate_dict(c, w) for c, w in zip(rec.alternatives, rec.why)],
+        "reason": list(rec.reason),
+        "environment": _environment(rec.recommended.analysis)})
+
+
+def _init_text(c) -> str:
+    n, i = c.spec.network, c.spec.init
+    alpha = f", alpha = {n.alpha:.6g}" if n.family == "residual" else ""
+    return (f"{n.family}, {i.weights} weights, sigma_w = {i.sigma_w:.10g} (sigma_w^2 = "
+            f"{_square(i.sigma_w):.6g}), sigma_b = {i.sigma_b:.6g}{alpha}")
+
+
+def recommendation_text(rec) -> str:
+    """The terminal form of a recommendation: the advice's limits first, the recommended design
+    with prediction and measurement side by side, the alternatives and why they lost."""
+    from isoscope.recommend import ADVICE
+    q = rec.question
+    best = rec.recommended
+    lines = [f"! {ADVICE}",
+             f"question: {q['activation']}, {q['family']} stack, depth {q['depth']}, width {q['width']}"
+             f"; target std ln s {q['target_spread']:.4g}; each candidate measured with "
+             f"{q['draws']} draw(s) at seed {q['seed']} (a small number of draws: the measured "
+             "spread is indicative)", "",
+             f"recommended: {_init_text(best)}"]
+    cols = ("candidate", "predicted std ln s", "measured std ln s", "isometry", "verdict")
+    rows = []
+    for c in (best, *rec.alternatives):
+        sc = c.analysis.score
+        rows.append((c.role, _cell(c.predicted_spread, ".4g"), _cell(sc.log_s_std, ".4g"),
+                     _cell(sc.isometry, ".3f"), sc.verdict))
+    widths = [max(len(h), *(len(r[j]) for r in rows)) for j, h in enumerate(cols)]
+    line = lambda r: "  ".join(v.ljust(w) if j in (0, 4) else v.rjust(w)
+                               for j, (v, w) in enumerate(zip(r, widths)))
+    lines += ["", line(cols), "  ".join("-" * w for w in widths)] + [line(r) for r in rows]
+    lines += ["", "why:"] + [f"  {s}" for s in rec.reason]
+    if rec.alternatives:
+        lines += ["alternatives:"] + [f"  {_init_text(c)}: {w}" for c, w in zip(rec.alternatives, rec.why)]
+    lines += [f"! {best.spec.name}: {w}" for w in best.analysis.warnings]
+    return "\n".join(lines)
+
+
+def _design_folders(analyses: list[Analysis], tmp: Path) -> list[tuple[dict[str, Any], dict[str, Path]]]:
+    """One sub-folder per design (its result.json and figures); returns (result, figures)."""
+    out = []
+    for a in analyses:
+        sub = tmp / safe_folder_name(a.spec.name)
+        sub.mkdir()
+        r = result_dict(a)
+        (sub / "result.json").write_text(to_json(r))
+        out.append((r, _figures(a, sub)))
+    return out
+
+
+def _overlay_figures(analyses: list[Analysis], tmp: Path) -> dict[str, Path]:
+    from isoscope import plot
+    spectra = {a.spec.name: a.spectrum for a in analyses if a.spectrum is not None}
+    if not spectra:
+        return {}
+    return {"cdf": plot.save(plot.cdf_overlay_figure(spectra, "all designs: fraction of singular values <= s"),
+                             tmp / "compare-cdf")[0],
+            "histograms": plot.save(plot.comparison_figure(spectra, "singular values s of J, all designs"),
+                                    tmp / "compare-histograms")[0]}
+
+
+def write_compare_folder(analyses: list[Analysis], limits: list, ranking, seed_policy: str,
+                         out: "str | Path | Reservation", spec_texts: dict[str, str] | None = None,
+                         title: str = "isoscope comparison", intro: str = "") -> Path:
+    """Write a comparison: ``comparison.json``, one sub-folder per design (named by
+    :func:`~isoscope.folders.safe_folder_name`, holding the design's result.json and figures),
+    the overlay figures, the specs as given (``specs/``) and ``report.html``."""
+    data = comparison_dict(analyses, limits, ranking, seed_policy)
+    with output_folder(out) as tmp:
+        per_design = _design_folders(analyses, tmp)
+        overlays = _overlay_figures(analyses, tmp)
+        if spec_texts:
+            (tmp / "specs").mkdir()
+            for name, text in spec_texts.items():
+                (tmp / "specs" / f"{safe_folder_name(name)}.toml").write_text(text)
+        (tmp / "comparison.json").write_text(to_json(data))
+        (tmp / "report.html").write_text(_compare_page(data, per_design, overlays, ranking, analyses,
+                                                       title, intro))
+    return Path(out.target if isinstance(out, Reservation) else out)
+
+
+def write_recommend_folder(rec, out: "str | Path | Reservation") -> Path:
+    """Write a recommendation: ``recommendation.json``, ``recommended.toml`` (a spec ``analyze``
+    accepts), one sub-folder per candidate (result.json and figures) and ``report.html``."""
+    data = recommendation_dict(rec)
+    cands = [rec.recommended, *rec.alternatives]
+    with output_folder(out) as tmp:
+        per_design = _design_folders([c.analysis for c in cands], tmp)
+        overlays = _overlay_figures([c.analysis for c in cands], tmp)
+        (tmp / "recommendation.json").write_text(to_json(data))
+        (tmp / "recommended.toml").write_text(_spec_text(rec.recommended.spec))
+        (tmp / "report.html").write_text(_recommend_page(data, rec, per_design, overlays))
+    return Path(out.target if isinstance(out, Reservation) else out)
