@@ -24,11 +24,11 @@ __all__ = ["main", "build_parser"]
 
 DEMO_TITLE = "isoscope demo: initializing the Heron-7 greenhouse controller"
 DEMO_INTRO = (
-    "<p>A team building the climate controller of a fleet of research greenhouses trains a "
+    "A team building the climate controller of a fleet of research greenhouses trains a "
     "64-layer, 256-wide fully connected policy (sensor readings in, vent, heater and misting "
     "commands out). Before paying for training runs they compare four initializations by the "
     "singular values of the input-output Jacobian at initialization: a design whose singular "
-    "values all sit near 1 passes gradients through every layer undistorted.</p>")
+    "values all sit near 1 passes gradients through every layer undistorted.")
 
 
 def _demo_specs() -> dict[str, str]:
@@ -137,32 +137,29 @@ def _cmd_analyze(args) -> int:
 
 
 def _cmd_demo(args) -> int:
+    """The built-in scenario through ``compare``: four designs ranked in one report folder."""
     import tomllib
 
-    from isoscope.analysis import analyze
-    from isoscope.report import result_dict, summary_table, to_json, write_comparison_folder
+    from isoscope import budget
     from isoscope.spec import parse_spec
 
-    from isoscope.folders import reserve
-
     texts = _demo_specs()
-    target = reserve(args.out)
-    analyses = []
-    for i, (name, text) in enumerate(texts.items(), 1):
-        if sys.stderr.isatty() and not args.json:
-            print(f"[{i}/{len(texts)}] {name}", file=sys.stderr, flush=True)
-        try:
-            analyses.append(analyze(parse_spec(tomllib.loads(text), source=f"<built-in {name}.toml>")))
-        except BaseException:
-            target.abort()
-            raise
-    write_comparison_folder(analyses, target, DEMO_TITLE, DEMO_INTRO, spec_texts=texts)
-    out = args.out
+    specs = [parse_spec(tomllib.loads(text), source=f"<built-in {name}.toml>")
+             for name, text in texts.items()]
+    for spec in specs:
+        budget.check(spec)
+    policy = "each design at its own spec's analysis.seed"
+    analyses, limits, ranking = _run_comparison(
+        specs, args.out, {s.name: t for s, t in zip(specs, texts.values())}, policy, args.json,
+        title=DEMO_TITLE, intro=DEMO_INTRO)
     if args.json:
-        sys.stdout.write(to_json({"results": [result_dict(a) for a in analyses]}))
+        from isoscope.report import comparison_dict, to_json
+        sys.stdout.write(to_json(comparison_dict(analyses, limits, ranking, policy)))
     else:
-        print(summary_table(analyses))
-        print(f"\nwrote {out}/report.html (open it in a browser); the four specs are in {out}/specs/")
+        from isoscope.report import comparison_table
+        print(comparison_table(analyses, limits, ranking))
+        print(f"\nwrote {args.out}/report.html (open it in a browser); the four specs are in "
+              f"{args.out}/specs/")
     return 0
 
 
