@@ -42,14 +42,26 @@ def test_same_seed_same_numbers_other_seed_other_numbers():
 def test_demo_runs_end_to_end(tmp_path, capsys):
     out = tmp_path / "demo"
     assert cli.main(["demo", "--out", str(out)]) == 0
-    summary = json.loads((out / "summary.json").read_text())
-    verdicts = {r["name"]: r["score"]["verdict"] for r in summary["results"]}
+    comp = json.loads((out / "comparison.json").read_text())
+    assert comp["schema"] == "isoscope.comparison/1"
+    verdicts = {d["name"]: d["result"]["score"]["verdict"] for d in comp["designs"]}
     assert len(verdicts) == 4
     # orthogonal tanh at the edge of chaos with q* ~ 0.009 is near-isometric at L = 64
-    # (variance about 8 L q*^2 = 0.04, Pennington, Schoenholz & Ganguli 2017, sec. 3); Gaussian weights spread at least like L
+    # (variance about 8 L q*^2 = 0.04, Pennington, Schoenholz & Ganguli 2017, sec. 3); Gaussian
+    # weights spread at least like L; so it ranks first
     assert verdicts["heron-tanh-orthogonal"] == "isometric"
     assert verdicts["heron-tanh-gaussian"] != "isometric"
+    assert comp["ranking"][0] == "heron-tanh-orthogonal"
+    # the ranking and the numbers equal those of separate analyses of the same specs
+    from isoscope.report import result_dict
+    from isoscope.spec import load_spec
+    for d in comp["designs"]:
+        single = result_dict(analyze(load_spec(out / "specs" / f"{d['name']}.toml")))
+        strip = lambda r: {k: v for k, v in r.items() if k not in ("seconds", "spec", "environment")}
+        assert strip(d["result"]) == strip(json.loads(json.dumps(single)))
     assert (out / "report.html").stat().st_size > 10000 and (out / "specs").is_dir()
+    for d in comp["designs"]:
+        assert (out / d["name"] / "result.json").is_file()
 
 
 @pytest.mark.parametrize("act,sigma_w,sigma_b,depth,dtype", [

@@ -62,3 +62,28 @@ def test_seed_keys_beyond_2_63_are_distinct_words():
     from isoscope.analysis import seed_key
     assert np.asarray(seed_key(2 ** 64 - 1)).tolist() == [2 ** 32 - 1, 2 ** 32 - 1]
     assert np.asarray(seed_key(2 ** 63)).tolist() == [2 ** 31, 0]
+
+
+@pytest.mark.parametrize("name", ["plain", 'quote " and \\ backslash', "line\nbreak\ttab",
+                                  "unicode: σ_w ≈ 1 · 深度", "<script>alert(1)</script>", "bell\x07"])
+def test_spec_toml_reads_back_to_the_same_spec(name):
+    import tomllib
+    from isoscope.spec import spec_toml
+    spec = parse_spec({"name": name, "description": name + " (described)",
+                       "network": {"family": "residual", "alpha": 0.125, "depth": 7},
+                       "init": {"weights": "gaussian", "sigma_w": 1e-05, "sigma_b": 0.1},
+                       "analysis": {"seed": 2 ** 64 - 1}})
+    back = parse_spec(tomllib.loads(spec_toml(spec)))
+    assert back.to_dict() == spec.to_dict()
+
+
+def test_spec_toml_round_trips_every_example():
+    import pathlib
+    import tomllib
+    from isoscope.spec import load_spec, spec_toml
+    root = pathlib.Path(__file__).resolve().parent.parent
+    paths = sorted((root / "examples").glob("*.toml")) + sorted((root / "src/isoscope/scenarios").glob("*.toml"))
+    assert paths
+    for path in paths:
+        spec = load_spec(path)
+        assert parse_spec(tomllib.loads(spec_toml(spec))).to_dict() == spec.to_dict()

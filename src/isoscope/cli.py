@@ -182,7 +182,7 @@ def _compare_specs(args):
             raise InputError(f"{path} and {seen[spec.name]} both name their design {spec.name!r}",
                              expected="a distinct name per design (the name labels its row, "
                                       "its figures and its sub-folder)",
-                             hint=f"change `name = ...` in one of them", file=path, key="name")
+                             hint="change `name = ...` in one of them", file=path, key="name")
         folder = safe_folder_name(spec.name).casefold()   # case-insensitive file systems too
         if folder in folders:
             raise InputError(f"the names {spec.name!r} ({path}) and {folders[folder][0]!r} "
@@ -197,7 +197,6 @@ def _compare_specs(args):
 
 def _cmd_compare(args) -> int:
     from isoscope import budget
-    from isoscope.folders import reserve
 
     specs = _compare_specs(args)
     for spec in specs:
@@ -261,7 +260,7 @@ def _cmd_recommend(args) -> int:
     from isoscope import budget
     from isoscope.activations import get_activation
     from isoscope.folders import reserve
-    from isoscope.recommend import propose, recommend
+    from isoscope.recommend import recommend
 
     try:
         act = get_activation(args.activation)

@@ -27,7 +27,6 @@ from scipy.optimize import brentq
 from isoscope.activations import get_activation
 from isoscope.analysis import Analysis, InputPlan, analyze, plan_inputs, predict_spec, spec_activation
 from isoscope.errors import InputError, TheoryError
-from isoscope.score import ISOMETRIC_SCORE
 from isoscope.spec import Spec, parse_spec
 from isoscope.theory import free_probability as fp
 from isoscope.theory import mean_field as mf

@@ -9,8 +9,6 @@ saved is overwritten.
 
 from __future__ import annotations
 
-import base64
-import html
 import json
 import math
 import platform
@@ -23,8 +21,11 @@ from isoscope.analysis import Analysis
 from isoscope.errors import TheoryError
 from isoscope.folders import Reservation, reserve, safe_folder_name
 
-__all__ = ["SCHEMA", "GLOSSARY", "result_dict", "prediction_dict", "to_json", "write_analysis_folder",
-           "write_comparison_folder", "summary_table", "output_folder"]
+__all__ = ["SCHEMA", "COMPARISON_SCHEMA", "RECOMMENDATION_SCHEMA", "GLOSSARY", "result_dict",
+           "prediction_dict", "comparison_dict", "recommendation_dict", "candidate_dict",
+           "depth_limit_dict", "to_json", "verdict_sentence", "analysis_page",
+           "write_analysis_folder", "write_compare_folder", "write_recommend_folder",
+           "summary_table", "comparison_table", "recommendation_text", "output_folder"]
 
 SCHEMA = "isoscope.result/1"
 
@@ -90,8 +91,11 @@ def _clean(v: Any) -> Any:
 
 def _environment(analysis: Analysis) -> dict[str, Any]:
     import jax
+    import jaxlib
+    import scipy
     return {"isoscope": __import__("isoscope").__version__, "jax": jax.__version__,
-            "numpy": np.__version__, "python": platform.python_version(),
+            "jaxlib": jaxlib.__version__, "numpy": np.__version__, "scipy": scipy.__version__,
+            "python": platform.python_version(),
             "machine": platform.machine(), "device": jax.devices()[0].platform,
             "dtype": analysis.spec.analysis.dtype,
             "jax_enable_x64": bool(jax.config.read("jax_enable_x64"))}
@@ -282,21 +286,6 @@ def _figures(analysis: Analysis, folder: Path, prefix: str = "") -> dict[str, Pa
     return out
 
 
-def _img(path: Path, alt: str) -> str:
-    data = base64.b64encode(path.read_bytes()).decode("ascii")
-    return f'<img alt="{html.escape(alt)}" src="data:image/png;base64,{data}">'
-
-
-def _fmt(v: Any) -> str:
-    if v is None:
-        return "—"
-    if isinstance(v, float):
-        if not math.isfinite(v):
-            return "—"
-        return f"{v:.4g}"
-    return html.escape(str(v))
-
-
 _ROWS = (
     ("verdict", lambda r: r["score"]["verdict"]),
     ("isometry score", lambda r: r["score"]["isometry"]),
@@ -316,6 +305,31 @@ _ROWS = (
     ("m1 error measured/predicted - 1", lambda r: (r["agreement"] or {}).get("m1_rel_error")),
 )
 
+_PHRASES = {
+    "isometric": "is close to an isometry",
+    "mis-scaled": "is isometric up to its gain",
+    "spread": "spreads its singular values",
+    "vanishing": "shrinks gradients",
+    "exploding": "amplifies gradients",
+    "non-finite": "overflowed",
+}
+
+
+def _num(v: Any, spec: str = ".3g") -> str:
+    return format(v, spec) if isinstance(v, (int, float)) and math.isfinite(v) else "—"
+
+
+def verdict_sentence(r: dict[str, Any]) -> str:
+    """One sentence for the top of a report from a ``result.json`` mapping: the design, its
+    verdict in words, the isometry score, gain and spread, and the verdict's reason."""
+    sc = r["score"]
+    v = sc["verdict"]
+    if v == "non-finite":
+        return f"{r['name']} overflowed at initialization: no spectrum was measured ({sc['reason']})."
+    return (f"{r['name']} {_PHRASES.get(v, 'is ' + v)} at initialization (verdict {v}): isometry "
+            f"score {_num(sc['isometry'])}, gain m1 = {_num(sc['gain'], '.4g')}, std ln s = "
+            f"{_num(sc['log_s_std'])}; {sc['reason']}.")
+
 
 def _design_line(r: dict[str, Any]) -> str:
     n, i, a = r["spec"]["network"], r["spec"]["init"], r["spec"]["analysis"]
@@ -325,33 +339,80 @@ def _design_line(r: dict[str, Any]) -> str:
             f"sigma_b = {i['sigma_b']:g}{extra}; {a['inputs']} draws, seed {a['seed']}, {a['dtype']}")
 
 
-_CSS = """body{font-family:system-ui,sans-serif;max-width:64rem;margin:2rem auto;color:#222;padding:0 1rem}
-table{border-collapse:collapse;margin:1rem 0}td,th{border-bottom:1px solid #ccc;padding:.3rem .7rem;text-align:right}
-th:first-child,td:first-child{text-align:left}.warn{background:#fff4e0;border-left:4px solid #c4512b;padding:.5rem 1rem}
-img{max-width:100%}h2{margin-top:2.5rem;border-top:2px solid #2f6f73;padding-top:1rem}.small{color:#555;font-size:.9rem}"""
+_CAPTIONS = {
+    "log_s": "singular values s of J on a log axis: measured histogram, predicted density (N -> infinity), SVD floor",
+    "lambda": "eigenvalues lambda = s^2 of J J^T: measured histogram and predicted density",
+    "depth": "against depth: the partial Jacobians J_l ... J_1 beside the prediction",
+    "critical": "the critical line chi_1 = 1 in the (sigma_w^2, sigma_b^2) plane and this design",
+}
+
+_NOTATION = ("s: singular values of the input-output Jacobian J; lambda = s^2: eigenvalues of "
+             "J J^T. Isometry score = E[min(lambda, 1/lambda)]. Verdicts: gain outside [0.1, 10] "
+             "is vanishing/exploding, score >= 0.8 is isometric (isoscope's conventions, "
+             "docs/score.md).")
 
 
-def _html_page(title: str, intro: str, results: list[dict[str, Any]], sections: list[str]) -> str:
-    head = "".join(f"<th>{html.escape(r['name'])}</th>" for r in results)
-    body = "".join(f"<tr><td>{html.escape(label)}</td>" + "".join(f"<td>{_fmt(get(r))}</td>" for r in results)
-                   + "</tr>" for label, get in _ROWS)
-    return (f"<!doctype html><html><head><meta charset='utf-8'><title>{html.escape(title)}</title>"
-            f"<style>{_CSS}</style></head><body><h1>{html.escape(title)}</h1>{intro}"
-            f"<table><tr><th></th>{head}</tr>{body}</table>"
-            "<p class='small'>s: singular values of the input-output Jacobian J; lambda = s^2: "
-            "eigenvalues of J J^T. Isometry score = E[min(lambda, 1/lambda)]. "
-            "Verdict thresholds: gain outside [0.1, 10] is vanishing/exploding, score >= 0.8 is isometric "
-            "(isoscope's conventions).</p>"
-            + "".join(sections) + "</body></html>\n")
+def _agreement_rows(r: dict[str, Any]) -> list[tuple[str, Any, Any]]:
+    g = r["agreement"]
+    if not g:
+        return []
+    return [("KS distance (above the floor)", g["ks"], None),
+            ("mean ln s [predicted, measured]", g["log_s_mean"][0], g["log_s_mean"][1]),
+            ("std ln s [predicted, measured]", g["log_s_std"][0], g["log_s_std"][1]),
+            ("zero share [predicted, measured]", g["zero_fraction"][0], g["zero_fraction"][1]),
+            ("m1 error measured/predicted - 1", g["m1_rel_error"], None),
+            ("m2 error measured/predicted - 1", g["m2_rel_error"], None),
+            ("tail share of m1, m2", g["tail_share"][0], g["tail_share"][1]),
+            ("disagree (cause)", g["disagree"], g["cause"])]
 
 
-def _section_html(r: dict[str, Any], figures: dict[str, Path]) -> str:
-    warn = "".join(f"<p class='warn'>{html.escape(w)}</p>" for w in r["warnings"])
-    figs = "".join(_img(p, k) for k, p in figures.items())
-    desc = f"<p>{html.escape(r['spec']['description'])}</p>" if r["spec"]["description"] else ""
-    return (f"<h2>{html.escape(r['name'])}</h2>{desc}<p class='small'>{html.escape(_design_line(r))}. "
-            f"Inputs: {html.escape(r['inputs']['detail'])}.</p>{warn}"
-            f"<p><b>{html.escape(r['score']['verdict'])}</b>: {html.escape(r['score']['reason'])}</p>{figs}")
+def _design_section(doc, r: dict[str, Any], figures: dict[str, Path], heading: bool) -> None:
+    """One design's part of a page: its line, figures, tables and warnings."""
+    if heading:
+        doc.heading(r["name"])
+        doc.paragraph(verdict_sentence(r))
+    if r["spec"]["description"]:
+        doc.paragraph(r["spec"]["description"])
+    doc.paragraph(f"{_design_line(r)}. Inputs: {r['inputs']['detail']}.", small=True)
+    for key, path in figures.items():
+        doc.figure(path, f"{r['name']}: {_CAPTIONS.get(key, key)}")
+    doc.table(["quantity", r["name"]], [(label, get(r)) for label, get in _ROWS],
+              caption="measured and predicted spectrum")
+    rows = _agreement_rows(r)
+    if rows:
+        doc.table(["agreement with theory", "value", "second value"], rows,
+                  caption="measurement against the infinite-width prediction")
+        outs = r["agreement"]["outliers"]
+        if outs:
+            doc.table(["outlier", "side", "measured s (median)", "predicted s"],
+                      [(o["kind"], o["side"], o["measured_s"], o["predicted_s"]) for o in outs],
+                      caption="singular values set apart from the bulk (not scored)")
+    doc.warnings(r["warnings"])
+
+
+def _facts(env: dict[str, Any], extra: dict[str, Any]) -> dict[str, Any]:
+    keys = ("isoscope", "jax", "jaxlib", "numpy", "scipy", "python", "machine", "device")
+    return {**{k: env.get(k) for k in keys}, **extra}
+
+
+def _spec_text(spec) -> str:
+    from isoscope.spec import spec_toml
+    return spec_toml(spec)
+
+
+def analysis_page(analysis: Analysis, result: dict[str, Any], figures: dict[str, Path]) -> str:
+    """The report of one analysis: the verdict sentence, the figures, the tables, the warnings,
+    the spec as TOML, the software versions, dtype and seed."""
+    from isoscope.document import Document
+    doc = Document(f"isoscope: {result['name']}", verdict_sentence(result))
+    _design_section(doc, result, figures, heading=False)
+    doc.paragraph(_NOTATION, small=True)
+    doc.code("spec (resolved, every default filled in)", _spec_text(analysis.spec))
+    a = result["spec"]["analysis"]
+    doc.facts("software and settings", _facts(result["environment"], {
+        "dtype": a["dtype"], "seed": a["seed"], "draws": a["inputs"],
+        "seconds": (result.get("seconds") or {}).get("total")}))
+    return doc.render()
 
 
 def write_analysis_folder(analysis: Analysis, out: "str | Path | Reservation") -> Path:
@@ -363,37 +424,7 @@ def write_analysis_folder(analysis: Analysis, out: "str | Path | Reservation") -
     with output_folder(out) as tmp:
         figures = _figures(analysis, tmp)
         (tmp / "result.json").write_text(to_json(result))
-        page = _html_page(f"isoscope: {analysis.spec.name}", "", [result], [_section_html(result, figures)])
-        (tmp / "report.html").write_text(page)
-    return Path(out.target if isinstance(out, Reservation) else out)
-
-
-def write_comparison_folder(analyses: list[Analysis], out: "str | Path | Reservation", title: str,
-                            intro_html: str, spec_texts: dict[str, str] | None = None) -> Path:
-    """Write a folder comparing several designs: one sub-folder per design (named by
-    :func:`~isoscope.folders.safe_folder_name` of its label), a summary, a page."""
-    from isoscope import plot
-    results = [result_dict(a) for a in analyses]
-    with output_folder(out) as tmp:
-        sections = []
-        for a, r in zip(analyses, results):
-            sub = tmp / safe_folder_name(a.spec.name)
-            sub.mkdir()
-            (sub / "result.json").write_text(to_json(r))
-            sections.append(_section_html(r, _figures(a, sub)))
-        spectra = {a.spec.name: a.spectrum for a in analyses if a.spectrum is not None}
-        fig_html = ""
-        if spectra:
-            path = plot.save(plot.comparison_figure(spectra, "singular values s of J, all designs"),
-                             tmp / "comparison-log-s")[0]
-            fig_html = _img(path, "comparison")
-        if spec_texts:
-            (tmp / "specs").mkdir()
-            for name, text in spec_texts.items():
-                (tmp / "specs" / f"{safe_folder_name(name)}.toml").write_text(text)
-        (tmp / "summary.json").write_text(to_json({"schema": SCHEMA, "title": title, "results": results}))
-        page = _html_page(title, intro_html + fig_html, results, sections)
-        (tmp / "report.html").write_text(page)
+        (tmp / "report.html").write_text(analysis_page(analysis, result, figures))
     return Path(out.target if isinstance(out, Reservation) else out)
 
 
@@ -624,3 +655,118 @@ def write_recommend_folder(rec, out: "str | Path | Reservation") -> Path:
         (tmp / "recommended.toml").write_text(_spec_text(rec.recommended.spec))
         (tmp / "report.html").write_text(_recommend_page(data, rec, per_design, overlays))
     return Path(out.target if isinstance(out, Reservation) else out)
+
+
+
+def compare_verdict(data: dict[str, Any]) -> str:
+    """One sentence for the top of a comparison: who ranks first, by how much, and why."""
+    d = data["designs"]
+    first = d[0]["result"]["score"]
+    text = (f"{d[0]['name']} ranks first of {len(d)} designs: isometry score "
+            f"{_num(first['isometry'])} (verdict {first['verdict']}), std ln s "
+            f"{_num(first['log_s_std'])}")
+    if len(d) > 1:
+        second = d[1]["result"]["score"]
+        text += (f"; next is {d[1]['name']} with {_num(second['isometry'])} "
+                 f"({second['verdict']})")
+    return text + "."
+
+
+def _ranking_rows(data: dict[str, Any]) -> list[tuple]:
+    rows = []
+    for d in data["designs"]:
+        r, t = d["result"], d["trainable_depth"]
+        g = r["agreement"] or {}
+        rows.append((d["rank"], d["name"], r["score"]["verdict"], r["score"]["isometry"],
+                     r["score"]["gain"], r["score"]["log_s_std"], len(g.get("outliers", [])),
+                     g.get("ks"), t["depth"] if t["depth"] is not None else f">{t['searched_to']}",
+                     t["binding"]))
+    return rows
+
+
+def _compare_page(data, per_design, overlays, ranking, analyses, title, intro) -> str:
+    from isoscope.document import Document
+    doc = Document(title, compare_verdict(data))
+    if intro:
+        doc.paragraph(intro)
+    doc.paragraph(f"Seed policy: {data['seed_policy']}. Every design is analysed exactly as "
+                  "`isoscope analyze` would analyse its spec.", small=True)
+    doc.heading("ranking")
+    doc.table(["#", "design", "verdict", "isometry", "gain m1", "std ln s", "outliers/draw",
+               "KS vs theory", "trainable depth", "set by"], _ranking_rows(data),
+              caption="ranked by measured isometry score; trainable depth: the smaller of the "
+                      "depth where the predicted std ln s reaches ln 10 and 6 xi_c (docs/decide.md)")
+    doc.table(["criterion", "best", "meaning"],
+              [(k, ", ".join(v) or None, CRITERIA[k]) for k, v in data["winners"].items()],
+              caption="which design wins on what")
+    if "cdf" in overlays:
+        doc.figure(overlays["cdf"], "every design on one axis: fraction of singular values <= s "
+                                    "(a perfect isometry is a step at s = 1)")
+        doc.figure(overlays["histograms"], "histograms of log10 s, one panel per design, shared axis")
+    by_name = {r["name"]: (r, f) for r, f in per_design}
+    for d in data["designs"]:
+        r, figs = by_name[d["name"]]
+        _design_section(doc, r, figs, heading=True)
+        doc.paragraph(f"Trainable depth: {d['trainable_depth']['reason']}.", small=True)
+    doc.paragraph(_NOTATION, small=True)
+    doc.heading("specs")
+    for a in analyses:
+        doc.code(a.spec.name, _spec_text(a.spec))
+    env = data["environment"]
+    doc.facts("software", _facts(env, {"dtype": ", ".join(sorted({a.spec.analysis.dtype for a in analyses})),
+                                       "seeds": ", ".join(str(a.spec.analysis.seed) for a in analyses)}))
+    return doc.render()
+
+
+def recommend_verdict(data: dict[str, Any]) -> str:
+    """One sentence for the top of a recommendation: what to initialize with, and the spread
+    predicted and measured."""
+    q, b = data["question"], data["recommended"]
+    alpha = f", alpha = {b['alpha']:.4g}" if b["alpha"] is not None else ""
+    fam = b["spec"]["network"]["family"]
+    return (f"For {q['activation']} at depth {q['depth']} and width {q['width']}: a {fam} stack "
+            f"with {b['weights']} weights, sigma_w = {b['sigma_w']:.6g}, sigma_b = "
+            f"{b['sigma_b']:.4g}{alpha}; predicted std ln s {_num(b['predicted']['log_s_std'])}, "
+            f"measured {_num((b['measured'] or {}).get('log_s_std'))} "
+            f"({(b['measured'] or {}).get('draws')} draws).")
+
+
+def _recommend_page(data, rec, per_design, overlays) -> str:
+    from isoscope.document import Document
+    q = data["question"]
+    doc = Document(f"isoscope recommendation: {q['activation']}, depth {q['depth']}, width {q['width']}",
+                   recommend_verdict(data))
+    doc.warnings([data["advice"]])
+    doc.paragraph(f"Question: {q['activation']}, {q['family']} stack, depth {q['depth']}, width "
+                  f"{q['width']}, target std ln s {q['target_spread']:.4g}"
+                  + (f", sigma_b kept at {q['sigma_b']:g}" if q["sigma_b"] is not None else "")
+                  + f". Every candidate was measured with {q['draws']} draw(s) at seed {q['seed']}: "
+                  "fewer draws than a full analysis, so the measured spread is indicative.")
+    rows = []
+    for c in [data["recommended"], *data["alternatives"]]:
+        m = c["measured"] or {}
+        rows.append((c["role"], c["weights"], c["sigma_w"], c["sigma_b"], c["alpha"],
+                     c["predicted"]["log_s_std"], m.get("log_s_std"), m.get("isometry"), m.get("verdict")))
+    doc.table(["candidate", "weights", "sigma_w", "sigma_b", "alpha", "predicted std ln s",
+               "measured std ln s", "isometry", "verdict"], rows,
+              caption="first row: the recommendation; prediction (N -> infinity) and measurement side by side")
+    doc.heading("why")
+    for sentence in data["reason"]:
+        doc.paragraph(sentence)
+    if data["alternatives"]:
+        doc.heading("why the others lost", level=3)
+        for c in data["alternatives"]:
+            doc.paragraph(c["why"])
+    if "cdf" in overlays:
+        doc.figure(overlays["cdf"], "every candidate on one axis: fraction of singular values <= s")
+    for (r, figs), c in zip(per_design, [rec.recommended, *rec.alternatives]):
+        doc.heading(f"{c.role}: {r['name']}")
+        doc.paragraph(verdict_sentence(r))
+        for key in ("log_s", "depth"):
+            if key in figs:
+                doc.figure(figs[key], f"{r['name']}: {_CAPTIONS[key]}")
+        doc.warnings(r["warnings"])
+    doc.code("recommended spec (recommended.toml)", _spec_text(rec.recommended.spec))
+    doc.facts("software and settings", _facts(data["environment"], {
+        "dtype": rec.recommended.spec.analysis.dtype, "seed": q["seed"], "draws": q["draws"]}))
+    return doc.render()

@@ -30,6 +30,7 @@ label (any text); the default output folder is derived from it by
 from __future__ import annotations
 
 import dataclasses
+import json
 import math
 import os
 import tomllib
@@ -40,7 +41,7 @@ from isoscope.activations import activation_names, get_activation
 from isoscope.errors import InputError
 from isoscope.initializers import initializer_names
 
-__all__ = ["Spec", "NetworkSpec", "InitSpec", "AnalysisSpec", "load_spec", "parse_spec",
+__all__ = ["Spec", "NetworkSpec", "InitSpec", "AnalysisSpec", "load_spec", "parse_spec", "spec_toml",
            "INPUT_KINDS", "DTYPES"]
 
 INPUT_KINDS = ("steady-state", "gaussian", "file")
@@ -281,3 +282,26 @@ def load_spec(path: str | Path) -> Spec:
         raise InputError(f"malformed TOML ({e})", expected="a TOML document", file=str(path),
                          hint="fix the syntax at the line and column named") from None
     return parse_spec(data, source=str(path))
+
+
+def _toml_value(v: Any) -> str:
+    if isinstance(v, bool):
+        return "true" if v else "false"
+    if isinstance(v, int):
+        return str(v)
+    if isinstance(v, float):
+        return repr(v)
+    # a TOML basic string: JSON's escapes (\" \\ \n \t \uXXXX ...) are all valid TOML escapes
+    return json.dumps(str(v), ensure_ascii=False)
+
+
+def spec_toml(spec: Spec) -> str:
+    """The resolved spec as TOML text that :func:`load_spec` reads back to an equal spec
+    (:meth:`Spec.to_dict`, every default filled in): top-level keys first, then one table per
+    section."""
+    d = spec.to_dict()
+    lines = [f"{k} = {_toml_value(v)}" for k, v in d.items() if not isinstance(v, dict)]
+    for section, values in d.items():
+        if isinstance(values, dict):
+            lines += ["", f"[{section}]"] + [f"{k} = {_toml_value(v)}" for k, v in values.items()]
+    return "\n".join(lines) + "\n"
