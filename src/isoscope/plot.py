@@ -1,7 +1,8 @@
 """All figures.  Matplotlib is imported lazily (``import isoscope`` stays light).
 
 Colour code (isoscope's own): measured data in slate teal, predictions in burnt orange, the
-isometry reference (s = 1) as a dashed charcoal line; designs in a comparison take the
+isometry reference (s = 1) as a dashed charcoal line, depths that are no longer isometric
+shaded in warm grey; designs in a comparison take the
 ``DESIGN_COLOURS`` cycle.  Every axis says whether it shows s or lambda = s^2.
 """
 
@@ -21,6 +22,7 @@ __all__ = ["log_s_figure", "lambda_figure", "comparison_figure", "depth_figure",
 MEASURED = "#2f6f73"
 PREDICTED = "#c4512b"
 REFERENCE = "#333333"
+SHADE = "#d9d4c7"   # depths at which the measured partial product is no longer isometric
 DESIGN_COLOURS = ("#2f6f73", "#c4512b", "#6b5b95", "#b8860b", "#3b7d3b", "#8c564b")
 
 
@@ -395,7 +397,7 @@ def depth_figure(profile, title: str, width: int):
     from isoscope.score import ISOMETRIC_SCORE
     plt = _pyplot()
     fig, axes = plt.subplots(3, 1, figsize=(9.5, 8.6), sharex=True, layout="constrained")
-    depth = int(profile.layers[-1]) if len(profile.layers) else int(profile.depths[-1])
+    depth = int(profile.layers[-1])
     stop = _first_failing(profile.depths, profile.isometric_until)
     predicted_stop = _first_failing(profile.depths, profile.predicted_isometric_until)
     for ax in axes:
@@ -414,8 +416,6 @@ def depth_figure(profile, title: str, width: int):
     fig.suptitle(title)
     return fig
 
-
-SHADE = "#d9d4c7"   # the depths at which the measured partial product is no longer isometric
 
 
 def _first_failing(depths: np.ndarray, until: int | None) -> int | None:
