@@ -213,13 +213,69 @@ def test_predicted_law_masses_outside_a_range():
     assert law.mass_below(-5.0) == pytest.approx(0.5, abs=1e-12)
 
 
+def _hand_profile(measured_std, isometric_until, draws_std=np.nan):
+    """A DepthProfile of a 16-layer stack with hand-set numbers (no analysis behind it)."""
+    from isoscope.analysis import DepthProfile
+    depths, layers = np.array([1, 4, 16]), np.arange(1, 17)
+    return DepthProfile(depths, measured_std, np.array([0.1, 0.2, 0.4]), np.full(3, -0.1),
+                        np.full(3, -0.1), np.array([0.9, 0.85, 0.5]), np.array([0.9, 0.7, 0.5]),
+                        isometric_until, 1, layers, np.full(16, 0.5), np.full(16, draws_std),
+                        np.full(16, 0.5), np.full(16, 0.98), np.full(16, 0.97))
+
+
 def test_depth_figure_with_no_measured_spread_says_so_without_warnings():
     # every partial product numerically zero (tanh, sigma_w = 1e-10): the measured spreads are
     # all NaN.  Before: numpy's "All-NaN slice" RuntimeWarning and an empty axis
     with warnings.catch_warnings():
         warnings.simplefilter("error")
-        fig = plot.depth_figure(np.array([1, 4, 16]), np.full(3, np.nan), np.array([0.1, 0.2, 0.4]),
-                                "all zero", 16)
-    texts = [t.get_text() for t in fig.axes[0].texts]
+        fig = plot.depth_figure(_hand_profile(np.full(3, np.nan), None), "all zero", 16)
+    texts = [t.get_text() for t in fig.axes[2].texts]
     assert any("no measured spread" in s for s in texts), texts
+    labels = " ".join(t.get_text() for t in fig.axes[2].get_legend().get_texts())
+    assert "measured: not isometric even at l = 1" in labels, labels
+    # one draw: no band across draws, and the legend says why
+    labels = " ".join(t.get_text() for t in fig.axes[0].get_legend().get_texts())
+    assert "one draw" in labels
     plot._pyplot().close(fig)
+
+
+def test_depth_figure_marks_where_the_stack_stops_being_isometric():
+    # measured scores 0.9, 0.85, 0.5 at l = 1, 4, 16: isometric up to l = 4, not from 16 on;
+    # predicted 0.9, 0.7, 0.5: from l = 4 on
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        fig = plot.depth_figure(_hand_profile(np.array([0.1, 0.2, 0.4]), 4, 0.01), "half", 16)
+    labels = " ".join(t.get_text() for t in fig.axes[2].get_legend().get_texts())
+    assert "measured isometry score < 0.8 from l = 16" in labels, labels
+    assert "predicted score < 0.8 from l = 4" in labels, labels
+    for ax in fig.axes:
+        shaded = [p for p in ax.patches if p.get_x() == 16]     # axvspan from l = 16
+        assert shaded, "the non-isometric depths are not shaded"
+        assert ax.get_xscale() == "log" and ax.get_xlim()[0] < 1 and ax.get_xlim()[1] > 16
+        _legend_outside(fig, ax)
+    # panel (b): a gain flat near 1 is drawn on an axis at least 10% of its level wide
+    y0, y1 = fig.axes[1].get_ylim()
+    assert y1 - y0 >= 0.1 * 0.97 - 1e-12 and y0 <= 0.97 and y1 >= 1.0
+    plot._pyplot().close(fig)
+
+
+def test_depth_figure_of_real_designs_shows_the_per_layer_numbers(drawn):
+    for name in ("tanh-gaussian-3", "relu-orthogonal", "linear-orthogonal"):
+        a, figs = drawn[name]
+        fig, pr = figs["spread-by-depth"], a.profile
+        assert len(fig.axes) == 3
+        lines = {ln.get_label(): ln for ln in fig.axes[0].get_lines()}
+        got = lines["measured |h^l|^2 / N, mean of draws"].get_ydata()
+        assert np.array_equal(got, pr.measured_q)
+        lines = {ln.get_label(): ln for ln in fig.axes[1].get_lines()}
+        assert np.array_equal(lines["mean field (N -> infinity)"].get_ydata(), pr.predicted_layer_gain)
+        ticks = [int(t) for t in fig.axes[2].get_xticks()]
+        assert ticks == [int(d) for d in pr.depths]
+    # tanh at sigma_w = 3 (chaotic): the per-layer gain chi_1 is far above 1, no depth is isometric
+    a, figs = drawn["tanh-gaussian-3"]
+    labels = " ".join(t.get_text() for t in figs["spread-by-depth"].axes[2].get_legend().get_texts())
+    assert "not isometric even at l = 1" in labels
+    # an orthogonal linear stack is isometric at every depth (every s = 1)
+    a, figs = drawn["linear-orthogonal"]
+    labels = " ".join(t.get_text() for t in figs["spread-by-depth"].axes[2].get_legend().get_texts())
+    assert "measured: isometric (score >= 0.8) at every profiled depth" in labels

@@ -26,16 +26,17 @@ from isoscope import jacobian as jac
 from isoscope.activations import Activation, get_activation
 from isoscope.errors import InputError, TheoryError
 from isoscope.network import Network, plain_stack, residual_stack
-from isoscope.score import (Agreement, Score, agreement, censored_log_stats, judged_gain,
-                            non_finite_score, outlier_counts, score_spectrum, split_outliers)
+from isoscope.score import (ISOMETRIC_SCORE, Agreement, Score, agreement, censored_log_stats,
+                            isometry_of_logs, judged_gain, non_finite_score, outlier_counts,
+                            predicted_isometry, score_spectrum, split_outliers)
 from isoscope.spec import Spec
 from isoscope.spectrum import Spectrum, from_singular_values, zero_threshold
-from isoscope.theory import mean_field
+from isoscope.theory import free_probability, mean_field
 from isoscope.threads import limited_blas
 from isoscope.theory.predict import Prediction, predict
 
 __all__ = ["Analysis", "DepthProfile", "InputPlan", "analyze", "build_network", "depth_profile",
-           "profile_predictions",
+           "profile_predictions", "layer_predictions", "isometric_until",
            "plan_inputs", "predict_spec", "prediction_for", "profile_depths", "seed_key",
            "spec_activation"]
 
@@ -63,16 +64,30 @@ class InputPlan:
 
 @dataclasses.dataclass(frozen=True)
 class DepthProfile:
-    """Spread of the spectrum against depth: the first draw's partial Jacobians ``J_l ... J_1``
-    beside the prediction for a stack of depth l.
+    """Where along the stack a design stops being isometric: every layer on its own, and the
+    partial Jacobians ``J_l ... J_1`` at the profile depths, measured beside the prediction.
 
     Attributes:
-      depths: layer counts l (shape ``(k,)``).
-      measured_log_s_std, predicted_log_s_std: std of ln s above the SVD floor of each depth.
+      depths: profile depths l (shape ``(k,)``, :func:`profile_depths`).
+      measured_log_s_std, predicted_log_s_std: std of ln s of ``J_l ... J_1`` (first draw)
+        above the SVD floor of each depth, and of the law of a stack of depth l.
       measured_log_m1, predicted_log_m1: ``ln E[lambda]`` (measured in logs, so finite even
         where lambda itself leaves the dtype's range).
+      measured_isometry, predicted_isometry: isometry score ``E[exp(-|ln lambda|)]`` of
+        ``J_l ... J_1`` (first draw, outliers set apart) and of the law at depth l.
+      isometric_until, predicted_isometric_until: the largest profile depth up to which every
+        profiled partial product scores at least ``score.ISOMETRIC_SCORE``; ``None`` when the
+        first does not.
+      layers: 1..L (shape ``(L,)``).
+      measured_q, measured_q_draw_std: ``q^l = |h^l|^2/N``, mean over draws and its standard
+        deviation across draws (NaN for one draw).
+      predicted_q: the mean-field trajectory q^l from the input mean square.
+      measured_layer_gain: ``g^l = ||J_l||_F^2/N``, mean over draws
+        (:func:`~isoscope.jacobian.layer_statistics`).
+      predicted_layer_gain: its mean-field value, ``chi^l = sigma_w^2 E[phi'(h)^2]`` at q^l
+        (plain) or ``1 + alpha^2 sigma_w^2 E[phi'(h)^2]`` (residual).
       Entries with no finite answer (an exactly zero product, fewer than two singular values
-      above the floor, a moment theory cannot represent) are NaN.
+      above the floor, a moment theory cannot represent, an overflowed layer) are NaN.
     """
 
     depths: np.ndarray
@@ -80,6 +95,16 @@ class DepthProfile:
     predicted_log_s_std: np.ndarray
     measured_log_m1: np.ndarray
     predicted_log_m1: np.ndarray
+    measured_isometry: np.ndarray
+    predicted_isometry: np.ndarray
+    isometric_until: int | None
+    predicted_isometric_until: int | None
+    layers: np.ndarray
+    measured_q: np.ndarray
+    measured_q_draw_std: np.ndarray
+    predicted_q: np.ndarray
+    measured_layer_gain: np.ndarray
+    predicted_layer_gain: np.ndarray
 
 
 @dataclasses.dataclass(frozen=True)
@@ -357,31 +382,81 @@ def profile_predictions(spec: Spec, plan: InputPlan, depths: np.ndarray,
     return out
 
 
-def depth_profile(spec: Spec, partial: jac.PartialSpectra,
-                  predictions: dict[int, Prediction]) -> DepthProfile:
-    """Measured and predicted spread at the depths of ``partial`` (:func:`profile_depths`).
+def layer_predictions(spec: Spec, predicted: Prediction) -> tuple[np.ndarray, np.ndarray]:
+    """``(q^l, gain^l)`` of every layer l = 1..L at infinite width.
 
-    Measured: singular values of ``J_l ... J_1`` for one draw, kept by the Jacobian pass
-    itself (:func:`~isoscope.jacobian.profiled_jacobian`), so they are right in ``ln s``
-    even where the product leaves the dtype's range; std of ln s above the SVD floor
-    ``s > n eps s_max`` and ``ln m1``.  Predicted: ``predictions[l]``
-    (:func:`profile_predictions`); std of ln s of the law restricted to the same floor
-    (Pennington, Schoenholz & Ganguli 2017, sec. 3, for the law).  Outliers the bulk law does
-    not describe (a residual stack's mean mode, a plain stack's input-length direction) are
-    left out as in :func:`~isoscope.score.split_outliers`.  A value with no finite answer
-    (a product that is exactly zero, a moment theory cannot represent) is NaN.
+    ``q^l`` is the mean-field trajectory the prediction was built from
+    (``Prediction.q_layers``: :func:`~isoscope.theory.mean_field.q_trajectory` from the
+    input mean square, constant q* for steady-state inputs).  The per-layer gain, the mean
+    squared singular value of layer l's Jacobian, is ``chi^l = sigma_w^2 E[phi'(h)^2]``,
+    ``h ~ N(0, q^l)``, for a plain stack (Poole et al. 2016, sec. 3; Schoenholz et al. 2017:
+    chi_1 at q*), and ``1 + alpha^2 sigma_w^2 E[phi'(h)^2]`` for a residual block, the mean of
+    ``(1/N)||I + alpha D W||_F^2`` (the cross term ``2 alpha tr(D W)/N`` has mean 0 over the
+    weights); its excess ``s_l`` over 1 sums to the residual law's tau (Tarnowski et al.
+    2019).  Pure (the design only), so :func:`analyze` runs it beside the measurement.
     """
-    m_std, m_m1, p_std, p_m1 = [], [], [], []
+    i, n = spec.init, spec.network
+    q = np.asarray(predicted.q_layers, dtype=float)
+    branch = i.sigma_w * i.sigma_w * free_probability.derivative_means(spec_activation(spec), q)
+    return q, (branch if n.family == "plain" else 1.0 + n.alpha * n.alpha * branch)
+
+
+def isometric_until(depths: np.ndarray, scores: np.ndarray) -> int | None:
+    """The largest of ``depths`` up to which every score is at least ``ISOMETRIC_SCORE``
+    (``None`` when the first is not; a NaN score is not isometric)."""
+    ok = np.asarray(scores, dtype=float) >= ISOMETRIC_SCORE
+    count = ok.size if ok.all() else int(np.argmin(ok))
+    return int(depths[count - 1]) if count > 0 else None
+
+
+def depth_profile(spec: Spec, partial: jac.PartialSpectra, predictions: dict[int, Prediction],
+                  layers: list[jac.LayerStatistics],
+                  predicted_layers: tuple[np.ndarray, np.ndarray]) -> DepthProfile:
+    """The per-layer view and the spread at the depths of ``partial`` (:func:`profile_depths`).
+
+    Partial products, measured: singular values of ``J_l ... J_1`` for one draw, kept by the
+    Jacobian pass itself (:func:`~isoscope.jacobian.profiled_jacobian`), so they are right in
+    ``ln s`` even where the product leaves the dtype's range; std of ln s above the SVD floor
+    ``s > n eps s_max``, ``ln m1`` and the isometry score ``E[exp(-|2 ln s|)]``
+    (:func:`~isoscope.score.isometry_of_logs`).  Predicted: ``predictions[l]``
+    (:func:`profile_predictions`); std of ln s of the law restricted to the same floor
+    (Pennington, Schoenholz & Ganguli 2017, sec. 3, for the law) and the law's isometry score
+    (:func:`~isoscope.score.predicted_isometry`).  Outliers the bulk law does not describe (a
+    residual stack's mean mode, a plain stack's input-length direction) are left out as in
+    :func:`~isoscope.score.split_outliers`.  A value with no finite answer (a product that is
+    exactly zero, a moment theory cannot represent) is NaN.
+
+    Layers: ``layers`` holds every draw's :class:`~isoscope.jacobian.LayerStatistics`
+    (pooled: mean over draws, and the spread of q^l across draws), ``predicted_layers`` the
+    output of :func:`layer_predictions`.
+    """
+    m_std, m_m1, m_iso, p_std, p_m1, p_iso = [], [], [], [], [], []
     for d, row in zip(partial.depths, partial.log_s):
         p = predictions[int(d)]
         top, bottom = outlier_counts(p)
-        floor, std, log_m1 = _measured_row(row[top:row.size - bottom], spec.analysis.dtype)
+        bulk = row[top:row.size - bottom]
+        floor, std, log_m1 = _measured_row(bulk, spec.analysis.dtype)
         m_std.append(std)
         m_m1.append(log_m1)
+        m_iso.append(isometry_of_logs(2.0 * bulk))
         p_std.append(censored_log_stats(p.density, 2.0 * floor)[1] / 2.0)
         p_m1.append(p.moments.log_m1 if math.isfinite(p.moments.log_m1) else math.nan)
-    return DepthProfile(np.asarray(partial.depths), np.array(m_std), np.array(p_std),
-                        np.array(m_m1), np.array(p_m1))
+        p_iso.append(predicted_isometry(p.density))
+    depths = np.asarray(partial.depths)
+    q = np.stack([s.q for s in layers])
+    gain = np.stack([s.gain for s in layers])
+    with np.errstate(invalid="ignore"):     # an overflowed layer gives NaN, not a warning
+        q_std = q.std(axis=0) if q.shape[0] > 1 else np.full(q.shape[1], math.nan)
+    return DepthProfile(depths, np.array(m_std), np.array(p_std), np.array(m_m1), np.array(p_m1),
+                        np.array(m_iso), np.array(p_iso), isometric_until(depths, m_iso),
+                        isometric_until(depths, p_iso), np.arange(1, q.shape[1] + 1),
+                        q.mean(axis=0), q_std, predicted_layers[0], gain.mean(axis=0),
+                        predicted_layers[1])
+
+
+def _profile_theory(spec: Spec, plan: InputPlan, depths: np.ndarray, predicted: Prediction):
+    """The profile's predictions: :func:`profile_predictions` and :func:`layer_predictions`."""
+    return profile_predictions(spec, plan, depths, predicted), layer_predictions(spec, predicted)
 
 
 def analyze(spec: Spec, progress: Callable[[int, int], None] | None = None) -> Analysis:
@@ -405,8 +480,9 @@ def analyze(spec: Spec, progress: Callable[[int, int], None] | None = None) -> A
     estimate is judged by the robust statistic (:func:`~isoscope.score.judged_gain`).
 
     ``seconds`` holds the wall time of each stage: sampling (parameters and input), jacobian,
-    svd, theory, profile (the partial products' SVDs and the shallower predictions; the first
-    draw's own singular values come from that SVD) and total.  BLAS/LAPACK runs under the
+    svd, theory, profile (the per-layer statistics of every draw, the partial products' SVDs
+    and the shallower predictions; the first draw's own singular values come from that SVD)
+    and total.  BLAS/LAPACK runs under the
     thread policy of :func:`isoscope.threads.thread_policy` for the whole analysis.
     """
     with limited_blas():
@@ -430,7 +506,7 @@ def _analyze(spec: Spec, progress: Callable[[int, int], None] | None) -> Analysi
     # the profile's shallower predictions depend on the design only: solve them on a worker
     # thread while the draws run (the solver is NumPy; XLA and LAPACK release the GIL)
     pool = futures.ThreadPoolExecutor(max_workers=1, thread_name_prefix="isoscope-profile")
-    pending = (pool.submit(profile_predictions, spec, plan, depths, predicted)
+    pending = (pool.submit(_profile_theory, spec, plan, depths, predicted)
                if depths is not None else None)
     try:
         return _measure(spec, network, dtype, plan, file_inputs, warnings + notes, predicted,
@@ -444,7 +520,7 @@ def _measure(spec, network, dtype, plan, file_inputs, warnings, predicted, depth
     """The draws, the score, the agreement and the profile (the second half of analyze)."""
     root = seed_key(spec.analysis.seed)
     total = spec.analysis.inputs
-    singular, fault, partial = [], None, None
+    singular, fault, partial, layers = [], None, None, []
     for i in range(total):
         t = time.perf_counter()
         k_params, k_input = jax.random.split(jax.random.fold_in(root, i))
@@ -453,6 +529,10 @@ def _measure(spec, network, dtype, plan, file_inputs, warnings, predicted, depth
              else _draw_input(plan, network, k_input, dtype))
         jax.block_until_ready((params, x))
         seconds["sampling"] += time.perf_counter() - t
+        if depths is not None:
+            t = time.perf_counter()
+            layers.append(jac.layer_statistics(network, params, x))
+            seconds["profile"] += time.perf_counter() - t
         t = time.perf_counter()
         profiled = (jac.profiled_jacobian(network, params, x, depths)
                     if i == 0 and depths is not None else None)
@@ -493,7 +573,8 @@ def _measure(spec, network, dtype, plan, file_inputs, warnings, predicted, depth
         if partial is not None:
             t = time.perf_counter()
             try:
-                profile = depth_profile(spec, partial, pending.result())
+                predictions, predicted_layers = pending.result()
+                profile = depth_profile(spec, partial, predictions, layers, predicted_layers)
             except TheoryError as e:
                 warnings += (f"no depth profile: {e}",)
             seconds["profile"] += time.perf_counter() - t

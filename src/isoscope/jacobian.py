@@ -11,6 +11,9 @@ Routes (each a pure function of ``(network, params, x)``):
 * :func:`profiled_jacobian` -- J by one forward-mode scan that also keeps the partial
   products ``J_l ... J_1`` at chosen depths (the depth profile at no extra pass), and
   :func:`partial_spectra`, their singular values.
+* :func:`layer_statistics` -- per layer l, the mean square ``|h^l|^2/N`` of the
+  pre-activations and the gain ``||J_l||_F^2 / N`` of that layer's own Jacobian, in closed form
+  from one forward trace (no Jacobian is formed).
 * :func:`qr_log_singular_values` -- log singular values of very deep products by QR
   accumulation (Benettin et al. 1980): ``Q_t R_t = qr(J_t Q_{t-1})``, ``ln s ~ sum_t ln|diag R_t|``,
   which never forms J and so never over- or underflows.
@@ -33,7 +36,7 @@ from isoscope.network import Network
 
 __all__ = ["dense_jacobian", "layer_product", "qr_log_singular_values", "forward_fault",
            "jacobian_fault", "Fault", "trace_count", "ProfiledJacobian", "profiled_jacobian",
-           "PartialSpectra", "partial_spectra"]
+           "PartialSpectra", "partial_spectra", "LayerStatistics", "layer_statistics"]
 
 _TRACES = {"count": 0}
 
@@ -278,6 +281,62 @@ def partial_spectra(profiled: ProfiledJacobian) -> PartialSpectra:
     """
     s = np.asarray(_batched_svd()(profiled.mantissas))
     return PartialSpectra(profiled.depths, s, np.asarray(profiled.exponents, dtype=np.int64))
+
+
+class LayerStatistics(NamedTuple):
+    """Per-layer numbers of one draw of a built-in stack (arrays of shape ``(L,)``, float64).
+
+    Attributes:
+      q: ``q^l = |h^l|^2 / N``, the mean square of layer l's pre-activations.
+      gain: ``g^l = ||J_l||_F^2 / N``, the mean squared singular value of layer l's Jacobian.
+    """
+
+    q: np.ndarray
+    gain: np.ndarray
+
+
+@functools.lru_cache(maxsize=None)
+def _compiled_statistics(trace, family: str, activation):
+    def run(params, x):
+        _, h = trace(params, x)
+        n = h.shape[-1]
+        d = activation.derivative(h)                        # phi'(h^l_i), shape (L, N)
+        rows = jnp.sum(params["W"] ** 2, axis=-1)           # |W^l_{i,:}|^2
+        branch = jnp.sum(d * d * rows, axis=-1) / n         # ||D W||_F^2 / N
+        if family == "plain":
+            gain = branch
+        else:
+            a = params["alpha"]
+            trace_dw = jnp.sum(d * jnp.diagonal(params["W"], axis1=-2, axis2=-1), axis=-1)
+            gain = 1.0 + 2.0 * a * trace_dw / n + a * a * branch
+        return jnp.sum(h * h, axis=-1) / n, gain
+
+    return jax.jit(run)
+
+
+def layer_statistics(network: Network, params, x: jax.Array) -> LayerStatistics:
+    """``q^l`` and the per-layer gain ``g^l`` of a built-in stack at ``(params, x)``, exactly.
+
+    One forward trace gives ``h^l`` (:attr:`~isoscope.network.Network.trace`); the gains follow
+    without any matrix product or SVD.  With ``D^l = diag(phi'(h^l))`` (phi' by ``jax.grad``, as
+    in the Jacobian itself):
+
+    * plain, ``J_l = D^l W^l``:
+      ``g^l = (1/N) ||D W||_F^2 = (1/N) sum_i phi'(h^l_i)^2 |W^l_{i,:}|^2``;
+    * residual, ``J_l = I + alpha D^l W^l``:
+      ``g^l = (1/N) ||I + alpha D W||_F^2 = 1 + 2 alpha tr(D W)/N + alpha^2 ||D W||_F^2/N``
+      with ``tr(D W) = sum_i phi'(h^l_i) W^l_{ii}``.
+
+    ``g^l`` is the mean of ``lambda = s^2`` over layer l's own singular values
+    (``||A||_F^2 = sum_i s_i^2``), the measured counterpart of ``chi^l = sigma_w^2 E[phi'(h)^2]``
+    (Poole et al. 2016, sec. 3).  Computed in the working dtype, returned as float64; a layer
+    whose forward pass overflowed gives non-finite entries.  Compiled once per (family,
+    activation, width, depth, dtype).
+    """
+    if network.trace is None or network.family not in ("plain", "residual"):
+        raise ValueError("layer_statistics needs a built-in stack (plain or residual)")
+    q, g = _compiled_statistics(network.trace, network.family, network.activation)(params, x)
+    return LayerStatistics(np.asarray(q, dtype=np.float64), np.asarray(g, dtype=np.float64))
 
 
 @functools.lru_cache(maxsize=None)

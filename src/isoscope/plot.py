@@ -1,7 +1,8 @@
 """All figures.  Matplotlib is imported lazily (``import isoscope`` stays light).
 
 Colour code (isoscope's own): measured data in slate teal, predictions in burnt orange, the
-isometry reference (s = 1) as a dashed charcoal line; designs in a comparison take the
+isometry reference (s = 1) as a dashed charcoal line, depths that are no longer isometric
+shaded in warm grey; designs in a comparison take the
 ``DESIGN_COLOURS`` cycle.  Every axis says whether it shows s or lambda = s^2.
 """
 
@@ -21,6 +22,7 @@ __all__ = ["log_s_figure", "lambda_figure", "comparison_figure", "cdf_overlay_fi
 MEASURED = "#2f6f73"
 PREDICTED = "#c4512b"
 REFERENCE = "#333333"
+SHADE = "#d9d4c7"   # depths at which the measured partial product is no longer isometric
 DESIGN_COLOURS = ("#2f6f73", "#c4512b", "#6b5b95", "#b8860b", "#3b7d3b", "#8c564b")
 
 
@@ -371,27 +373,157 @@ def comparison_figure(spectra: dict[str, Spectrum], title: str):
     return fig
 
 
-def depth_figure(depths: np.ndarray, measured: np.ndarray, predicted: np.ndarray, title: str,
-                 width: int):
-    """Spread (std of ln s) against depth: measured partial Jacobians and the prediction."""
+def depth_figure(profile, title: str, width: int):
+    """Where along the stack a design stops being isometric: three panels on one depth axis.
+
+    (a) the pre-activation mean square ``q^l = |h^l|^2/N`` of every layer, measured (mean over
+    draws, a band of one standard deviation across draws) against the mean-field trajectory;
+    (b) every layer's own gain ``||J_l||_F^2/N`` against its mean-field value (``chi^l`` for a
+    plain stack, ``1 + alpha^2 sigma_w^2 E[phi'^2]`` for a residual one), with the line at 1;
+    (c) the cumulative spread, std of ln s of ``J_l ... J_1`` at the profile depths, measured
+    (first draw) against predicted.  From the first profile depth whose measured partial
+    product scores below ``score.ISOMETRIC_SCORE`` on, every panel is shaded; the predicted
+    counterpart is a dotted line (a design that is not isometric even at the first depth gets
+    a note instead).  The depth axis is logarithmic, ticked at the profile depths; a y axis is
+    logarithmic where its values span more than a factor of 20, and a linear one spans at
+    least 10% of its level (a gain flat at 1 to 1e-4 is not blown up into noise).  Legends
+    and notes sit outside the axes.
+
+    Args:
+      profile: an :class:`isoscope.analysis.DepthProfile`.
+      title: the figure's title.
+      width: N, for the legend.
+    """
+    from isoscope.score import ISOMETRIC_SCORE
     plt = _pyplot()
-    fig, ax = plt.subplots(figsize=(7.0, 4.0), layout="constrained")
-    ax.plot(depths, predicted, color=PREDICTED, lw=2.0, label="predicted (N -> infinity)")
-    ax.plot(depths, measured, "o", color=MEASURED, ms=6, label=f"measured (width {width}, one draw)")
-    ax.set_xscale("log")
-    both = np.concatenate([measured, predicted])
-    shown = both[np.isfinite(both) & (both > 0)]
-    if shown.size and shown.max() > 20 * max(shown.min(), 1e-12):
+    fig, axes = plt.subplots(3, 1, figsize=(9.5, 8.6), sharex=True, layout="constrained")
+    depth = int(profile.layers[-1])
+    stop = _first_failing(profile.depths, profile.isometric_until)
+    predicted_stop = _first_failing(profile.depths, profile.predicted_isometric_until)
+    for ax in axes:
+        if stop is not None and stop > profile.depths[0]:
+            ax.axvspan(stop, depth * 1.25, color=SHADE, alpha=0.5, lw=0)
+        if predicted_stop is not None and predicted_stop > profile.depths[0]:
+            ax.axvline(predicted_stop, color=PREDICTED, ls=":", lw=1.5)
+    _q_panel(axes[0], profile)
+    _gain_panel(axes[1], profile)
+    _spread_panel(axes[2], profile, width, stop, predicted_stop, ISOMETRIC_SCORE)
+    axes[-1].set_xscale("log")
+    axes[-1].set_xticks([int(d) for d in profile.depths], [str(int(d)) for d in profile.depths])
+    axes[-1].minorticks_off()
+    axes[-1].set_xlim(0.8, depth * 1.25)
+    axes[-1].set_xlabel("layer l   (panel c: the partial Jacobian J_l ... J_1 of the first l layers)")
+    fig.suptitle(title)
+    return fig
+
+
+
+def _first_failing(depths: np.ndarray, until: int | None) -> int | None:
+    """The first profile depth past ``until`` (the first depth when ``until`` is None; None
+    when every profiled depth is isometric)."""
+    if until is None:
+        return int(depths[0])
+    later = [int(d) for d in depths if d > until]
+    return later[0] if later else None
+
+
+def _log_if_spread(ax, values: np.ndarray, factor: float = 20.0) -> bool:
+    """A logarithmic y axis when the positive finite ``values`` span more than ``factor``."""
+    v = np.asarray(values, dtype=float)
+    v = v[np.isfinite(v) & (v > 0)]
+    if v.size and v.max() > factor * v.min():
         ax.set_yscale("log")
+        return True
+    return False
+
+
+def _at_least_span(ax, share: float = 0.1) -> None:
+    """Widen a linear y axis to at least ``share`` of its level around its centre."""
+    if ax.get_yscale() != "linear":
+        return
+    lo, hi = ax.get_ylim()
+    mid = 0.5 * (lo + hi)
+    if hi - lo < share * abs(mid):
+        ax.set_ylim(mid - 0.5 * share * abs(mid), mid + 0.5 * share * abs(mid))
+    ax.ticklabel_format(axis="y", useOffset=False)
+
+
+def _layer_style(count: int) -> dict:
+    """Measured per-layer values: a line, with small markers while layers can be told apart."""
+    return {"marker": "o", "ms": 3} if count <= 100 else {}
+
+
+def _q_panel(ax, profile) -> None:
+    layers, q, spread = profile.layers, profile.measured_q, profile.measured_q_draw_std
+    log = _log_if_spread(ax, np.concatenate([q, profile.predicted_q]))
+    notes = []
+    if np.isfinite(spread).any():
+        lo, hi = q - spread, q + spread
+        if log:   # a band reaching 0 or below is cut at the axis' lower edge
+            lo = np.where(lo > 0, lo, np.nan)
+        ax.fill_between(layers, lo, hi, color=MEASURED, alpha=0.2, lw=0,
+                        label="measured, +-1 std across draws")
+    else:
+        notes.append("one draw: no spread across draws")
+    ax.plot(layers, q, color=MEASURED, lw=1.5, label="measured |h^l|^2 / N, mean of draws",
+            **_layer_style(layers.size))
+    ax.plot(layers, profile.predicted_q, color=PREDICTED, lw=2.0, ls="--",
+            label="mean field q^l (N -> infinity)")
+    _at_least_span(ax)
+    ax.set_ylabel("q^l")
+    ax.set_title("(a) pre-activation mean square of each layer", loc="left", fontsize=10)
+    _legend_outside(ax, notes)
+
+
+def _gain_panel(ax, profile) -> None:
+    layers, g = profile.layers, profile.measured_layer_gain
+    _log_if_spread(ax, np.concatenate([g, profile.predicted_layer_gain, [1.0]]))
+    ax.plot(layers, g, color=MEASURED, lw=1.5, label="measured ||J_l||_F^2 / N, mean of draws",
+            **_layer_style(layers.size))
+    ax.plot(layers, profile.predicted_layer_gain, color=PREDICTED, lw=2.0, ls="--",
+            label="mean field (N -> infinity)")
+    ax.axhline(1.0, color=REFERENCE, ls="--", lw=1.0, label="1 (the layer keeps lengths)")
+    _at_least_span(ax)
+    ax.set_ylabel("mean s^2 of J_l")
+    ax.set_title("(b) gain of each layer on its own", loc="left", fontsize=10)
+    _legend_outside(ax)
+
+
+def _spread_panel(ax, profile, width: int, stop: int | None, predicted_stop: int | None,
+                  threshold: float) -> None:
+    depths, measured, predicted = profile.depths, profile.measured_log_s_std, profile.predicted_log_s_std
+    _log_if_spread(ax, np.concatenate([measured, predicted]))
+    ax.plot(depths, predicted, color=PREDICTED, lw=2.0, label="predicted (N -> infinity)")
+    ax.plot(depths, measured, "o", color=MEASURED, ms=6, label=f"measured (width {width}, first draw)")
     if not np.isfinite(measured).any():
         ax.text(0.5, 0.5, "no measured spread: every partial product is numerically zero\n"
                 "or has fewer than two values above the SVD floor", transform=ax.transAxes,
                 ha="center", va="center", fontsize=9)
-    ax.set_xlabel("depth l (layers in the partial Jacobian J_l ... J_1)")
-    ax.set_ylabel("std of ln s above the SVD floor")
-    ax.set_title(title)
-    _legend_outside(ax)
-    return fig
+    first = int(depths[0])
+    if stop is not None and stop > first:
+        ax.fill_between([], [], color=SHADE, alpha=0.5,
+                        label=f"measured isometry score < {threshold:g} from l = {stop}")
+    if predicted_stop is not None and predicted_stop > first:
+        ax.plot([], [], color=PREDICTED, ls=":", lw=1.5,
+                label=f"predicted score < {threshold:g} from l = {predicted_stop}")
+    notes = []
+    for who, until, scores in (("measured", profile.isometric_until, profile.measured_isometry),
+                               ("predicted", profile.predicted_isometric_until,
+                                profile.predicted_isometry)):
+        if until == int(depths[-1]):
+            notes.append(f"{who}: isometric (score >= {threshold:g}) at every profiled depth")
+        elif until is None:
+            notes.append(f"{who}: not isometric even at l = {first} "
+                         f"(score {_score_text(scores[0])})")
+    notes.append(f"score of J_L ... J_1: measured {_score_text(profile.measured_isometry[-1])}, "
+                 f"predicted {_score_text(profile.predicted_isometry[-1])}")
+    ax.set_ylabel("std of ln s of J_l ... J_1")
+    ax.set_title("(c) spread of the first l layers together", loc="left", fontsize=10)
+    _legend_outside(ax, notes)
+
+
+def _score_text(v: float) -> str:
+    return f"{v:.3f}" if math.isfinite(v) else "none"
 
 
 def critical_figure(sigma_w2: np.ndarray, sigma_b2: np.ndarray, point: tuple[float, float],

@@ -67,7 +67,17 @@ GLOSSARY = {
     "agreement.atom_tolerance": "distance in ln lambda within which a measured value counts as sitting on a predicted atom (SVD and rounding resolution)",
     "score.gain_basis": "which m1 the verdict judged the gain by: the measured one, or the predicted one when the measured m1 cannot be estimated and the mean of ln s agrees with theory",
     "score.scored": "which singular values were scored: all, or the bulk without the outliers",
-    "profile": "std of ln s and ln m1 of the partial Jacobians J_l ... J_1 (one draw) against the prediction at depth l",
+    "profile": "where along the stack the design stops being isometric: per layer, and the partial Jacobians J_l ... J_1 at up to 8 depths, measured against the prediction",
+    "profile.depths": "the profile depths l at which the partial Jacobian J_l ... J_1 is kept (log-spaced, ending at L)",
+    "profile.measured_log_s_std, predicted_log_s_std": "std of ln s of J_l ... J_1 (first draw, above the SVD floor) and of the predicted law at depth l",
+    "profile.measured_log_m1, predicted_log_m1": "ln E[lambda] of J_l ... J_1 (first draw) and of the predicted law at depth l",
+    "profile.measured_isometry, predicted_isometry": "isometry score E[min(lambda, 1/lambda)] of J_l ... J_1 (first draw, outliers set apart) and of the predicted law at depth l",
+    "profile.isometric_until, predicted_isometric_until": "largest profile depth up to which every partial product scores >= 0.8 (null if the first does not)",
+    "profile.layers": "layer numbers 1..L of the per-layer arrays",
+    "profile.measured_q, measured_q_draw_std": "q^l = |h^l|^2/N, pre-activation mean square of layer l: mean over draws, and its standard deviation across draws",
+    "profile.predicted_q": "mean-field q^l, iterated from the input mean square (q* at every layer for steady-state inputs)",
+    "profile.measured_layer_gain": "g^l = ||J_l||_F^2/N, mean squared singular value of layer l's own Jacobian, mean over draws",
+    "profile.predicted_layer_gain": "mean field: sigma_w^2 E[phi'(h)^2] at q^l (plain; chi_1 at q*), 1 + alpha^2 sigma_w^2 E[phi'(h)^2] (residual)",
     "inputs.variance": "q* for steady-state inputs (h ~ N(0, q*)), the variance for Gaussian ones",
     "seconds": "wall-clock seconds per stage on this machine",
 }
@@ -177,7 +187,12 @@ def _profile_dict(p) -> dict[str, Any] | None:
         return None
     return {"depths": p.depths, "measured_log_s_std": p.measured_log_s_std,
             "predicted_log_s_std": p.predicted_log_s_std, "measured_log_m1": p.measured_log_m1,
-            "predicted_log_m1": p.predicted_log_m1}
+            "predicted_log_m1": p.predicted_log_m1, "measured_isometry": p.measured_isometry,
+            "predicted_isometry": p.predicted_isometry, "isometric_until": p.isometric_until,
+            "predicted_isometric_until": p.predicted_isometric_until, "layers": p.layers,
+            "measured_q": p.measured_q, "measured_q_draw_std": p.measured_q_draw_std,
+            "predicted_q": p.predicted_q, "measured_layer_gain": p.measured_layer_gain,
+            "predicted_layer_gain": p.predicted_layer_gain}
 
 
 def result_dict(analysis: Analysis) -> dict[str, Any]:
@@ -269,8 +284,8 @@ def _figures(analysis: Analysis, folder: Path, prefix: str = "") -> dict[str, Pa
     out["lambda"] = plot.save(fig, folder / f"{prefix}spectrum-lambda")[0]
     if analysis.profile is not None:
         pr = analysis.profile
-        fig = plot.depth_figure(pr.depths, pr.measured_log_s_std, pr.predicted_log_s_std,
-                                f"{name}: spread against depth", analysis.spectrum.size)
+        fig = plot.depth_figure(pr, f"{name}: where the stack stops being isometric, layer by layer",
+                                analysis.spectrum.size)
         out["depth"] = plot.save(fig, folder / f"{prefix}spread-by-depth")[0]
     n, i = analysis.spec.network, analysis.spec.init
     if n.family == "plain":

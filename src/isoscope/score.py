@@ -34,7 +34,8 @@ from isoscope.spectrum import Spectrum
 __all__ = ["Score", "score_spectrum", "VERDICTS", "GAIN_LIMIT", "ISOMETRIC_SCORE", "Agreement",
            "agreement", "ks_distance", "censored_log_stats", "KS_LIMIT", "Outlier",
            "split_outliers", "length_mode_side", "tail_share", "atom_tolerance", "snap_to_atoms",
-           "judged_gain", "non_finite_score", "outlier_counts"]
+           "judged_gain", "non_finite_score", "outlier_counts", "isometry_of_logs",
+           "predicted_isometry"]
 
 GAIN_LIMIT = 10.0      # convention, see module docstring
 ISOMETRIC_SCORE = 0.8  # convention, see module docstring
@@ -71,8 +72,10 @@ class Score(NamedTuple):
     scored: str = "all singular values"
 
 
-def _mean_closeness(log_lam: np.ndarray) -> float:
-    """``E[exp(-|ln lambda|)]`` with ``ln lambda = -inf`` (a zero) contributing 0."""
+def isometry_of_logs(log_lam: np.ndarray) -> float:
+    """The isometry score ``E[min(lambda, 1/lambda)] = E[exp(-|ln lambda|)]`` of a sample given
+    as ``ln lambda`` (formed in logs, so values beyond the dtype's range score right; a zero,
+    ``ln lambda = -inf``, contributes 0)."""
     return float(np.mean(np.exp(-np.abs(log_lam))))
 
 
@@ -95,8 +98,8 @@ def score_spectrum(spectrum: Spectrum, depth: int | None,
     """
     log_lam = 2.0 * spectrum.log_s.ravel()
     log_m1, log_m2 = spectrum.log_lambda_moment(1), spectrum.log_lambda_moment(2)
-    isometry = _mean_closeness(log_lam)
-    shape = _mean_closeness(log_lam - log_m1) if math.isfinite(log_m1) else 0.0
+    isometry = isometry_of_logs(log_lam)
+    shape = isometry_of_logs(log_lam - log_m1) if math.isfinite(log_m1) else 0.0
     per_layer = math.exp(log_m1 / depth) if depth and math.isfinite(log_m1) else (
         0.0 if depth else None)
     nvar = _exp(log_m2 - 2.0 * log_m1) - 1.0 if math.isfinite(log_m1) else math.nan
@@ -262,6 +265,26 @@ def censored_log_stats(density, floor_ell: float) -> tuple[float, float]:
         return math.nan, math.nan
     mean = part(1) / mass
     return mean, math.sqrt(max(part(2) / mass - mean * mean, 0.0))
+
+
+def predicted_isometry(density) -> float:
+    """The isometry score of a predicted law, ``E[exp(-|ln lambda|)]`` over its continuous
+    part and its atoms: ``(int rho_log(ell) e^(-|ell|) d ell + sum_a w_a e^(-|ln a|)) / mass``
+    with ``rho_log`` the density of ``ell = ln lambda`` (trapezoid on the solver's grid, 0
+    inserted as a node so the kink of ``|ell|`` is integrated exactly), the atom at zero
+    contributing 0 and ``mass`` the law's total (1 up to the grid's error).  NaN for an empty law.
+    """
+    e, r = np.asarray(density.log_x, dtype=float), np.asarray(density.rho_log, dtype=float)
+    grid = mass = 0.0
+    if e.size >= 2:
+        if e[0] < 0.0 < e[-1] and not np.any(e == 0.0):
+            at = int(np.searchsorted(e, 0.0))
+            e, r = np.insert(e, at, 0.0), np.insert(r, at, np.interp(0.0, e, r))
+        grid, mass = float(np.trapezoid(r * np.exp(-np.abs(e)), e)), float(np.trapezoid(r, e))
+    for la, w in _atom_log_locations(density):
+        grid += w * math.exp(-abs(la))
+        mass += w
+    return grid / mass if mass > 0 else math.nan
 
 
 def snap_to_atoms(sample_log_lam: np.ndarray, density, tol: float) -> np.ndarray:

@@ -43,13 +43,14 @@ from scipy import special
 
 from isoscope.activations import Activation, get_activation
 from isoscope.errors import SolverError, TheoryError
+from isoscope.theory import mean_field as mf
 from isoscope.theory.mean_field import _SOFT_BREAKS
 from isoscope.theory.quadrature import normal_rule
 
 __all__ = [
     "WEIGHT_KINDS", "DerivativeLaw", "derivative_law", "LambdaMoments", "moments_from_logs",
     "plain_moments", "NARROW_SPREAD",
-    "Density", "plain_density", "residual_tau", "residual_moments", "residual_edges",
+    "Density", "plain_density", "residual_tau", "derivative_means", "residual_moments", "residual_edges",
     "residual_density", "plain_limit_edges",
 ]
 
@@ -1445,13 +1446,45 @@ def residual_tau(activation: str | Activation, sigma_w: float, q_trajectory: Seq
                           f"received {qs.size} values with min {qs.min() if qs.size else None}")
     if not math.isfinite(alpha):
         raise TheoryError(f"alpha must be finite, received {alpha!r}")
+    return float(alpha * alpha * sigma * sigma * np.sum(derivative_means(act, qs)))
+
+
+def derivative_means(activation: str | Activation, q_trajectory: Sequence[float]) -> np.ndarray:
+    """``mu_1^l = E[phi'(h^l)^2]``, ``h^l ~ N(0, q^l)``, for every variance of a trajectory.
+
+    The per-layer factor of both families: a plain layer's mean squared singular value is
+    ``chi^l = sigma_w^2 mu_1^l`` (Poole et al. 2016, sec. 3; chi_1 at q = q*), a residual
+    block's branch contributes ``s_l = alpha^2 sigma_w^2 mu_1^l`` to tau (Tarnowski et al.
+    2019).  Piecewise-constant or kinked phi' take the first moment of
+    :func:`derivative_law` (exact atoms, or quadrature split at the kinks); smooth phi' one
+    vectorised Gauss rule over all layers.  Each distinct variance is evaluated once, and a
+    variance of exactly 0 takes the limit q -> 0+ (``phi'(0)^2`` away from kinks,
+    :func:`~isoscope.theory.mean_field.derivative_moments`).
+
+    Args:
+      activation: registry name or :class:`Activation`.
+      q_trajectory: variances ``q^1 .. q^L`` (each finite and >= 0).
+
+    Returns:
+      float64 array of shape ``(L,)``.
+    """
+    act = get_activation(activation)
+    qs = np.asarray(q_trajectory, dtype=float).reshape(-1)
+    if not np.all(np.isfinite(qs)) or np.any(qs < 0):
+        raise TheoryError(f"variances must be finite and >= 0, received min {qs.min()} and "
+                          f"max {qs.max()}" if qs.size else "no variances were given")
+    distinct, where = np.unique(qs, return_inverse=True)
+    positive = distinct[distinct > 0]
     if act.kinks or act.derivative_values is not None:
-        mu1 = np.array([derivative_law(act, q).moment(1) for q in qs])
+        mu1 = np.array([derivative_law(act, q).moment(1) for q in positive])
     else:
         dphi_sq = act.numpy_dphi_sq()
         z, w = normal_rule()
-        mu1 = np.asarray(dphi_sq((np.sqrt(qs)[:, None] * z).ravel())).reshape(qs.size, -1) @ w
-    return float(alpha * alpha * sigma * sigma * np.sum(mu1))
+        mu1 = (np.asarray(dphi_sq((np.sqrt(positive)[:, None] * z).ravel()))
+               .reshape(positive.size, z.size) @ w)
+    if distinct.size > positive.size:   # q = 0 sorts first
+        mu1 = np.concatenate([[mf.derivative_moments(act, 0.0, 1)[0]], mu1])
+    return np.asarray(mu1, dtype=float)[where.reshape(-1)]
 
 
 def residual_moments(tau: float) -> LambdaMoments:
