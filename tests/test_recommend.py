@@ -150,9 +150,9 @@ def _run(capsys, *argv):
     return code, out, err
 
 
-def test_recommend_tanh_plain_orthogonal_wins_by_measurement(capsys):
+def test_recommend_tanh_plain_orthogonal_wins_by_measurement(capsys, tmp_path):
     code, out, err = _run(capsys, "recommend", "--activation", "tanh", "--depth", "200",
-                          "--width", "256", "--json")
+                          "--width", "256", "--json", "--out", str(tmp_path / "rec"))
     assert code == 0, err
     r = json.loads(out)
     assert r["schema"] == "isoscope.recommendation/1"
@@ -165,8 +165,14 @@ def test_recommend_tanh_plain_orthogonal_wins_by_measurement(capsys):
     assert r["measured"]["log_s_std"] == best["measured"]["log_s_std"]
     assert r["predicted"]["log_s_std"] == best["predicted"]["log_s_std"]
     assert "initialization only" in r["advice"] and r["reason"]
-    # the recommended spec is a full spec that analyze accepts
+    # the recommended spec is a full spec that analyze accepts, also as the file written
     assert parse_spec(best["spec"]).init.sigma_w == best["sigma_w"]
+    from isoscope.spec import load_spec
+    written = tmp_path / "rec"
+    assert load_spec(written / "recommended.toml").to_dict() == parse_spec(best["spec"]).to_dict()
+    assert json.loads((written / "recommendation.json").read_text()) == r
+    assert (written / "report.html").is_file()
+    assert len([p for p in written.iterdir() if p.is_dir()]) == 1 + len(r["alternatives"])
 
 
 def test_recommend_relu_says_no_plain_setting_and_goes_residual(capsys):

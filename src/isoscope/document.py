@@ -32,7 +32,7 @@ figure{margin:1rem 0}figure img{max-width:100%;height:auto;border:1px solid var(
 figcaption{color:var(--muted);font-size:.88rem;margin-top:.25rem}
 table{border-collapse:collapse;margin:.6rem 0 1rem;font-size:.9rem}
 th,td{padding:.28rem .65rem;border-bottom:1px solid var(--rule);text-align:right;vertical-align:top}
-th{background:var(--wash)}th:first-child,td:first-child{text-align:left}
+th{background:var(--wash)}th:first-child,td:first-child,td.t{text-align:left}
 caption{caption-side:top;text-align:left;color:var(--muted);font-size:.88rem;padding-bottom:.25rem}
 .warn{border-left:5px solid var(--warn);background:#fbf1ec;padding:.45rem .9rem;margin:.4rem 0}
 pre{background:var(--wash);padding:.7rem 1rem;overflow-x:auto;font-size:.85rem;border:1px solid var(--rule)}
@@ -53,6 +53,11 @@ def cell(v: Any) -> str:
     if isinstance(v, float):
         return f"{v:.4g}" if math.isfinite(v) else "\u2014"
     return html.escape(str(v), quote=True)
+
+
+def _align(v: Any) -> str:
+    """Text cells align left, numbers (and null) right."""
+    return "" if v is None or isinstance(v, (int, float)) else " class='t'"
 
 
 def _e(text: Any) -> str:
@@ -95,7 +100,8 @@ class Document:
         """A table; each value through :func:`cell`."""
         cap = f"<caption>{_e(caption)}</caption>" if caption else ""
         head = "".join(f"<th>{_e(h)}</th>" for h in header)
-        body = "".join("<tr>" + "".join(f"<td>{cell(v)}</td>" for v in row) + "</tr>" for row in rows)
+        body = "".join("<tr>" + "".join(f"<td{_align(v)}>{cell(v)}</td>" for v in row) + "</tr>"
+                       for row in rows)
         self._parts.append(f"<table>{cap}<thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>")
         return self
 

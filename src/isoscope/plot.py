@@ -563,7 +563,7 @@ def cdf_overlay_figure(spectra: dict[str, Spectrum], title: str):
     ``DESIGN_COLOURS`` and each line also has its own dash pattern, so the figure reads in grey.
     """
     plt = _pyplot()
-    fig, ax = plt.subplots(figsize=(8.0, 4.4), layout="constrained")
+    fig, ax = plt.subplots(figsize=(8.0, 4.2 + 0.22 * len(spectra)), layout="constrained")
     dashes = ("-", "--", "-.", ":")
     values = {name: np.sort(_log10_s(s)) for name, s in spectra.items()}
     shown = [v for v in values.values() if v.size]
@@ -588,7 +588,8 @@ def cdf_overlay_figure(spectra: dict[str, Spectrum], title: str):
     ax.set_xlabel("log10 s   (s: singular value of the input-output Jacobian; dashed: s = 1)")
     ax.set_ylabel("fraction of singular values <= s")
     ax.set_title(title)
-    _legend_outside(ax)
+    ax.legend(loc="upper center", bbox_to_anchor=(0.5, -0.16), ncol=1 if len(spectra) > 3 else len(spectra),
+              fontsize=8, frameon=False, handlelength=3.0)
     return fig
 
 

@@ -308,7 +308,7 @@ class Recommendation:
 def _design(activation: str, family: str, depth: int, width: int, weights: str, sigma_w: float,
             sigma_b: float, alpha: float | None, draws: int, seed: int, slope: float | None) -> Spec:
     """A validated spec for one candidate (its name says what it is)."""
-    name = f"{activation}-{family}-{weights}-L{depth}-N{width}"
+    name = f"{family}-{weights}-sb{sigma_b:.3g}" + (f"-alpha{alpha:.4g}" if alpha is not None else "")
     network: dict[str, Any] = {"family": family, "width": width, "depth": depth,
                                "activation": activation}
     if alpha is not None:

@@ -647,7 +647,7 @@ def write_compare_folder(analyses: list[Analysis], limits: list, ranking, seed_p
     data = comparison_dict(analyses, limits, ranking, seed_policy)
     with output_folder(out) as tmp:
         per_design = _design_folders(analyses, tmp)
-        overlays = _overlay_figures(analyses, tmp)
+        overlays = _overlay_figures([analyses[i] for i in ranking.order], tmp)
         if spec_texts:
             (tmp / "specs").mkdir()
             for name, text in spec_texts.items():
@@ -694,7 +694,7 @@ def _ranking_rows(data: dict[str, Any]) -> list[tuple]:
         g = r["agreement"] or {}
         rows.append((d["rank"], d["name"], r["score"]["verdict"], r["score"]["isometry"],
                      r["score"]["gain"], r["score"]["log_s_std"], len(g.get("outliers", [])),
-                     g.get("ks"), t["depth"] if t["depth"] is not None else f">{t['searched_to']}",
+                     g.get("ks"), int(t["depth"]) if t["depth"] is not None else f">{t['searched_to']}",
                      t["binding"]))
     return rows
 
