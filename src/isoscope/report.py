@@ -267,12 +267,17 @@ def _separate_length_mode(p) -> float | None:
     return p.log_length_mode_s / math.log(10.0)
 
 
+def _short(name: str, limit: int = 40) -> str:
+    """A design name short enough for a figure title (the page shows it in full)."""
+    return name if len(name) <= limit else name[:limit - 1] + "\u2026"
+
+
 def _figures(analysis: Analysis, folder: Path, prefix: str = "") -> dict[str, Path]:
     from isoscope import plot
     from isoscope.theory import mean_field
     if analysis.spectrum is None:
         return {}
-    name, p = analysis.spec.name, analysis.predicted
+    name, p = _short(analysis.spec.name), analysis.predicted
     out = {}
     law = None if p is None else plot.PredictedLaw.from_density(p.density)
     g = analysis.agreement
@@ -357,7 +362,7 @@ def _design_line(r: dict[str, Any]) -> str:
 _CAPTIONS = {
     "log_s": "singular values s of J on a log axis: measured histogram, predicted density (N -> infinity), SVD floor",
     "lambda": "eigenvalues lambda = s^2 of J J^T: measured histogram and predicted density",
-    "depth": "against depth: the partial Jacobians J_l ... J_1 beside the prediction",
+    "depth": "layer by layer: pre-activation variance q^l, each layer's gain, and the spread of the partial Jacobians J_l ... J_1, against mean field and free probability",
     "critical": "the critical line chi_1 = 1 in the (sigma_w^2, sigma_b^2) plane and this design",
 }
 
