@@ -443,8 +443,8 @@ def write_analysis_folder(analysis: Analysis, out: "str | Path | Reservation") -
     result = result_dict(analysis)
     with output_folder(out) as tmp:
         figures = _figures(analysis, tmp)
-        (tmp / "result.json").write_text(to_json(result))
-        (tmp / "report.html").write_text(analysis_page(analysis, result, figures))
+        (tmp / "result.json").write_text(to_json(result), encoding="utf-8")
+        (tmp / "report.html").write_text(analysis_page(analysis, result, figures), encoding="utf-8")
     return Path(out.target if isinstance(out, Reservation) else out)
 
 
@@ -627,7 +627,7 @@ def _design_folders(analyses: list[Analysis], tmp: Path) -> list[tuple[dict[str,
         sub = tmp / safe_folder_name(a.spec.name)
         sub.mkdir()
         r = result_dict(a)
-        (sub / "result.json").write_text(to_json(r))
+        (sub / "result.json").write_text(to_json(r), encoding="utf-8")
         out.append((r, _figures(a, sub)))
     return out
 
@@ -656,10 +656,10 @@ def write_compare_folder(analyses: list[Analysis], limits: list, ranking, seed_p
         if spec_texts:
             (tmp / "specs").mkdir()
             for name, text in spec_texts.items():
-                (tmp / "specs" / f"{safe_folder_name(name)}.toml").write_text(text)
-        (tmp / "comparison.json").write_text(to_json(data))
+                (tmp / "specs" / f"{safe_folder_name(name)}.toml").write_text(text, encoding="utf-8")
+        (tmp / "comparison.json").write_text(to_json(data), encoding="utf-8")
         (tmp / "report.html").write_text(_compare_page(data, per_design, overlays, ranking, analyses,
-                                                       title, intro))
+                                                       title, intro), encoding="utf-8")
     return Path(out.target if isinstance(out, Reservation) else out)
 
 
@@ -671,9 +671,9 @@ def write_recommend_folder(rec, out: "str | Path | Reservation") -> Path:
     with output_folder(out) as tmp:
         per_design = _design_folders([c.analysis for c in cands], tmp)
         overlays = _overlay_figures([c.analysis for c in cands], tmp)
-        (tmp / "recommendation.json").write_text(to_json(data))
-        (tmp / "recommended.toml").write_text(_spec_text(rec.recommended.spec))
-        (tmp / "report.html").write_text(_recommend_page(data, rec, per_design, overlays))
+        (tmp / "recommendation.json").write_text(to_json(data), encoding="utf-8")
+        (tmp / "recommended.toml").write_text(_spec_text(rec.recommended.spec), encoding="utf-8")
+        (tmp / "report.html").write_text(_recommend_page(data, rec, per_design, overlays), encoding="utf-8")
     return Path(out.target if isinstance(out, Reservation) else out)
 
 
