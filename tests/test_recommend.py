@@ -4,14 +4,12 @@ and recommendations checked by measurement."""
 import json
 import math
 
-import numpy as np
 import pytest
 from scipy.optimize import brentq
 
 from isoscope import cli
 from isoscope import recommend as rec
 from isoscope.spec import parse_spec
-from isoscope.theory import free_probability as fp
 from isoscope.theory import mean_field as mf
 
 

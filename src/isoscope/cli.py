@@ -277,7 +277,7 @@ def _cmd_recommend(args) -> int:
     from isoscope.spec import SEED_MAX
     if not 0 <= args.seed <= SEED_MAX:
         raise InputError(f"--seed {args.seed} is out of range", expected="an integer from 0 to 2^64 - 1")
-    budget.check(propose_budget_spec(act.name, args))
+    budget.check(_budget_spec(act.name, args))
     out = args.out if args.out is not None else None
     target = reserve(out) if out is not None else None
     try:
@@ -305,7 +305,7 @@ def _cmd_recommend(args) -> int:
     return 0
 
 
-def propose_budget_spec(activation: str, args):
+def _budget_spec(activation: str, args):
     """The largest design ``recommend`` will measure (for the memory check before it starts)."""
     from isoscope.spec import parse_spec
     return parse_spec({"name": "recommend", "network": {"width": args.width, "depth": args.depth,
