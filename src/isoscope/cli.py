@@ -10,6 +10,7 @@ without ``--out`` it writes nothing to disk.
 from __future__ import annotations
 
 import argparse
+import contextlib
 import os
 import signal
 import sys
@@ -100,9 +101,23 @@ def _lay_flags(data: dict, args, flags) -> dict:
     return given
 
 
+@contextlib.contextmanager
+def _reserved(out):
+    """Reserve the output folder ``out`` before computing (fail early), yield the reservation
+    (``None`` when nothing goes to disk), and abort it if anything below raises."""
+    from isoscope.folders import reserve
+    target = reserve(out) if out is not None else None
+    try:
+        yield target
+    except BaseException:
+        if target is not None:
+            target.abort()
+        raise
+
+
 def _cmd_analyze(args) -> int:
     from isoscope import budget
-    from isoscope.folders import reserve, safe_folder_name
+    from isoscope.folders import safe_folder_name
 
     spec = _spec_with_flags(args, _ANALYSIS_FLAGS)
     if args.out is not None:
@@ -112,8 +127,7 @@ def _cmd_analyze(args) -> int:
     else:
         out = Path("isoscope-out") / safe_folder_name(spec.name)
     budget.check(spec)  # before anything is allocated
-    target = reserve(out) if out is not None else None  # before computing: fail early
-    try:
+    with _reserved(out) as target:
         from isoscope.analysis import analyze
         from isoscope.report import result_dict, summary_table, to_json, write_analysis_folder
 
@@ -124,10 +138,6 @@ def _cmd_analyze(args) -> int:
             bar.close()
         if target is not None:
             write_analysis_folder(result, target)
-    except BaseException:
-        if target is not None:
-            target.abort()
-        raise
     if args.json:
         sys.stdout.write(to_json(result_dict(result)))
     else:
@@ -140,26 +150,17 @@ def _cmd_demo(args) -> int:
     """The built-in scenario through ``compare``: four designs ranked in one report folder."""
     import tomllib
 
-    from isoscope import budget
     from isoscope.spec import parse_spec
 
     texts = _demo_specs()
     specs = [parse_spec(tomllib.loads(text), source=f"<built-in {name}.toml>")
              for name, text in texts.items()]
-    for spec in specs:
-        budget.check(spec)
     policy = "each design at its own spec's analysis.seed"
-    analyses, limits, ranking = _run_comparison(
-        specs, args.out, {s.name: t for s, t in zip(specs, texts.values())}, policy, args.json,
-        title=DEMO_TITLE, intro=DEMO_INTRO)
-    if args.json:
-        from isoscope.report import comparison_dict, to_json
-        sys.stdout.write(to_json(comparison_dict(analyses, limits, ranking, policy)))
-    else:
-        from isoscope.report import comparison_table
-        print(comparison_table(analyses, limits, ranking))
-        print(f"\nwrote {args.out}/report.html (open it in a browser); the four specs are in "
-              f"{args.out}/specs/")
+    done = _run_comparison(specs, args.out, {s.name: t for s, t in zip(specs, texts.values())},
+                           policy, args.json, title=DEMO_TITLE, intro=DEMO_INTRO)
+    _print_comparison(*done, policy, args.json,
+                      f"wrote {args.out}/report.html (open it in a browser); the four specs are in "
+                      f"{args.out}/specs/")
     return 0
 
 
@@ -196,37 +197,41 @@ def _compare_specs(args):
 
 
 def _cmd_compare(args) -> int:
-    from isoscope import budget
-
     specs = _compare_specs(args)
-    for spec in specs:
-        budget.check(spec)
     out = args.out if args.out is not None else (None if args.json else "isoscope-out/comparison")
     texts = {s.name: Path(p).read_text(encoding="utf-8") for s, p in zip(specs, args.specs)}
     policy = (f"every design at seed {args.seed} (--seed)" if args.seed is not None
               else "each design at its own spec's analysis.seed")
-    analyses, limits, ranking = _run_comparison(specs, out, texts, policy, args.json)
-    if args.json:
+    done = _run_comparison(specs, out, texts, policy, args.json)
+    _print_comparison(*done, policy, args.json, None if out is None else
+                      f"wrote {out}/report.html, comparison.json, figures and one folder per design")
+    return 0
+
+
+def _print_comparison(analyses, limits, ranking, policy, as_json, wrote):
+    """``comparison.json`` on stdout, or the terminal table and the line saying what was written."""
+    if as_json:
         from isoscope.report import comparison_dict, to_json
         sys.stdout.write(to_json(comparison_dict(analyses, limits, ranking, policy)))
-    else:
-        from isoscope.report import comparison_table
-        print(comparison_table(analyses, limits, ranking))
-        if out is not None:
-            print(f"\nwrote {out}/report.html, comparison.json, figures and one folder per design")
-    return 0
+        return
+    from isoscope.report import comparison_table
+    print(comparison_table(analyses, limits, ranking))
+    if wrote is not None:
+        print(f"\n{wrote}")
 
 
 def _run_comparison(specs, out, texts, policy, quiet, title="isoscope comparison", intro=""):
     """Analyse every spec (as ``analyze`` would), estimate each trainable depth, rank, and write
-    the folder when ``out`` is given (reserved before computing; untouched on failure)."""
+    the folder when ``out`` is given (reserved before computing; untouched on failure).  Every
+    spec's memory estimate is checked first."""
+    from isoscope import budget
     from isoscope.analysis import analyze
-    from isoscope.folders import reserve
     from isoscope.recommend import rank, trainable_depth
     from isoscope.report import write_compare_folder
 
-    target = reserve(out) if out is not None else None
-    try:
+    for spec in specs:
+        budget.check(spec)
+    with _reserved(out) as target:
         analyses, limits = [], []
         for i, spec in enumerate(specs, 1):
             if sys.stderr.isatty() and not quiet:
@@ -237,10 +242,6 @@ def _run_comparison(specs, out, texts, policy, quiet, title="isoscope comparison
         if target is not None:
             write_compare_folder(analyses, limits, ranking, policy, target, spec_texts=texts,
                                  title=title, intro=intro)
-    except BaseException:
-        if target is not None:
-            target.abort()
-        raise
     return analyses, limits, ranking
 
 
@@ -259,7 +260,6 @@ def _cmd_recommend(args) -> int:
 
     from isoscope import budget
     from isoscope.activations import get_activation
-    from isoscope.folders import reserve
     from isoscope.recommend import recommend
 
     try:
@@ -278,9 +278,8 @@ def _cmd_recommend(args) -> int:
     if not 0 <= args.seed <= SEED_MAX:
         raise InputError(f"--seed {args.seed} is out of range", expected="an integer from 0 to 2^64 - 1")
     budget.check(_budget_spec(act.name, args))
-    out = args.out if args.out is not None else None
-    target = reserve(out) if out is not None else None
-    try:
+    out = args.out
+    with _reserved(out) as target:
         bar = _Progress(sys.stderr, "candidates measured")
         try:
             rec = recommend(act.name, args.depth, args.width, args.family, args.sigma_b,
@@ -290,10 +289,6 @@ def _cmd_recommend(args) -> int:
         if target is not None:
             from isoscope.report import write_recommend_folder
             write_recommend_folder(rec, target)
-    except BaseException:
-        if target is not None:
-            target.abort()
-        raise
     if args.json:
         from isoscope.report import recommendation_dict, to_json
         sys.stdout.write(to_json(recommendation_dict(rec)))

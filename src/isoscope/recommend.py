@@ -30,10 +30,12 @@ from isoscope.errors import InputError, TheoryError
 from isoscope.spec import Spec, parse_spec
 from isoscope.theory import free_probability as fp
 from isoscope.theory import mean_field as mf
+from isoscope.theory.predict import log_lambda_stats, predict
 
 __all__ = ["ADVICE", "TRAINABLE_SPREAD", "SIGNAL_MULTIPLE", "MAX_DEPTH", "DepthLimit",
            "TARGET_SPREAD", "predicted_spread", "trainable_depth", "Ranking", "rank",
-           "Candidate", "Recommendation", "propose", "recommend", "residual_tau_for_spread"]
+           "Candidate", "Recommendation", "plain_can_be_isometric", "propose", "recommend",
+           "residual_tau_for_spread"]
 
 ADVICE = ("Advice, not a guarantee: judged at initialization only. Training dynamics, "
           "normalisation layers and optimiser settings are outside what isoscope measures.")
@@ -96,7 +98,6 @@ def _spread(spec: Spec, plan: InputPlan, depth: int) -> float:
     if n.family == "plain" and plan.kind == "steady-state":
         # steady-state inputs keep every layer at the law's variance: the same law as
         # predict_spec's, without walking a q trajectory of `depth` layers
-        from isoscope.theory.predict import predict
         return predict(spec_activation(spec), i.weights, i.sigma_w, i.sigma_b, depth,
                        points=_POINTS).log_s_std
     return predict_spec(_at_depth(spec, depth), plan, points=_POINTS).log_s_std
@@ -338,7 +339,6 @@ def residual_tau_for_spread(target: float) -> float:
     grows with tau (about sqrt(tau/2) for small tau, from m2/m1^2 = 1 + 2 tau); solved by
     brentq in ln tau on :func:`~isoscope.theory.free_probability.residual_density`."""
     def f(log_tau: float) -> float:
-        from isoscope.theory.predict import log_lambda_stats
         return log_lambda_stats(fp.residual_density(math.exp(log_tau), _POINTS))[1] / 2.0 - target
     return math.exp(brentq(f, math.log(1e-8), math.log(1e3), xtol=1e-10))
 
@@ -393,7 +393,6 @@ def _bias_for_target(act, depth: int, target: float, lo: float, hi: float) -> fl
     def f(log_sb: float) -> float:
         sb = math.exp(log_sb)
         sw = mf.critical_point(act, sb).sigma_w
-        from isoscope.theory.predict import predict
         return predict(act, "orthogonal", sw, sb, depth, points=_POINTS).log_s_std - target
     if f(math.log(hi)) <= 0:
         return hi

@@ -335,10 +335,6 @@ _PHRASES = {
 }
 
 
-def _num(v: Any, spec: str = ".3g") -> str:
-    return format(v, spec) if isinstance(v, (int, float)) and math.isfinite(v) else "—"
-
-
 def verdict_sentence(r: dict[str, Any]) -> str:
     """One sentence for the top of a report from a ``result.json`` mapping: the design, its
     verdict in words, the isometry score, gain and spread, and the verdict's reason."""
@@ -347,8 +343,8 @@ def verdict_sentence(r: dict[str, Any]) -> str:
     if v == "non-finite":
         return f"{r['name']} overflowed at initialization: no spectrum was measured ({sc['reason']})."
     return (f"{r['name']} {_PHRASES.get(v, 'is ' + v)} at initialization (verdict {v}): isometry "
-            f"score {_num(sc['isometry'])}, gain m1 = {_num(sc['gain'], '.4g')}, std ln s = "
-            f"{_num(sc['log_s_std'])}; {sc['reason']}.")
+            f"score {_cell(sc['isometry'], '.3g')}, gain m1 = {_cell(sc['gain'], '.4g')}, std ln s = "
+            f"{_cell(sc['log_s_std'], '.3g')}; {sc['reason']}.")
 
 
 def _design_line(r: dict[str, Any]) -> str:
@@ -683,11 +679,11 @@ def compare_verdict(data: dict[str, Any]) -> str:
     d = data["designs"]
     first = d[0]["result"]["score"]
     text = (f"{d[0]['name']} ranks first of {len(d)} designs: isometry score "
-            f"{_num(first['isometry'])} (verdict {first['verdict']}), std ln s "
-            f"{_num(first['log_s_std'])}")
+            f"{_cell(first['isometry'], '.3g')} (verdict {first['verdict']}), std ln s "
+            f"{_cell(first['log_s_std'], '.3g')}")
     if len(d) > 1:
         second = d[1]["result"]["score"]
-        text += (f"; next is {d[1]['name']} with {_num(second['isometry'])} "
+        text += (f"; next is {d[1]['name']} with {_cell(second['isometry'], '.3g')} "
                  f"({second['verdict']})")
     return text + "."
 
@@ -746,8 +742,8 @@ def recommend_verdict(data: dict[str, Any]) -> str:
     fam = b["spec"]["network"]["family"]
     return (f"For {q['activation']} at depth {q['depth']} and width {q['width']}: a {fam} stack "
             f"with {b['weights']} weights, sigma_w = {b['sigma_w']:.6g}, sigma_b = "
-            f"{b['sigma_b']:.4g}{alpha}; predicted std ln s {_num(b['predicted']['log_s_std'])}, "
-            f"measured {_num((b['measured'] or {}).get('log_s_std'))} "
+            f"{b['sigma_b']:.4g}{alpha}; predicted std ln s {_cell(b['predicted']['log_s_std'], '.3g')}, "
+            f"measured {_cell((b['measured'] or {}).get('log_s_std'), '.3g')} "
             f"({(b['measured'] or {}).get('draws')} draws).")
 
 
