@@ -308,6 +308,64 @@ def _budget_spec(activation: str, args):
                        "analysis": {"inputs": args.inputs}}, source="<recommend flags>")
 
 
+def _point_line(finished, done: int, total: int) -> str:
+    """One line per stored point (when stderr is not a terminal)."""
+    o = finished.outcome
+    label = ", ".join(f"{k}={v}" for k, v in finished.point.values.items())
+    took = f" in {o['seconds']:.1f} s" if o.get("seconds") is not None else ""
+    if o["status"] != "done":
+        return f"[{done}/{total}] {label}: failed{took} ({o.get('error', '').splitlines()[0]})"
+    sc = o["result"]["score"]
+    iso = sc.get("isometry")
+    iso_text = "n/a" if iso is None else f"{iso:.3f}"
+    return f"[{done}/{total}] {label}: isometry {iso_text} ({sc.get('verdict')}){took}, {finished.worker}"
+
+
+def _cmd_sweep(args) -> int:
+    from isoscope.sweep import load_grid, run_sweep
+    from isoscope.sweep.store import check_store
+
+    grid = load_grid(args.grid)
+    _positive("--workers", args.workers)
+    check_store(args.store)
+    bar = _Progress(sys.stderr, "points", min_seconds=0.0)
+    quiet = args.json
+
+    def started(description, todo, skipped):
+        if not quiet or not bar.on:
+            print(f"sweep {grid.base.name!r}: {len(grid.points)} points, {skipped} already in "
+                  f"{args.store}, {todo} to run on {description}", file=sys.stderr, flush=True)
+
+    def stored(finished, done, total):
+        if bar.on:
+            bar(done, total)
+        else:
+            print(_point_line(finished, done, total), file=sys.stderr, flush=True)
+
+    try:
+        summary = run_sweep(grid, args.store, workers=args.workers, scheduler=args.scheduler,
+                            retry_failed=args.retry_failed, on_point=stored, on_start=started)
+    finally:
+        bar.close()
+    for w in summary.warnings:
+        print(f"warning: {w}", file=sys.stderr)
+    if args.json:
+        from isoscope.report import to_json
+        sys.stdout.write(to_json({"schema": "isoscope.sweep-summary/1", "store": str(args.store),
+                                  "grid": str(args.grid), **summary.__dict__,
+                                  "failures": [{"name": n, "error": e} for n, e in summary.failures]}))
+    else:
+        print(f"{summary.computed} computed, {summary.skipped} skipped (already stored), "
+              f"{summary.failed} failed, in {summary.seconds:.1f} s on {summary.executor}; "
+              f"{args.store} holds {summary.stored} points")
+        for name, error in summary.failures[:5]:
+            print(f"  failed: {name}: {error.splitlines()[0] if error else ''}")
+        if summary.failed > 5:
+            print(f"  ... and {summary.failed - 5} more (see `isoscope show {args.store}`)")
+        print(f"next: isoscope show {args.store}")
+    return 0
+
+
 # flag -> spec key, for `predict` and `critical`
 _DESIGN_FLAGS = (("activation", "network", "activation"), ("family", "network", "family"),
                  ("depth", "network", "depth"), ("alpha", "network", "alpha"),
@@ -573,6 +631,31 @@ def build_parser() -> argparse.ArgumentParser:
     rc.add_argument("--out", metavar="DIR", help="also write a folder with the report")
     rc.add_argument("--json", action="store_true", help="print recommendation.json to stdout")
     rc.set_defaults(run=_cmd_recommend)
+
+    sw = sub.add_parser("sweep", help="a grid of designs into a resumable SQLite store",
+                        description="Measure and predict every point of a grid (a spec plus a "
+                                    "[grid] table of dotted spec keys and lists) exactly as "
+                                    "`analyze` would, in parallel, committing each point to the "
+                                    "store as it finishes. Run the same command again to resume.",
+                        epilog="examples:\n"
+                               "  isoscope sweep examples/phase-grid.toml --store phase.sqlite\n"
+                               "  isoscope sweep grid.toml --store s.sqlite --workers 1\n"
+                               "  isoscope sweep grid.toml --store s.sqlite --scheduler local",
+                        formatter_class=argparse.RawDescriptionHelpFormatter)
+    sw.add_argument("grid", metavar="GRID.toml", help="a spec with a [grid] table (docs/sweep.md)")
+    sw.add_argument("--store", required=True, metavar="FILE.sqlite",
+                    help="the SQLite store (created if absent; finished points are skipped)")
+    sw.add_argument("--workers", type=int,
+                    help="worker processes (default: the cores); with --scheduler local, the "
+                         "LocalCluster's workers")
+    sw.add_argument("--scheduler", metavar="ADDRESS",
+                    help="run on a Dask distributed cluster: a scheduler address "
+                         "(tcp://host:8786) or 'local' for a LocalCluster on 127.0.0.1 "
+                         "(needs pip install 'isoscope[cluster]')")
+    sw.add_argument("--retry-failed", dest="retry_failed", action="store_true",
+                    help="measure again the points stored as failed")
+    sw.add_argument("--json", action="store_true", help="print the summary JSON to stdout")
+    sw.set_defaults(run=_cmd_sweep)
 
     pr = sub.add_parser("predict", help="theory only: mean field and the predicted spectrum",
                         description="Predict the Jacobian spectrum of a design at infinite width "

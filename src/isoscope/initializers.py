@@ -5,22 +5,28 @@ are a stack of independent matrices (one per layer).  Each factory takes the *sc
 (sigma_w or sigma_b, a standard deviation times sqrt(fan_in) for weights), never its square.
 
 The unit samplers are jit-compiled once per shape and dtype; the scale multiplies outside the
-compiled function, so sampling at a new sigma does not recompile anything.
+compiled function, so sampling at a new sigma does not recompile anything.  Inside
+:func:`reused_draws` the unit draws themselves are kept (keyed by sampler, PRNG key, shape and
+dtype), so designs that differ only in their scales, such as the points of a sigma_w x sigma_b
+sweep at one seed, sample each matrix once; the scaled arrays are bit-identical to fresh ones.
 """
 
 from __future__ import annotations
 
+import contextlib
 import functools
-from collections.abc import Callable
+from collections import OrderedDict
+from collections.abc import Callable, Iterator
 from typing import Protocol
 
 import jax
 import jax.numpy as jnp
+import numpy as np
 
 from isoscope.errors import InputError
 
 __all__ = ["Initializer", "gaussian", "orthogonal", "uniform", "gaussian_bias",
-           "get_initializer", "initializer_names"]
+           "get_initializer", "initializer_names", "reused_draws"]
 
 
 class Initializer(Protocol):
@@ -44,6 +50,69 @@ def _unit_normal(key, shape, dtype):
 @functools.partial(jax.jit, static_argnums=(1, 2))
 def _unit_uniform(key, shape, dtype):
     return jax.random.uniform(key, shape, dtype, minval=-1.0, maxval=1.0)
+
+
+class _DrawCache:
+    """Least-recently-used store of unit draws, bounded in bytes."""
+
+    def __init__(self, max_bytes: int):
+        self.max_bytes, self.bytes, self.items = max_bytes, 0, OrderedDict()
+        self.hits = self.misses = 0
+
+    def get(self, kind: str, sampler: Callable, key, shape: tuple[int, ...], dtype) -> jax.Array:
+        data = (jax.random.key_data(key) if jax.dtypes.issubdtype(key.dtype, jax.dtypes.prng_key)
+                else key)
+        try:
+            raw = np.asarray(data).tobytes()
+        except jax.errors.TracerArrayConversionError:  # inside a trace: no concrete key
+            return sampler(key, shape, dtype)
+        ident = (kind, raw, shape, np.dtype(dtype).str)
+        if ident in self.items:
+            self.hits += 1
+            self.items.move_to_end(ident)
+            return self.items[ident]
+        self.misses += 1
+        value = sampler(key, shape, dtype)
+        size = value.size * value.dtype.itemsize
+        if size <= self.max_bytes:
+            self.items[ident] = value
+            self.bytes += size
+            while self.bytes > self.max_bytes:
+                _, old = self.items.popitem(last=False)
+                self.bytes -= old.size * old.dtype.itemsize
+        return value
+
+
+_CACHE: list[_DrawCache] = []   # the innermost active cache, if any
+
+
+def _unit(kind: str, sampler: Callable, key, shape: tuple[int, ...], dtype) -> jax.Array:
+    """``sampler(key, shape, dtype)``, through the active :func:`reused_draws` cache if any."""
+    if _CACHE:
+        return _CACHE[-1].get(kind, sampler, key, shape, dtype)
+    return sampler(key, shape, dtype)
+
+
+@contextlib.contextmanager
+def reused_draws(max_bytes: int = 2 ** 30) -> Iterator[_DrawCache]:
+    """Keep unit draws (Haar matrices, unit normals and uniforms, before scaling) for the block.
+
+    Every initializer multiplies a unit draw by its scale outside the sampler, so two designs
+    that differ only in sigma_w, sigma_b or alpha draw the same unit arrays from the same key;
+    inside this block the second takes them from memory, and its parameters are bit-identical
+    to sampling afresh.  Entries are evicted least-recently-used beyond ``max_bytes``
+    (default 1 GiB); an array larger than that is never kept.  Used by the sweep workers
+    (:mod:`isoscope.sweep.execute`), whose points of one shape share a seed.
+
+    Yields:
+      the cache (``hits``, ``misses`` and ``bytes`` for diagnostics).
+    """
+    cache = _DrawCache(int(max_bytes))
+    _CACHE.append(cache)
+    try:
+        yield cache
+    finally:
+        _CACHE.remove(cache)
 
 
 def _haar(key, shape, dtype):
@@ -75,6 +144,10 @@ def _haar(key, shape, dtype):
     return q if tall else jnp.swapaxes(q, -1, -2)
 
 
+def _unit_haar(key, shape, dtype):
+    return _haar(key, shape, dtype)
+
+
 @jax.jit
 def _haar_from_normal(z):
     """The Householder construction of :func:`_haar` from the Gaussian matrix z."""
@@ -101,7 +174,8 @@ def gaussian(scale: float = 1.0) -> Initializer:
 
     def init(key, shape, dtype=jnp.float64):
         _, fan_in = _fans(shape)
-        return _unit_normal(key, tuple(shape), dtype) * jnp.asarray(scale / fan_in ** 0.5, dtype)
+        return (_unit("normal", _unit_normal, key, tuple(shape), dtype)
+                * jnp.asarray(scale / fan_in ** 0.5, dtype))
 
     return init
 
@@ -122,7 +196,7 @@ def orthogonal(scale: float = 1.0) -> Initializer:
 
     def init(key, shape, dtype=jnp.float64):
         _fans(shape)
-        return _haar(key, tuple(shape), dtype) * jnp.asarray(scale, dtype)
+        return _unit("haar", _unit_haar, key, tuple(shape), dtype) * jnp.asarray(scale, dtype)
 
     return init
 
@@ -139,7 +213,7 @@ def uniform(scale: float = 1.0) -> Initializer:
     def init(key, shape, dtype=jnp.float64):
         fan_out, fan_in = _fans(shape)
         bound = scale * (6.0 / (fan_in + fan_out)) ** 0.5
-        return _unit_uniform(key, tuple(shape), dtype) * jnp.asarray(bound, dtype)
+        return _unit("uniform", _unit_uniform, key, tuple(shape), dtype) * jnp.asarray(bound, dtype)
 
     return init
 
@@ -149,7 +223,7 @@ def gaussian_bias(scale: float = 0.0) -> Initializer:
     scale = float(scale)
 
     def init(key, shape, dtype=jnp.float64):
-        return _unit_normal(key, tuple(shape), dtype) * jnp.asarray(scale, dtype)
+        return _unit("normal", _unit_normal, key, tuple(shape), dtype) * jnp.asarray(scale, dtype)
 
     return init
 
