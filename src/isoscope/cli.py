@@ -342,6 +342,8 @@ def _cmd_sweep(args) -> int:
         else:
             print(_point_line(finished, done, total), file=sys.stderr, flush=True)
 
+    args.interrupt_note = (f"every finished point is in {args.store}; run the same command again "
+                           "to resume")
     try:
         summary = run_sweep(grid, args.store, workers=args.workers, scheduler=args.scheduler,
                             retry_failed=args.retry_failed, on_point=stored, on_start=started)
@@ -709,8 +711,10 @@ def main(argv: list[str] | None = None) -> int:
         return 2
     except KeyboardInterrupt:
         done = folders.committed()
-        print("isoscope: interrupted; " + (f"{done[-1]} had already been written completely" if done
-                                           else "no output folder was changed"), file=sys.stderr)
+        note = getattr(args, "interrupt_note", None) or (
+            f"{done[-1]} had already been written completely" if done
+            else "no output folder was changed")
+        print(f"isoscope: interrupted; {note}", file=sys.stderr)
         if argv is None:
             # the process entry point: leave at once.  An interrupt that landed inside JAX's native
             # code can leave it in a state that crashes the interpreter's shutdown (seen as SIGSEGV
