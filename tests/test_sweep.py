@@ -372,3 +372,37 @@ def test_a_second_sweep_on_a_busy_store_is_refused_and_another_store_is_unaffect
         out, err = first.communicate(timeout=600)
     assert first.returncode == 0, err
     assert _numbers(busy) == _numbers(other) == _numbers(ref_store)
+
+
+# ----------------------------------------------------------------------------- the ridge
+def test_the_isometry_ridge_follows_the_critical_line(tmp_path):
+    """examples/grids/avalanche-phase.toml: tanh, orthogonal, L = 32, N = 64, sigma_w in steps
+    of 0.05.  In every sigma_b row the best-scoring sigma_w is within one grid step of the grid
+    point nearest the critical sigma_w of ``critical_point`` (chi_1 = 1: Poole et al. 2016;
+    Schoenholz et al. 2017), and the ridge moves up with sigma_b as the line does.  (The
+    infinite-width law puts the maximum slightly on the ordered side, where the smaller q*
+    lowers the spread; that is why the check allows one step, not zero.)"""
+    from isoscope.activations import get_activation
+    from isoscope.theory.mean_field import critical_point
+
+    grid = load_grid(Path(__file__).resolve().parents[1] / "examples/grids/avalanche-phase.toml")
+    store = tmp_path / "avalanche.sqlite"
+    assert run_sweep(grid, store, workers=2).computed == 44
+    with Store.reader(store) as st:
+        points = st.points()
+    sw = sorted({p.settings["init.sigma_w"] for p in points})
+    sb = sorted({p.settings["init.sigma_b"] for p in points})
+    score = np.full((len(sb), len(sw)), np.nan)
+    for p in points:
+        score[sb.index(p.settings["init.sigma_b"]), sw.index(p.settings["init.sigma_w"])] = \
+            p.numbers["score.isometry"]
+    assert np.all(np.isfinite(score))
+    tanh = get_activation("tanh")
+    ridge = []
+    for row, b in zip(score, sb):
+        critical = critical_point(tanh, b).sigma_w
+        nearest = int(np.argmin(np.abs(np.asarray(sw) - critical)))
+        best = int(np.argmax(row))
+        assert abs(best - nearest) <= 1, (b, sw[best], critical)
+        ridge.append(best)
+    assert ridge == sorted(ridge) and ridge[-1] > ridge[0]

@@ -498,24 +498,35 @@ def _analyze(spec: Spec, progress: Callable[[int, int], None] | None) -> Analysi
     if file_inputs is not None:
         plan = dataclasses.replace(plan, variance=float(np.mean(file_inputs.astype(np.float64) ** 2)))
     seconds = {"sampling": 0.0, "jacobian": 0.0, "svd": 0.0, "profile": 0.0}
-    t = time.perf_counter()
-    predicted, notes = prediction_for(spec, plan)
-    seconds["theory"] = time.perf_counter() - t
-    depths = (profile_depths(spec.network.depth)
-              if predicted is not None and network.layer is not None else None)
-    # the profile's shallower predictions depend on the design only: solve them on a worker
-    # thread while the draws run (the solver is NumPy; XLA and LAPACK release the GIL)
-    pool = futures.ThreadPoolExecutor(max_workers=1, thread_name_prefix="isoscope-profile")
-    pending = (pool.submit(_profile_theory, spec, plan, depths, predicted)
+    depths = profile_depths(spec.network.depth) if network.layer is not None else None
+    # theory depends on the design only: the prediction, then the profile's shallower
+    # predictions, are solved on a worker thread while the draws run (the solver is NumPy;
+    # XLA and LAPACK release the GIL)
+    pool = futures.ThreadPoolExecutor(max_workers=1, thread_name_prefix="isoscope-theory")
+    prediction = pool.submit(_timed_prediction, spec, plan)
+    pending = (pool.submit(_profile_after, prediction, spec, plan, depths)
                if depths is not None else None)
     try:
-        return _measure(spec, network, dtype, plan, file_inputs, warnings + notes, predicted,
+        return _measure(spec, network, dtype, plan, file_inputs, warnings, prediction,
                         depths, pending, seconds, progress, t0)
     finally:
         pool.shutdown(wait=False, cancel_futures=True)
 
 
-def _measure(spec, network, dtype, plan, file_inputs, warnings, predicted, depths, pending,
+def _timed_prediction(spec: Spec, plan: InputPlan):
+    """:func:`prediction_for` and the seconds it took."""
+    t = time.perf_counter()
+    predicted, notes = prediction_for(spec, plan)
+    return predicted, notes, time.perf_counter() - t
+
+
+def _profile_after(prediction: futures.Future, spec: Spec, plan: InputPlan, depths: np.ndarray):
+    """:func:`_profile_theory` once the prediction is known (``None`` without one)."""
+    predicted = prediction.result()[0]
+    return None if predicted is None else _profile_theory(spec, plan, depths, predicted)
+
+
+def _measure(spec, network, dtype, plan, file_inputs, warnings, prediction, depths, pending,
              seconds, progress, t0) -> Analysis:
     """The draws, the score, the agreement and the profile (the second half of analyze)."""
     root = seed_key(spec.analysis.seed)
@@ -555,6 +566,8 @@ def _measure(spec, network, dtype, plan, file_inputs, warnings, predicted, depth
             seconds["svd"] += time.perf_counter() - t
         if progress is not None:
             progress(i + 1, total)
+    predicted, notes, seconds["theory"] = prediction.result()
+    warnings += notes
     if fault is not None:
         spectrum, score = None, non_finite_score(f"draw {i}: {fault.detail}")
         warnings += (f"measurement stopped: {fault.detail} (draw {i}); lower sigma_w or the depth, "

@@ -640,7 +640,7 @@ def build_parser() -> argparse.ArgumentParser:
                                     "`analyze` would, in parallel, committing each point to the "
                                     "store as it finishes. Run the same command again to resume.",
                         epilog="examples:\n"
-                               "  isoscope sweep examples/phase-grid.toml --store phase.sqlite\n"
+                               "  isoscope sweep examples/grids/avalanche-phase.toml --store avalanche.sqlite\n"
                                "  isoscope sweep grid.toml --store s.sqlite --workers 1\n"
                                "  isoscope sweep grid.toml --store s.sqlite --scheduler local",
                         formatter_class=argparse.RawDescriptionHelpFormatter)
