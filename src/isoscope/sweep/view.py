@@ -16,7 +16,8 @@ Pure functions over the :class:`~isoscope.sweep.store.StoredPoint` list that
   (Schoenholz et al. 2017, ICLR, sec. 3);
 * :func:`ridge` -- along each sigma_b row, the sigma_w that scores best against the grid value
   nearest the critical sigma_w;
-* :func:`show_dict` -- everything above as JSON-ready data (schema ``isoscope.show/1``).
+* :func:`build_view` -- all of the above for one ``isoscope show`` request (a :class:`View`);
+* :func:`show_dict` -- a view as JSON-ready data (schema ``isoscope.show/1``).
 """
 
 from __future__ import annotations
@@ -34,7 +35,7 @@ __all__ = ["SHOW_SCHEMA", "DEFAULT_METRIC", "PHASE_METRICS", "MAX_FACETS", "MAX_
            "SIGMA_W", "SIGMA_B", "DEPTH", "Table", "Facet", "Matrix", "Curve", "CriticalCurve",
            "RidgeRow", "varied_keys", "setting_keys", "metric_names", "check_key", "check_metric",
            "select", "default_axes", "points_table", "metric_matrix", "metric_curves",
-           "critical_curve", "ridge", "best_point", "show_dict"]
+           "critical_curve", "ridge", "best_point", "View", "build_view", "csv_table", "show_dict"]
 
 SHOW_SCHEMA = "isoscope.show/1"
 DEFAULT_METRIC = "score.isometry"
@@ -162,7 +163,7 @@ def check_metric(points, metric: str, numeric: bool = True) -> str:
         saying that the metric is text (``score.verdict``) where a number is needed.
     """
     names = metric_names(points)
-    if metric not in names:
+    if names and metric not in names:   # no done point at all: every cell is empty, not an error
         raise InputError(f"--metric {metric!r} is not stored",
                          expected=f"a number name of result.json ({_nearest(metric, names)})",
                          hint="e.g. score.isometry, score.log10_gain, score.log_s_std, "
@@ -172,7 +173,8 @@ def check_metric(points, metric: str, numeric: bool = True) -> str:
         if any(isinstance(v, str) for v in values):
             raise InputError(f"--metric {metric!r} is text (e.g. {next(v for v in values if isinstance(v, str))!r})",
                              expected="a numeric metric for a matrix or a curve",
-                             hint="text metrics show in the table without --x/--y")
+                             hint="the points table shows score.verdict in every row; choose a number "
+                                  "for the matrix, e.g. score.isometry")
     return metric
 
 
@@ -397,39 +399,123 @@ def best_point(points, metric: str = DEFAULT_METRIC):
     return max(scored, key=lambda t: t[1])[0] if scored else None
 
 
+# ----------------------------------------------------------------------------- one view
+class View(NamedTuple):
+    """Everything ``isoscope show`` shows of a store (built by :func:`build_view`).
+
+    Attributes:
+      store: the store's path, as given.
+      where: the ``--where`` terms applied.
+      points: the selected points, in stored order.
+      varied: their varied keys.
+      x, y: the axes (``None`` when not shown).
+      metric: the chosen metric.
+      matrices: ``{metric: Matrix}`` over (x, y) for the phase metrics and the chosen one, or None.
+      curves: the chosen metric along ``x`` when there is no ``y``, or None.
+      depth_curves: the chosen metric along ``network.depth`` when depth varies and is no axis.
+      critical: the critical line of a (sigma_w, sigma_b) diagram, or None.
+      ridge: :func:`ridge` of the isometry matrix against ``critical`` (empty without both).
+      notes: what was left out and why.
+    """
+
+    store: str
+    where: tuple[str, ...]
+    points: list
+    varied: list[str]
+    x: str | None
+    y: str | None
+    metric: str
+    matrices: dict[str, Matrix] | None
+    curves: list[Curve] | None
+    depth_curves: list[Curve] | None
+    critical: CriticalCurve | None
+    ridge: list[RidgeRow]
+    notes: tuple[str, ...]
+
+
+def build_view(points, store: str, where: Sequence[str] = (), x: str | None = None,
+               y: str | None = None, metric: str = DEFAULT_METRIC) -> View:
+    """Select the points (:func:`select`), check the axes and the metric, and compute the
+    matrices (``x`` and ``y``), or the curves along ``x`` (``x`` alone), with the depth curves
+    and the critical line where they apply.  No axes: the table only.
+
+    Raises:
+      InputError: an unknown key or metric (nearest names listed), a ``--where`` that matches
+        nothing, ``y`` without ``x``, a text metric where a number is needed, too many facets.
+    """
+    if y is not None and x is None:
+        raise InputError(f"--y {y!r} without --x", expected="--x KEY, or --x and --y together",
+                         hint="give --x for the columns (a curve when --y is left out)")
+    for key, flag in ((x, "--x"), (y, "--y")):
+        if key is not None:
+            check_key(points, key, flag)
+    chosen = select(points, where)
+    check_metric(chosen, metric, numeric=x is not None)
+    varied = varied_keys(chosen)
+    matrices = curves = depth = critical = None
+    rows: list[RidgeRow] = []
+    notes: list[str] = []
+    if x is not None and y is not None:
+        names = [m for m in dict.fromkeys((*PHASE_METRICS, metric)) if m == metric
+                 or m in metric_names(chosen)]
+        matrices = {m: metric_matrix(chosen, x, y, m) for m in names}
+        critical = critical_curve(chosen, x, y)
+        if critical is not None and DEFAULT_METRIC in matrices:
+            rows = ridge(matrices[DEFAULT_METRIC], critical)
+    elif x is not None:
+        curves = metric_curves(chosen, x, metric)
+    if x is not None and DEPTH in varied and DEPTH not in (x, y):
+        try:
+            depth = metric_curves(chosen, DEPTH, metric)
+        except InputError as e:
+            notes.append(f"depth curves left out: {e.message}; fix keys with --where to see them")
+    return View(store, tuple(where), chosen, varied, x, y, metric, matrices, curves, depth,
+                critical, rows, tuple(notes))
+
+
+def csv_table(points) -> Table:
+    """The wide table of every point: name, status, error, every varied setting, every number
+    (sorted by name; ``None`` where a point has none)."""
+    return points_table(points, metric_names(points))
+
+
 # ----------------------------------------------------------------------------- JSON
 def _values(a: np.ndarray) -> list:
     return [None if not math.isfinite(v) else float(v) for v in np.asarray(a, dtype=float).ravel()]
 
 
-def show_dict(store: str, points, where: Sequence[str], x: str | None, y: str | None, metric: str,
-              matrix: Matrix | None, curves: list[Curve] | None, curve_key: str | None,
-              critical: CriticalCurve | None) -> dict[str, Any]:
+def _curves(curves: list[Curve] | None, along: str | None) -> dict[str, Any] | None:
+    if curves is None:
+        return None
+    return {"along": along, "lines": [{"fixed": c.fixed, "x": c.x.tolist(), "values": _values(c.values)}
+                                      for c in curves]}
+
+
+def show_dict(view: View) -> dict[str, Any]:
     """The view as plain data (schema ``isoscope.show/1``): ``store``, ``where``, ``varied``,
     ``axes`` ({x, y}), ``metric``, ``points`` (name, status, error, key, varied settings,
-    every number), ``matrix`` (x, y, facets with fixed values and rows of the metric, null
-    cells missing), ``curves`` (along, lines), ``critical_line`` (sigma_b, sigma_w), ``best``."""
-    varied = varied_keys(points)
-    best = best_point(points)
+    every number), ``matrix`` (of the chosen metric: x, y, facets with their fixed values and
+    rows of numbers, null where no number), ``curves`` and ``depth_curves`` (along, lines),
+    ``critical_line`` (sigma_b, sigma_w), ``ridge``, ``best`` (highest isometry score), ``notes``."""
+    best = best_point(view.points)
+    m = None if view.matrices is None else view.matrices[view.metric]
     return {
-        "schema": SHOW_SCHEMA, "store": store, "where": list(where), "varied": varied,
-        "axes": {"x": x, "y": y}, "metric": metric,
+        "schema": SHOW_SCHEMA, "store": view.store, "where": list(view.where),
+        "varied": view.varied, "axes": {"x": view.x, "y": view.y}, "metric": view.metric,
         "points": [{"name": p.name, "status": p.status, "error": p.error, "key": p.key,
-                    "settings": {k: p.settings.get(k) for k in varied}, "numbers": p.numbers}
-                   for p in points],
-        "matrix": None if matrix is None else {
-            "x": list(matrix.x), "y": list(matrix.y),
-            "facets": [{"fixed": f.fixed, "values": [_values(r) for r in f.values]}
-                       for f in matrix.facets]},
-        "curves": None if curves is None else {
-            "along": curve_key,
-            "lines": [{"fixed": c.fixed, "x": c.x.tolist(), "values": _values(c.values)}
-                      for c in curves]},
-        "critical_line": None if critical is None else {
-            "activation": critical.activation, "sigma_b": critical.sigma_b.tolist(),
-            "sigma_w": critical.sigma_w.tolist()},
+                    "settings": {k: p.settings.get(k) for k in view.varied}, "numbers": p.numbers}
+                   for p in view.points],
+        "matrix": None if m is None else {
+            "x": list(m.x), "y": list(m.y),
+            "facets": [{"fixed": f.fixed, "values": [_values(r) for r in f.values]} for f in m.facets]},
+        "curves": _curves(view.curves, view.x),
+        "depth_curves": _curves(view.depth_curves, DEPTH),
+        "critical_line": None if view.critical is None else {
+            "activation": view.critical.activation, "sigma_b": view.critical.sigma_b.tolist(),
+            "sigma_w": view.critical.sigma_w.tolist()},
+        "ridge": [r._asdict() for r in view.ridge],
         "best": None if best is None else {"name": best.name, "metric": DEFAULT_METRIC,
                                            "value": best.numbers.get(DEFAULT_METRIC),
-                                           "settings": {k: best.settings.get(k) for k in varied}},
+                                           "settings": {k: best.settings.get(k) for k in view.varied}},
+        "notes": list(view.notes),
     }
-
