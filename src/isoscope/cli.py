@@ -373,8 +373,8 @@ def _cmd_show(args) -> int:
     from isoscope.report import (check_new_file, show_matrix_text, show_table_text, to_json,
                                  write_csv, write_show_folder)
     from isoscope.sweep.store import Store
-    from isoscope.sweep.view import (DEFAULT_METRIC, PHASE_METRICS, build_view, csv_table,
-                                     default_axes, points_table, select, show_dict)
+    from isoscope.sweep.view import (PHASE_METRICS, build_view, csv_table, default_axes,
+                                     points_table, select, show_dict)
 
     csv_path = check_new_file(args.csv, "--csv") if args.csv is not None else None
     with _reserved(args.out) as target:

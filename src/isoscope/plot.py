@@ -701,7 +701,7 @@ def phase_figure(matrices: list, title: str, critical=None):
             if critical is not None:
                 cx, cy = ((critical.sigma_w, critical.sigma_b) if m.x_key == "init.sigma_w"
                           else (critical.sigma_b, critical.sigma_w))
-                style = dict(color="white", path_effects=outline, zorder=4, label=CRITICAL_LABEL)
+                style = {"color": "white", "path_effects": outline, "zorder": 4, "label": CRITICAL_LABEL}
                 if cx.size > 1:
                     ax.plot(cx, cy, lw=1.6, **style)
                 else:
@@ -717,8 +717,12 @@ def phase_figure(matrices: list, title: str, critical=None):
                 fig.colorbar(mesh, ax=axes[:, c].tolist(), shrink=0.9, aspect=30, pad=0.02)
     handles = []
     if critical is not None:
-        handles.append(plt.Line2D([], [], color="white", lw=2.0, path_effects=outline,
-                                  label=f"{CRITICAL_LABEL} ({critical.activation})"))
+        point = critical.sigma_w.size == 1
+        handles.append(plt.Line2D([], [], color="white", lw=0.0 if point else 1.6,
+                                  marker="o" if point else None, markeredgecolor="black",
+                                  path_effects=None if point else outline,
+                                  label=f"{CRITICAL_LABEL} ({critical.activation})"
+                                  + (f": the single point sigma_b = {critical.sigma_b[0]:g}" if point else "")))
     if missing:
         handles.append(Patch(facecolor="white", edgecolor="#9a9a9a", hatch=MISSING_HATCH,
                              label="no stored number (not run, failed or null)"))

@@ -181,7 +181,7 @@ def check_metric(points, metric: str, numeric: bool = True) -> str:
 def _parse_like(raw: str, stored: Any) -> Any:
     """``raw`` read as the type of ``stored``: int, float or text (booleans are stored as
     0/1, so ``true``/``false`` read as 1/0 against an integer)."""
-    if isinstance(stored, bool) or isinstance(stored, int):
+    if isinstance(stored, int):   # bool included
         low = raw.strip().lower()
         if low in ("true", "false"):
             return int(low == "true")
