@@ -368,6 +368,45 @@ def _cmd_sweep(args) -> int:
     return 0
 
 
+# ---------------------------------------------------------------------------- show
+def _cmd_show(args) -> int:
+    """Read a sweep store: a table (or with --x and --y a matrix) on the terminal, ``--json``,
+    ``--csv F`` and ``--out DIR`` (figures, points.csv, show.json, report.html)."""
+    from isoscope.report import (check_new_file, show_matrix_text, show_table_text, to_json,
+                                 write_csv, write_show_folder)
+    from isoscope.sweep.store import Store
+    from isoscope.sweep.view import (PHASE_METRICS, build_view, csv_table, default_axes,
+                                     points_table, select, show_dict)
+
+    csv_path = check_new_file(args.csv, "--csv") if args.csv is not None else None
+    with _reserved(args.out) as target:
+        with Store.reader(args.store) as store:
+            points = store.points()
+        x, y = args.x, args.y
+        if x is None and y is None and (target is not None or args.json):
+            x, y = default_axes(select(points, args.where))
+        view = build_view(points, str(args.store), args.where, x, y, args.metric)
+        if csv_path is not None:
+            write_csv(csv_table(view.points), csv_path)
+        if target is not None:
+            write_show_folder(view, target)
+    if args.json:
+        sys.stdout.write(to_json(show_dict(view)))
+        return 0
+    if args.x is not None and args.y is not None:
+        print(show_matrix_text(view.matrices[view.metric]))
+    else:
+        metrics = list(dict.fromkeys((view.metric, *PHASE_METRICS, "score.verdict")))
+        print(show_table_text(points_table(view.points, metrics)))
+    for note in view.notes:
+        print(f"note: {note}")
+    if csv_path is not None:
+        print(f"wrote {csv_path} ({len(view.points)} points)")
+    if args.out is not None:
+        print(f"wrote {args.out}/report.html, show.json, points.csv and figures")
+    return 0
+
+
 # flag -> spec key, for `predict` and `critical`
 _DESIGN_FLAGS = (("activation", "network", "activation"), ("family", "network", "family"),
                  ("depth", "network", "depth"), ("alpha", "network", "alpha"),
@@ -658,6 +697,30 @@ def build_parser() -> argparse.ArgumentParser:
                     help="measure again the points stored as failed")
     sw.add_argument("--json", action="store_true", help="print the summary JSON to stdout")
     sw.set_defaults(run=_cmd_sweep)
+
+    sh = sub.add_parser("show", help="tables, phase diagrams and exports from a sweep store",
+                        description="Read a sweep store (read-only, also while a sweep writes "
+                                    "it): one row per point, or with --x and --y a metric as a "
+                                    "matrix; --json, --csv and a report folder with phase "
+                                    "diagrams, depth curves and the mean-field critical line.",
+                        epilog="examples:\n"
+                               "  isoscope show phase.sqlite\n"
+                               "  isoscope show phase.sqlite --x init.sigma_w --y init.sigma_b "
+                               "--where network.depth=16\n"
+                               "  isoscope show phase.sqlite --out results/phase --csv phase.csv",
+                        formatter_class=argparse.RawDescriptionHelpFormatter)
+    sh.add_argument("store", metavar="FILE.sqlite", help="a store written by `isoscope sweep`")
+    sh.add_argument("--x", metavar="KEY", help="setting along the columns (a dotted spec key)")
+    sh.add_argument("--y", metavar="KEY", help="setting along the rows (with --x)")
+    sh.add_argument("--metric", default="score.isometry", metavar="NAME",
+                    help="stored number to show (a dotted result.json name; default score.isometry)")
+    sh.add_argument("--where", action="append", default=[], metavar="KEY=VALUE",
+                    help="keep only points with this setting (repeatable; all must hold)")
+    sh.add_argument("--out", metavar="DIR", help="write a report folder (figures, points.csv, "
+                                                 "show.json, report.html)")
+    sh.add_argument("--csv", metavar="FILE", help="write every point with every number as CSV")
+    sh.add_argument("--json", action="store_true", help="print show JSON to stdout")
+    sh.set_defaults(run=_cmd_show)
 
     pr = sub.add_parser("predict", help="theory only: mean field and the predicted spectrum",
                         description="Predict the Jacobian spectrum of a design at infinite width "

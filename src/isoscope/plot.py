@@ -17,7 +17,7 @@ import numpy as np
 from isoscope.spectrum import Spectrum
 
 __all__ = ["log_s_figure", "lambda_figure", "comparison_figure", "cdf_overlay_figure", "depth_figure", "critical_figure",
-           "PredictedLaw", "save", "SPREAD_DECADES"]
+           "phase_figure", "curves_figure", "PredictedLaw", "save", "SPREAD_DECADES"]
 
 MEASURED = "#2f6f73"
 PREDICTED = "#c4512b"
@@ -590,6 +590,185 @@ def cdf_overlay_figure(spectra: dict[str, Spectrum], title: str):
     ax.set_title(title)
     ax.legend(loc="upper center", bbox_to_anchor=(0.5, -0.16), ncol=1 if len(spectra) > 3 else len(spectra),
               fontsize=8, frameon=False, handlelength=3.0)
+    return fig
+
+
+# ----------------------------------------------------------------------------- sweeps
+# isoscope's sweep colours: the isometry score on viridis over [0, 1], the log10 gain on the
+# diverging PuOr centred on 0 (purple: exploding, orange: vanishing), every other metric on
+# cividis; cells without a stored number hatched in grey; the critical line white with a
+# black rim (readable on all three maps).
+_METRIC_STYLE = {
+    "score.isometry": ("isometry score E[min(lambda, 1/lambda)]", "viridis", ".2f"),
+    "score.log10_gain": ("log10 gain m1 (0: gain 1)", "PuOr", "+.1f"),
+    "score.log_s_std": ("spread: std of ln s", "cividis", ".2f"),
+}
+MISSING_HATCH = "///"
+CRITICAL_LABEL = "mean-field critical line chi_1 = 1"
+
+
+def _edges(values: np.ndarray) -> np.ndarray:
+    """Cell edges around sorted values: midpoints, the end cells as wide as their neighbours."""
+    v = np.asarray(values, dtype=float)
+    if v.size == 1:
+        half = 0.5 * (abs(v[0]) if v[0] != 0 else 1.0)
+        return np.array([v[0] - half, v[0] + half])
+    mid = 0.5 * (v[1:] + v[:-1])
+    return np.concatenate([[v[0] - (mid[0] - v[0])], mid, [v[-1] + (v[-1] - mid[-1])]])
+
+
+def _axis_positions(values: tuple) -> tuple[np.ndarray, list[str] | None]:
+    """Numeric values stay themselves; text values (an activation) take positions 0..n-1."""
+    if all(isinstance(v, (int, float)) for v in values):
+        return np.asarray(values, dtype=float), None
+    return np.arange(len(values), dtype=float), [str(v) for v in values]
+
+
+def _metric_norm(metric: str, matrices_values: list[np.ndarray]):
+    """The colour map and normalisation of a metric over every facet (rows compare directly)."""
+    from matplotlib import colors
+    finite = np.concatenate([v[np.isfinite(v)] for v in matrices_values]) if matrices_values else np.array([])
+    cmap = _METRIC_STYLE.get(metric, (metric, "cividis", ".3g"))[1]
+    if metric == "score.isometry":
+        return cmap, colors.Normalize(0.0, 1.0)
+    if metric == "score.log10_gain":
+        a = float(np.max(np.abs(finite))) if finite.size else 1.0
+        a = a if a > 0 else 1.0
+        return cmap, colors.TwoSlopeNorm(vcenter=0.0, vmin=-a, vmax=a)
+    lo = float(finite.min()) if finite.size else 0.0
+    hi = float(finite.max()) if finite.size else 1.0
+    if metric == "score.log_s_std":
+        lo = min(lo, 0.0)
+    return cmap, colors.Normalize(lo, hi if hi > lo else lo + 1.0)
+
+
+def _text_colour(rgba) -> str:
+    """Black on light cells, white on dark ones (relative luminance, ITU-R BT.709 weights)."""
+    r, g, b = rgba[:3]
+    return "black" if 0.2126 * r + 0.7152 * g + 0.0722 * b > 0.45 else "white"
+
+
+def _facet_text(fixed: dict) -> str:
+    return ", ".join(f"{k} = {v}" for k, v in fixed.items())
+
+
+def phase_figure(matrices: list, title: str, critical=None):
+    """Heat maps of sweep metrics: one column per metric, one row per facet.
+
+    Args:
+      matrices: :class:`isoscope.sweep.view.Matrix` objects over the same axes and facets, one
+        per metric (``score.isometry`` on viridis in [0, 1], ``score.log10_gain`` on a diverging
+        map centred on 0 and symmetric, others on cividis; one scale per column over all rows).
+      title: figure title.
+      critical: optional :class:`isoscope.sweep.view.CriticalCurve`, drawn over every panel in
+        the axes' orientation (sigma_w against sigma_b or the other way round); a single point
+        (homogeneous phi: only sigma_b = 0) is drawn as a marker.
+
+    Cells are centred on the stored values (edges halfway between neighbours), so an uneven
+    grid shows uneven cells; each cell is written with its value, and a cell without a number
+    (not stored, failed, or null) is left hatched.
+    """
+    import matplotlib.patheffects as pe
+    from matplotlib.patches import Patch, Rectangle
+
+    plt = _pyplot()
+    first = matrices[0]
+    rows, cols = len(first.facets), len(matrices)
+    fig, axes = plt.subplots(rows, cols, figsize=(4.3 * cols + 0.6, 3.4 * rows + 1.1),
+                             layout="constrained", squeeze=False)
+    xs, xlabels = _axis_positions(first.x)
+    ys, ylabels = _axis_positions(first.y)
+    xe, ye = _edges(xs), _edges(ys)
+    missing = False
+    outline = [pe.Stroke(linewidth=3.2, foreground="black"), pe.Normal()]
+    for c, m in enumerate(matrices):
+        cmap, norm = _metric_norm(m.metric, [f.values for f in m.facets])
+        label, _, fmt = _METRIC_STYLE.get(m.metric, (m.metric, "cividis", ".3g"))
+        for r, facet in enumerate(m.facets):
+            ax = axes[r, c]
+            ax.add_patch(Rectangle((xe[0], ye[0]), xe[-1] - xe[0], ye[-1] - ye[0], facecolor="white",
+                                   edgecolor="#9a9a9a", hatch=MISSING_HATCH, lw=0.0, zorder=0))
+            values = np.ma.masked_invalid(facet.values)
+            missing |= bool(values.mask.any()) if np.ndim(values.mask) else bool(values.mask)
+            mesh = ax.pcolormesh(xe, ye, values, cmap=cmap, norm=norm, zorder=1)
+            if values.size <= 144:
+                for i, y in enumerate(ys):
+                    for j, x in enumerate(xs):
+                        v = facet.values[i, j]
+                        if math.isfinite(v):
+                            ax.text(x, y, format(v, fmt), ha="center", va="center", fontsize=7,
+                                    color=_text_colour(mesh.cmap(norm(v))), zorder=3)
+            if critical is not None:
+                cx, cy = ((critical.sigma_w, critical.sigma_b) if m.x_key == "init.sigma_w"
+                          else (critical.sigma_b, critical.sigma_w))
+                style = {"color": "white", "path_effects": outline, "zorder": 4, "label": CRITICAL_LABEL}
+                if cx.size > 1:
+                    ax.plot(cx, cy, lw=1.6, **style)
+                else:
+                    ax.plot(cx, cy, "o", ms=7, **style)
+            ax.set_xlim(xe[0], xe[-1])
+            ax.set_ylim(ye[0], ye[-1])
+            ax.set_xticks(xs, xlabels if xlabels else [f"{v:g}" for v in xs], fontsize=8)
+            ax.set_yticks(ys, ylabels if ylabels else [f"{v:g}" for v in ys], fontsize=8)
+            ax.set_xlabel(m.x_key, fontsize=9)
+            ax.set_ylabel(m.y_key, fontsize=9)
+            ax.set_title(label + (f"\n{_facet_text(facet.fixed)}" if facet.fixed else ""), fontsize=9)
+            if r == rows - 1 or rows == 1:
+                fig.colorbar(mesh, ax=axes[:, c].tolist(), shrink=0.9, aspect=30, pad=0.02)
+    handles = []
+    if critical is not None:
+        point = critical.sigma_w.size == 1
+        handles.append(plt.Line2D([], [], color="white", lw=0.0 if point else 1.6,
+                                  marker="o" if point else None, markeredgecolor="black",
+                                  path_effects=None if point else outline,
+                                  label=f"{CRITICAL_LABEL} ({critical.activation})"
+                                  + (f": the single point sigma_b = {critical.sigma_b[0]:g}" if point else "")))
+    if missing:
+        handles.append(Patch(facecolor="white", edgecolor="#9a9a9a", hatch=MISSING_HATCH,
+                             label="no stored number (not run, failed or null)"))
+    if handles:
+        fig.legend(handles=handles, loc="outside lower center", ncol=len(handles), fontsize=8,
+                   frameon=False)
+    fig.suptitle(title)
+    return fig
+
+
+def curves_figure(curves: list, along: str, metric: str, title: str):
+    """A sweep metric against one setting, one line per combination of the other varied keys.
+
+    Args:
+      curves: :class:`isoscope.sweep.view.Curve` objects (their ``fixed`` values label them).
+      along: the setting on the x axis (``network.depth`` for depth curves).
+      metric: the metric on the y axis (the isometry score's axis spans [0, 1]).
+      title: figure title.
+
+    Lines take evenly spaced colours of viridis in the order of their settings and each its own
+    marker, so neighbours differ also in grey; the x axis is logarithmic (base 2) when the
+    values are positive and span a factor of 8 or more, as depths usually do.  The legend sits
+    outside the axes.
+    """
+    plt = _pyplot()
+    fig, ax = plt.subplots(figsize=(8.0, 4.2), layout="constrained")
+    markers = ("o", "s", "^", "D", "v", "P", "X", "<", ">", "h", "*", "p")
+    cmap = plt.get_cmap("viridis")
+    n = max(len(curves), 1)
+    xs_all = np.concatenate([np.asarray(c.x, dtype=float) for c in curves]) if curves else np.array([])
+    for k, c in enumerate(curves):
+        colour = cmap(0.88 * k / max(n - 1, 1))
+        ax.plot(np.asarray(c.x, dtype=float), c.values, marker=markers[k % len(markers)], ms=5,
+                lw=1.6, color=colour, label=_facet_text(c.fixed) or metric)
+    if xs_all.size and xs_all.min() > 0 and xs_all.max() / xs_all.min() >= 8:
+        ax.set_xscale("log", base=2)
+    ticks = np.unique(xs_all)
+    if 0 < ticks.size <= 12:
+        ax.set_xticks(ticks, [f"{v:g}" for v in ticks])
+    if metric == "score.isometry":
+        ax.set_ylim(0.0, 1.02)
+    ax.set_xlabel(along)
+    ax.set_ylabel(_METRIC_STYLE.get(metric, (metric,))[0])
+    ax.set_title(title)
+    ax.grid(True, color="#e3e3e3", lw=0.6)
+    _legend_outside(ax)
     return fig
 
 

@@ -18,14 +18,16 @@ from typing import Any
 import numpy as np
 
 from isoscope.analysis import Analysis
-from isoscope.errors import TheoryError
+from isoscope.errors import InputError, TheoryError
 from isoscope.folders import Reservation, reserve, safe_folder_name
 
 __all__ = ["SCHEMA", "COMPARISON_SCHEMA", "RECOMMENDATION_SCHEMA", "GLOSSARY", "result_dict",
            "prediction_dict", "comparison_dict", "recommendation_dict", "candidate_dict",
            "depth_limit_dict", "to_json", "verdict_sentence", "analysis_page",
            "write_analysis_folder", "write_compare_folder", "write_recommend_folder",
-           "summary_table", "comparison_table", "recommendation_text", "output_folder"]
+           "summary_table", "comparison_table", "recommendation_text", "output_folder",
+           "show_table_text", "show_matrix_text", "show_verdict", "check_new_file", "write_csv",
+           "write_show_folder"]
 
 SCHEMA = "isoscope.result/1"
 
@@ -786,3 +788,185 @@ def _recommend_page(data, rec, per_design, overlays) -> str:
     doc.facts("software and settings", _facts(data["environment"], {
         "dtype": rec.recommended.spec.analysis.dtype, "seed": q["seed"], "draws": q["draws"]}))
     return doc.render()
+
+
+# ----------------------------------------------------------------------------- sweeps (show)
+def _text(v: Any) -> str:
+    """A table value for the terminal: numbers to 4 significant digits, null as an em dash."""
+    if v is None or (isinstance(v, float) and not math.isfinite(v)):
+        return "\u2014"
+    if isinstance(v, float):
+        return f"{v:.4g}"
+    return str(v)
+
+
+def _fixed_width(header: list[str], rows: list[list[str]]) -> list[str]:
+    widths = [max(len(h), *(len(r[j]) for r in rows)) if rows else len(h) for j, h in enumerate(header)]
+    line = lambda r: "  ".join(v.rjust(w) for v, w in zip(r, widths)).rstrip()
+    return [line(header), "  ".join("-" * w for w in widths)] + [line(r) for r in rows]
+
+
+def show_table_text(table) -> str:
+    """The terminal form of :func:`isoscope.sweep.view.points_table`: one row per point, without
+    the long point names (the varied settings tell the points apart; ``--csv`` and ``--json``
+    have the names) and with the error column only when some point failed (its first line)."""
+    cols = list(table.columns)
+    keep = [j for j, c in enumerate(cols)
+            if c != "name" and (c != "error" or any(r[j] for r in table.rows))]
+    rows = [[_text(r[j]).splitlines()[0] if r[j] else _text(r[j]) for j in keep] for r in table.rows]
+    return "\n".join(_fixed_width([cols[j] for j in keep], rows))
+
+
+def show_matrix_text(matrix) -> str:
+    """A :class:`~isoscope.sweep.view.Matrix` for the terminal: one block per facet, rows
+    ``y`` (as stored, ascending), columns ``x``; an em dash where no number is stored."""
+    out = []
+    for f in matrix.facets:
+        fixed = ", ".join(f"{k} = {v}" for k, v in f.fixed.items())
+        out.append(f"{matrix.metric}" + (f" at {fixed}" if fixed else "")
+                   + f" (rows {matrix.y_key}, columns {matrix.x_key})")
+        header = [f"{matrix.y_key} \\ {matrix.x_key}", *(_text(v) for v in matrix.x)]
+        rows = [[_text(y), *(_text(float(v)) for v in f.values[i])] for i, y in enumerate(matrix.y)]
+        out += _fixed_width(header, rows) + [""]
+    return "\n".join(out).rstrip()
+
+
+def check_new_file(path: "str | Path", flag: str) -> Path:
+    """Refuse, before any work, a file path that cannot be written: a folder, a missing or
+    read-only parent folder."""
+    import os
+    path = Path(path)
+    if path.is_dir():
+        raise InputError(f"{flag} {str(path)!r} is a folder", expected="a file path",
+                         hint=f"e.g. {flag} {str(path / 'points.csv')!r}")
+    if not path.parent.is_dir():
+        raise InputError(f"{flag} {str(path)!r}: folder {str(path.parent)!r} does not exist",
+                         expected="a path in an existing folder", hint="create the folder first")
+    if not os.access(path.parent, os.W_OK | os.X_OK):
+        raise InputError(f"{flag} {str(path)!r}: folder {str(path.parent)!r} is not writable",
+                         expected="a path in a folder you may write")
+    return path
+
+
+def _csv_cell(v: Any) -> Any:
+    return "" if v is None or (isinstance(v, float) and not math.isfinite(v)) else v
+
+
+def write_csv(table, path: "str | Path") -> Path:
+    """Write a :class:`~isoscope.sweep.view.Table` as CSV (header row, one row per point, empty
+    cells for null) atomically: a temporary file beside ``path``, renamed over it when complete."""
+    import csv
+    import os
+    import tempfile
+    path = Path(path)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    try:
+        umask = os.umask(0)
+        os.umask(umask)
+        os.chmod(tmp, 0o666 & ~umask)   # mkstemp makes 0600; an ordinary new file follows the umask
+        with os.fdopen(fd, "w", encoding="utf-8", newline="") as f:
+            w = csv.writer(f)
+            w.writerow(table.columns)
+            w.writerows([[_csv_cell(v) for v in r] for r in table.rows])
+            f.flush()
+            os.fsync(f.fileno())
+        from isoscope.folders import interrupted
+        if interrupted():
+            raise KeyboardInterrupt
+        os.replace(tmp, path)
+    finally:
+        if os.path.exists(tmp):
+            os.remove(tmp)
+    return path
+
+
+def _setting_text(settings: dict[str, Any]) -> str:
+    return ", ".join(f"{k} = {v}" for k, v in settings.items()) or "the only setting stored"
+
+
+def show_verdict(data: dict[str, Any]) -> str:
+    """One sentence for the top of a show report: the points, which one scores best, and
+    whether the ridge of the isometry score follows the mean-field critical line."""
+    pts = data["points"]
+    failed = sum(p["status"] == "failed" for p in pts)
+    text = f"{len(pts)} points ({len(pts) - failed} done, {failed} failed)"
+    best = data["best"]
+    if best is None:
+        return text + "; no point has an isometry score."
+    verdict = next(p["numbers"].get("score.verdict") for p in pts if p["name"] == best["name"])
+    text += (f"; the best isometry score is {_cell(best['value'], '.3g')} at "
+             f"{_setting_text(best['settings'])} (verdict {verdict})")
+    rows = data["ridge"]
+    if rows:
+        k = sum(r["follows"] for r in rows)
+        how = ("follows" if k == len(rows) else "mostly follows" if 2 * k > len(rows)
+               else "does not follow")
+        text += (f"; the ridge {how} the mean-field critical line: in {k} of {len(rows)} "
+                 "sigma_b rows the best sigma_w is the grid value nearest the critical one")
+    return text + "."
+
+
+_SHOW_CAPTIONS = {
+    "phase": "heat maps over the two axes, one row per combination of the other varied keys; "
+             "hatched cells have no stored number",
+    "curves": "the chosen metric along the x axis, one line per combination of the other varied keys",
+    "depth": "the chosen metric against network.depth, one line per combination of the other varied keys",
+}
+
+
+def _show_figures(view, tmp: Path) -> dict[str, Path]:
+    from isoscope import plot
+    name = Path(view.store).name
+    out = {}
+    if view.matrices is not None:
+        fig = plot.phase_figure(list(view.matrices.values()), f"{name}: {view.y} against {view.x}",
+                                view.critical)
+        out["phase"] = plot.save(fig, tmp / "phase-diagram", formats=("png",))[0]
+    if view.curves is not None:
+        fig = plot.curves_figure(view.curves, view.x, view.metric, f"{name}: {view.metric} along {view.x}")
+        out["curves"] = plot.save(fig, tmp / "curves", formats=("png",))[0]
+    if view.depth_curves is not None:
+        fig = plot.curves_figure(view.depth_curves, "network.depth", view.metric,
+                                 f"{name}: {view.metric} with depth")
+        out["depth"] = plot.save(fig, tmp / "depth-curves", formats=("png",))[0]
+    return out
+
+
+def _show_page(view, data: dict[str, Any], figures: dict[str, Path]) -> str:
+    from isoscope.document import Document
+    from isoscope.sweep.view import PHASE_METRICS, points_table
+    doc = Document(f"isoscope show: {Path(view.store).name}", show_verdict(data))
+    doc.paragraph(f"Store {view.store}; varied: {', '.join(view.varied) or 'nothing'}"
+                  + (f"; selected with {', '.join(view.where)}" if view.where else "")
+                  + f"; metric {view.metric}. Every point was measured exactly as `isoscope analyze` "
+                  "would measure its spec.", small=True)
+    doc.warnings(view.notes)
+    for key, path in figures.items():
+        doc.figure(path, _SHOW_CAPTIONS[key])
+    if view.ridge:
+        doc.table(["fixed", "sigma_b", "best sigma_w", "critical sigma_w", "nearest grid sigma_w",
+                   "follows"],
+                  [(_setting_text(r.fixed) if r.fixed else None, r.sigma_b, r.best_sigma_w,
+                    r.critical_sigma_w, r.nearest_sigma_w, r.follows) for r in view.ridge],
+                  caption="the ridge: per sigma_b row, the best-scoring sigma_w against the "
+                          "mean-field critical sigma_w (chi_1 = 1)")
+    metrics = list(dict.fromkeys((view.metric, *PHASE_METRICS, "score.verdict")))
+    t = points_table(view.points, metrics)
+    doc.table(list(t.columns), t.rows, caption="every point (also points.csv, with every number)")
+    doc.paragraph(_NOTATION, small=True)
+    doc.facts("store", {"schema": data["schema"], "points": len(view.points),
+                        "isoscope": __import__("isoscope").__version__})
+    return doc.render()
+
+
+def write_show_folder(view, out: "str | Path | Reservation") -> Path:
+    """Write a show report: the figures (PNG), ``points.csv`` (every point, every number),
+    ``show.json`` (:func:`isoscope.sweep.view.show_dict`) and ``report.html``."""
+    from isoscope.sweep.view import csv_table, show_dict
+    data = show_dict(view)
+    with output_folder(out) as tmp:
+        figures = _show_figures(view, tmp)
+        write_csv(csv_table(view.points), tmp / "points.csv")
+        (tmp / "show.json").write_text(to_json(data), encoding="utf-8")
+        (tmp / "report.html").write_text(_show_page(view, data, figures), encoding="utf-8")
+    return Path(out.target if isinstance(out, Reservation) else out)
