@@ -176,6 +176,12 @@ class DerivativeLaw:
         r = 1.0 / (w[..., None] - self.values)
         return r @ (self.weights * self.values)
 
+    @functools.cached_property
+    def _sums(self) -> tuple[np.ndarray, np.ndarray]:
+        """``([a, a d], a d)`` with a the weights and d the values: the columns of :meth:`_eval`'s sums."""
+        ad = self.weights * self.values
+        return np.stack([self.weights, ad], axis=1), ad
+
     def _eval(self, w: np.ndarray):
         """``(M, 1 + M, dM/dw)`` at w, each sum formed without cancellation.
 
@@ -185,19 +191,20 @@ class DerivativeLaw:
         """
         y = w.imag[:, None]
         x = w.real[:, None] - self.values
-        den = 1.0 / (x * x + y * y)
+        xx = x * x
+        yy = y * y
+        den = 1.0 / (xx + yy)
         xd = x * den
-        a, ad = self.weights, self.weights * self.values
-        both = np.stack([a, ad], axis=1)
+        both, ad = self._sums
         re1, re2 = (xd @ both).T                 # Re sum a r, Re sum a d r
         im1, im2 = (den @ both).T
         im1, im2 = -w.imag * im1, -w.imag * im2  # Im sum a r, Im sum a d r
         m = re2 + 1j * im2
         g = re1 + 1j * im1
         one_m = self.zero_weight + w * g
-        yden = y * den
-        re3 = (xd * xd - yden * yden) @ ad       # Re sum a d r^2
-        im3 = -2.0 * ((xd * yden) @ ad)          # Im sum a d r^2
+        # r^2 = (x^2 - y^2) den^2 - 2 i x y den^2, each term formed per point before summing
+        re3 = ((xx - yy) * (den * den)) @ ad     # Re sum a d r^2
+        im3 = -2.0 * w.imag * ((xd * den) @ ad)  # Im sum a d r^2
         return m, one_m, -(re3 + 1j * im3)
 
 # ----------------------------------------------------------------------------------------
