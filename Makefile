@@ -23,6 +23,7 @@ bench: $(STAMP)
 	$(BIN)/python benchmarks/jacobian.py
 	$(BIN)/python benchmarks/theory.py
 	$(BIN)/python benchmarks/analyze.py
+	$(BIN)/python benchmarks/sweep.py
 
 clean:
 	rm -rf $(VENV) isoscope-demo .isoscope-demo.* isoscope-out .isoscope-out.*

@@ -102,3 +102,28 @@ def test_haar_is_orthogonal_to_dtype_precision_in_both_dtypes():
         q = np.asarray(orthogonal(1.0)(jax.random.PRNGKey(13), (4, 256, 256), dtype), dtype=np.float64)
         for m in q:  # Householder products are orthogonal to O(N eps) (Higham 2002, sec. 19.3)
             assert np.max(np.abs(m @ m.T - np.eye(256))) < tol
+
+
+def test_reused_draws_give_bit_identical_parameters_and_sample_once():
+    """Inside ``reused_draws`` a second design of the same shape and seed takes its unit draws
+    from memory; its parameters equal a fresh sample bit for bit (the scale multiplies outside
+    the sampler), and a different key still draws anew."""
+    import jax
+    import numpy as np
+
+    from isoscope.initializers import reused_draws
+    from isoscope.network import plain_stack
+
+    key = jax.random.PRNGKey(3)
+    fresh = [plain_stack(16, 3, "tanh", weights=w, sigma_w=s, sigma_b=0.2).init(key)
+             for w in ("orthogonal", "gaussian") for s in (0.9, 1.3)]
+    with reused_draws() as cache:
+        kept = [plain_stack(16, 3, "tanh", weights=w, sigma_w=s, sigma_b=0.2).init(key)
+                for w in ("orthogonal", "gaussian") for s in (0.9, 1.3)]
+        other = plain_stack(16, 3, "tanh", sigma_w=0.9).init(jax.random.PRNGKey(4))
+    for a, b in zip(fresh, kept):
+        assert all(np.array_equal(np.asarray(a[k]), np.asarray(b[k])) for k in ("W", "b"))
+    assert not np.array_equal(np.asarray(other["W"]), np.asarray(kept[0]["W"]))
+    # misses: Haar, bias, Gaussian weights, and the two draws of the other key; hits: both draws
+    # at each second scale, and the Gaussian design's bias (the same key and shape as before)
+    assert (cache.hits, cache.misses) == (4 + 1, 3 + 2)
