@@ -169,6 +169,14 @@ def test_store_of_another_schema_is_refused_and_never_touched(tmp_path):
         check_store(plain)
 
 
+def test_a_grid_too_large_for_the_memory_exits_2_before_anything_runs(tmp_path):
+    grid = _write(tmp_path, GRID.replace("width = 8", "width = 1000000"))
+    store = tmp_path / "s.sqlite"
+    r = _cli("sweep", grid, "--store", store, "--workers", "2")
+    assert r.returncode == 2 and "2 workers each running the largest point" in r.stderr
+    assert "of memory" in r.stderr and not store.exists()
+
+
 def test_a_scheduler_that_does_not_answer_exits_2_and_writes_nothing(tmp_path):
     pytest.importorskip("distributed")
     import socket
@@ -350,7 +358,8 @@ def test_a_killed_sweep_resumes_to_the_same_store(reference, tmp_path):
     assert con.execute("SELECT COUNT(*) FROM points").fetchone()[0] == 12
     statuses = [s for (s,) in con.execute("SELECT status FROM runs ORDER BY id")]
     con.close()
-    assert statuses[-1] == "finished" and "interrupted" in statuses
+    assert statuses[-1] == "finished" and "interrupted" in statuses and "killed" in statuses
+    assert "running" not in statuses
 
 
 def test_a_second_sweep_on_a_busy_store_is_refused_and_another_store_is_unaffected(reference, tmp_path):

@@ -3,7 +3,8 @@
 Schema ``isoscope.sweep/1``::
 
     meta(key TEXT PRIMARY KEY, value TEXT)        schema, created, isoscope version, glossary
-    runs(id, started, finished, grid_file, grid_text, executor, computed, skipped, failed, status)
+    runs(id, started, finished, grid_file, grid_text, executor, computed, skipped, failed,
+         status 'running' | 'finished' | 'interrupted' | 'killed')
     points(id, point_key UNIQUE, name, status 'done' | 'failed', error, seed TEXT,
            point_values JSON, spec JSON, versions JSON, result JSON, seconds, run_id, finished)
     settings(point_id, key, value)                every dotted spec key of the point's spec
@@ -264,8 +265,11 @@ class Store:
 
     # ---------------------------------------------------------------- runs
     def begin_run(self, grid_file: str | None, grid_text: str, executor: str) -> int:
-        """Record the start of a sweep; returns its run id."""
+        """Record the start of a sweep; returns its run id.  A run still marked ``running``
+        was killed outright (the caller holds the store's lock, so no other sweep is writing):
+        it is marked ``killed``."""
         with self._transaction():
+            self.con.execute("UPDATE runs SET status = 'killed' WHERE status = 'running'")
             cur = self.con.execute(
                 "INSERT INTO runs (started, grid_file, grid_text, executor, status) "
                 "VALUES (?, ?, ?, ?, 'running')", (_now(), grid_file, grid_text, executor))
