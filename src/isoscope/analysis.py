@@ -23,27 +23,24 @@ import numpy as np
 from scipy.special import logsumexp
 
 from isoscope import jacobian as jac
+from isoscope import routes
 from isoscope.activations import Activation, get_activation
 from isoscope.errors import InputError, TheoryError
-from isoscope.network import Network, plain_stack, residual_stack
+from isoscope.network import Network, conv_stack, plain_stack, residual_stack
 from isoscope.score import (ISOMETRIC_SCORE, Agreement, Score, agreement, censored_log_stats,
                             isometry_of_logs, judged_gain, non_finite_score, outlier_counts,
                             predicted_isometry, score_spectrum, split_outliers)
-from isoscope.spec import Spec
-from isoscope.spectrum import Spectrum, from_singular_values, zero_threshold
+from isoscope.spec import CONV_FAMILIES, Spec, parse_spec
+from isoscope.spectrum import Spectrum, from_log_singular_values, zero_threshold
 from isoscope.theory import free_probability, mean_field
 from isoscope.threads import limited_blas
 from isoscope.theory.predict import Prediction, predict
 
 __all__ = ["Analysis", "DepthProfile", "InputPlan", "analyze", "build_network", "depth_profile",
            "profile_predictions", "layer_predictions", "isometric_until",
-           "plan_inputs", "predict_spec", "prediction_for", "profile_depths", "seed_key",
+           "plan_inputs", "theory_design", "predict_spec", "prediction_for", "profile_depths", "seed_key",
            "spec_activation"]
 
-# Relative accuracy of an SVD is about n * eps * s_max: below 10^-(digits) of the largest,
-# small singular values are noise.  Digits usable per dtype (common practice, no source:
-# a few digits short of the dtype's, to leave room for the n factor).
-_RELIABLE_DIGITS = {"float64": 13.0, "float32": 5.0}
 
 
 @dataclasses.dataclass(frozen=True)
@@ -123,6 +120,13 @@ class Analysis:
       profile: spread against depth, measured and predicted (``None`` without both).
       warnings: sentences a user must read before trusting the numbers.
       seconds: wall time per stage.
+      route: the measurement route taken (``"dense"``, ``"deep"`` or ``"matrix-free"``).
+      route_reason: why (:func:`~isoscope.routes.choose_route`, or the dense measurement's
+        shortfall that sent ``"auto"`` on to the deep route).
+      theory_label: what the prediction describes when it is not the spec's own design (a
+        convolution stack's plain-stack law, a factory's equivalent design); empty otherwise.
+      quadrature: per draw, the matrix-free route's quadrature summary (moments with their
+        standard errors, extreme Ritz values); ``None`` on the other routes.
     """
 
     spec: Spec
@@ -135,6 +139,10 @@ class Analysis:
     profile: DepthProfile | None
     warnings: tuple[str, ...]
     seconds: dict[str, float]
+    route: str = "dense"
+    route_reason: str = ""
+    theory_label: str = ""
+    quadrature: tuple[dict, ...] | None = None
 
 
 def spec_activation(spec: Spec) -> Activation:
@@ -145,14 +153,91 @@ def spec_activation(spec: Spec) -> Activation:
 
 
 def build_network(spec: Spec) -> Network:
-    """The :class:`~isoscope.network.Network` a spec describes."""
+    """The :class:`~isoscope.network.Network` a spec describes (a ``python`` family loads the
+    user's factory: :func:`isoscope.factory.load_factory` runs that one file)."""
     n, i = spec.network, spec.init
+    if n.family == "python":
+        return _factory(spec).network
     act = spec_activation(spec)
     if n.family == "residual":
         return residual_stack(n.width, n.depth, act, weights=i.weights,
                               sigma_w=i.sigma_w, sigma_b=i.sigma_b, alpha=n.alpha)
+    if n.family in CONV_FAMILIES:
+        return conv_stack(1 if n.family == "conv1d" else 2, n.channels, n.size, n.kernel, n.depth,
+                          act, weights=i.weights, sigma_w=i.sigma_w, sigma_b=i.sigma_b)
     return plain_stack(n.width, n.depth, act, weights=i.weights,
                        sigma_w=i.sigma_w, sigma_b=i.sigma_b)
+
+
+def _factory(spec: Spec):
+    from isoscope.factory import load_factory
+    base = Path(spec.source).parent if spec.source else Path.cwd()
+    try:
+        return load_factory(spec.network.factory, base, spec.network.width)
+    except InputError as e:
+        raise e.located(file=spec.source, key="network.factory") from None
+
+
+def theory_design(spec: Spec) -> tuple[Spec | None, str]:
+    """The design whose infinite-width law is compared with the spec's measurement, and a
+    label when it is not the spec's own.
+
+    * plain and residual stacks: the spec itself;
+    * convolution stacks: the plain stack of width ``channels`` with the same activation,
+      depth and scales.  Delta-orthogonal kernels (centre tap ``sigma_w H``, H Haar) make each
+      layer an orthogonal operator, and with circular padding the spectrum follows the plain
+      orthogonal law, with finite-size error set by the channels (Xiao et al. 2018, ICML,
+      sec. 2-3).  Gaussian (or uniform) kernels are compared with the plain Gaussian law at the
+      same sigma_w: the circular convolution is block diagonal over spatial frequencies, each
+      block a channels x channels Gaussian matrix of the same variance, so the weight
+      operator's own singular values follow the same Marchenko-Pastur law; that its products
+      with the position-diagonal D^l follow the free product of the plain stack is the
+      hypothesis the comparison tests (it assumes the Fourier-diagonal W and the position-
+      diagonal D are asymptotically free), and the label says so;
+    * a ``python`` factory: the built-in design it names as equivalent, if any; ``None``
+      otherwise (no theory for a black box).
+    """
+    n = spec.network
+    if n.family in ("plain", "residual"):
+        return spec, ""
+    analysis = spec.to_dict()["analysis"]
+    analysis["route"] = "auto"
+    if n.family in CONV_FAMILIES:
+        w = spec.init.weights
+        network = {"family": "plain", "width": n.channels, "depth": n.depth,
+                   "activation": n.activation}
+        if n.activation == "leaky-relu":
+            network["leaky_slope"] = n.leaky_slope
+        plain = parse_spec({"name": spec.name, "network": network,
+                            "init": {"weights": "orthogonal" if w == "delta-orthogonal" else w,
+                                     "sigma_w": spec.init.sigma_w, "sigma_b": spec.init.sigma_b},
+                            "analysis": analysis}, source=spec.source)
+        if w == "delta-orthogonal":
+            return plain, (f"plain orthogonal stack of width {n.channels} (delta-orthogonal "
+                           "kernels follow the orthogonal law, Xiao et al. 2018)")
+        return plain, (f"plain {w} stack of width {n.channels} (a hypothesis for {w} kernels: "
+                       "asymptotic freeness of the Fourier-diagonal convolution and the "
+                       "position-diagonal derivatives)")
+    equivalent = _factory(spec).equivalent
+    if equivalent is None:
+        return None, ""
+    network = dict(equivalent.get("network", {}), width=n.width)
+    try:
+        design = parse_spec({"name": spec.name, "network": network,
+                             "init": dict(equivalent.get("init", {})), "analysis": analysis},
+                            source=spec.source)
+    except InputError as e:
+        raise InputError(f"the factory's equivalent design is not a valid spec: {e.message}",
+                         expected="network and init tables of a plain or residual stack",
+                         hint="fix the mapping the factory returns as its third value",
+                         file=spec.source, key="network.factory") from None
+    if design.network.family not in ("plain", "residual"):
+        raise InputError(f"the factory's equivalent design has family {design.network.family!r}",
+                         expected="a plain or residual stack", file=spec.source,
+                         key="network.factory")
+    i, d = design.init, design.network
+    return design, (f"equivalent built-in design named by the factory: {d.family} {d.activation} "
+                    f"{i.weights}, depth {d.depth}, sigma_w {i.sigma_w:g}, sigma_b {i.sigma_b:g}")
 
 
 def plan_inputs(spec: Spec) -> tuple[InputPlan, tuple[str, ...]]:
@@ -163,6 +248,10 @@ def plan_inputs(spec: Spec) -> tuple[InputPlan, tuple[str, ...]]:
     every layer sees pre-activations of variance q*.  Residual stacks have no fixed point
     (the length grows with depth); their steady-state inputs are Gaussian of the spec's
     ``input_variance``.
+
+    A convolution stack or a factory with an equivalent design takes the steady state of the
+    design theory compares it with (:func:`theory_design`); a factory without one gets
+    Gaussian inputs of ``input_variance``.
 
     Positively homogeneous phi (linear, ReLU, leaky ReLU) with q* = 0 (no bias, and either a
     decaying length, ``sigma_w^2 E[phi(h)^2]/q < 1``, or a marginal one where every q is a fixed
@@ -178,6 +267,11 @@ def plan_inputs(spec: Spec) -> tuple[InputPlan, tuple[str, ...]]:
     if a.input == "gaussian":
         return InputPlan("gaussian", a.input_variance,
                          f"x ~ N(0, {a.input_variance:g}) in every coordinate"), ()
+    spec, _ = theory_design(spec)
+    if spec is None:
+        return (InputPlan("gaussian", a.input_variance,
+                          f"x ~ N(0, {a.input_variance:g}): a user's network without an "
+                          "equivalent design has no steady state known here"), ())
     if spec.network.family == "residual":
         return (InputPlan("gaussian", a.input_variance,
                           f"x ~ N(0, {a.input_variance:g}): a residual stack has no steady state"),
@@ -283,20 +377,17 @@ def seed_key(seed: int) -> jax.Array:
     return jnp.asarray([seed >> 32, seed & 0xFFFFFFFF], dtype=jnp.uint32)
 
 
-def _draw_input(plan: InputPlan, network: Network, key, dtype) -> jax.Array:
-    z = jax.random.normal(key, (network.width,), dtype)
+def _draw_input(plan: InputPlan, activation: Activation | None, width: int, key, dtype) -> jax.Array:
+    z = jax.random.normal(key, (width,), dtype)
     if plan.kind == "steady-state":
-        return network.activation.fn(jnp.sqrt(jnp.asarray(plan.variance, dtype)) * z)
+        return activation.fn(jnp.sqrt(jnp.asarray(plan.variance, dtype)) * z)
     return jnp.sqrt(jnp.asarray(plan.variance, dtype)) * z
 
 
-@functools.lru_cache(maxsize=None)
-def _svd_values():
-    return jax.jit(lambda m: jnp.linalg.svd(m, compute_uv=False))
-
-
 def _precision_warnings(spectrum: Spectrum) -> tuple[str, ...]:
-    digits = _RELIABLE_DIGITS.get(spectrum.dtype, 13.0)
+    if spectrum.method == "udt":     # the stabilised product resolves every ln s
+        return ()
+    digits = routes.RELIABLE_DIGITS.get(spectrum.dtype, 13.0)
     if spectrum.log10_condition > digits:
         return (f"singular values span {spectrum.log10_condition:.1f} decades, more than the "
                 f"{digits:.0f} that an SVD in {spectrum.dtype} resolves: the smallest ones are "
@@ -325,17 +416,24 @@ def predict_spec(spec: Spec, plan: InputPlan | None = None, points: int = 400) -
       plan: the inputs (default: :func:`plan_inputs` of the spec).
       points: grid size of the predicted density.
 
+    A convolution stack or a factory is predicted by its :func:`theory_design`.
+
     Raises:
-      TheoryError: theory has no prediction (no fixed point, a failed solve).
+      TheoryError: theory has no prediction (no fixed point, a failed solve, a user's network
+        without an equivalent design).
     """
-    n, i = spec.network, spec.init
     plan = plan_inputs(spec)[0] if plan is None else plan
     if plan.kind == "file" and not math.isfinite(plan.variance):
         x = _load_inputs(spec, np.float64)
         plan = dataclasses.replace(plan, variance=float(np.mean(x ** 2)))
-    return predict(spec_activation(spec), i.weights, i.sigma_w, i.sigma_b, n.depth,
+    design, _ = theory_design(spec)
+    if design is None:
+        raise TheoryError("a user's network has no infinite-width law unless its factory names "
+                          "an equivalent built-in design (a third return value)")
+    n, i = design.network, design.init
+    return predict(spec_activation(design), i.weights, i.sigma_w, i.sigma_b, n.depth,
                    family=n.family, alpha=n.alpha,
-                   input_variance=_input_mean_square(spec, plan), points=points)
+                   input_variance=_input_mean_square(design, plan), points=points)
 
 
 def prediction_for(spec: Spec, plan: InputPlan) -> tuple[Prediction | None, tuple[str, ...]]:
@@ -492,23 +590,31 @@ def analyze(spec: Spec, progress: Callable[[int, int], None] | None = None) -> A
 def _analyze(spec: Spec, progress: Callable[[int, int], None] | None) -> Analysis:
     t0 = time.perf_counter()
     network = build_network(spec)
+    design, label = theory_design(spec)
     dtype = jnp.float64 if spec.analysis.dtype == "float64" else jnp.float32
     plan, warnings = plan_inputs(spec)
     file_inputs = _load_inputs(spec, dtype) if plan.kind == "file" else None
     if file_inputs is not None:
         plan = dataclasses.replace(plan, variance=float(np.mean(file_inputs.astype(np.float64) ** 2)))
-    seconds = {"sampling": 0.0, "jacobian": 0.0, "svd": 0.0, "profile": 0.0}
-    depths = profile_depths(spec.network.depth) if network.layer is not None else None
+    route, reason = routes.choose_route(spec, network.layer is not None)
+    depths = (profile_depths(spec.network.depth)
+              if network.layer is not None and route != "matrix-free" else None)
     # theory depends on the design only: the prediction, then the profile's shallower
     # predictions, are solved on a worker thread while the draws run (the solver is NumPy;
     # XLA and LAPACK release the GIL)
     pool = futures.ThreadPoolExecutor(max_workers=1, thread_name_prefix="isoscope-theory")
     prediction = pool.submit(_timed_prediction, spec, plan)
-    pending = (pool.submit(_profile_after, prediction, spec, plan, depths)
-               if depths is not None else None)
+    pending = (pool.submit(_profile_after, prediction, design, plan, depths)
+               if depths is not None and design is not None else None)
     try:
-        return _measure(spec, network, dtype, plan, file_inputs, warnings, prediction,
-                        depths, pending, seconds, progress, t0)
+        draws = _draws(spec, network, design, dtype, plan, file_inputs, route, depths, progress)
+        why = routes.needs_deep(draws.spectrum, draws.fault) if (
+            spec.analysis.route == "auto" and route == "dense" and network.layer is not None) else None
+        if why is not None:
+            route, reason = "deep", f"auto: {why}; measured again on the deep route"
+            draws = _draws(spec, network, design, dtype, plan, file_inputs, route, depths, progress)
+        return _finish(spec, design, label, plan, warnings, prediction, pending, draws,
+                       route, reason, t0)
     finally:
         pool.shutdown(wait=False, cancel_futures=True)
 
@@ -520,77 +626,104 @@ def _timed_prediction(spec: Spec, plan: InputPlan):
     return predicted, notes, time.perf_counter() - t
 
 
-def _profile_after(prediction: futures.Future, spec: Spec, plan: InputPlan, depths: np.ndarray):
+def _profile_after(prediction: futures.Future, design: Spec, plan: InputPlan, depths: np.ndarray):
     """:func:`_profile_theory` once the prediction is known (``None`` without one)."""
     predicted = prediction.result()[0]
-    return None if predicted is None else _profile_theory(spec, plan, depths, predicted)
+    return None if predicted is None else _profile_theory(design, plan, depths, predicted)
 
 
-def _measure(spec, network, dtype, plan, file_inputs, warnings, prediction, depths, pending,
-             seconds, progress, t0) -> Analysis:
-    """The draws, the score, the agreement and the profile (the second half of analyze)."""
+@dataclasses.dataclass
+class _Draws:
+    """What the draws of one route measured."""
+
+    spectrum: Spectrum | None
+    fault: jac.Fault | None
+    fault_draw: int
+    partial: object
+    layers: list
+    quadrature: tuple[dict, ...] | None
+    seconds: dict[str, float]
+
+
+def _draws(spec, network, design, dtype, plan, file_inputs, route, depths, progress) -> _Draws:
+    """Every draw on one route: parameters, input, the route's ln s (and on the first draw the
+    partial products at the profile depths), the per-layer statistics, pooled in a Spectrum."""
     root = seed_key(spec.analysis.seed)
     total = spec.analysis.inputs
-    singular, fault, partial, layers = [], None, None, []
+    activation = spec_activation(design) if plan.kind == "steady-state" else None
+    seconds = {"sampling": 0.0, "jacobian": 0.0, "svd": 0.0, "profile": 0.0}
+    rows, fault, partial, layers, quadrature, i = [], None, None, [], [], 0
     for i in range(total):
         t = time.perf_counter()
-        k_params, k_input = jax.random.split(jax.random.fold_in(root, i))
+        k_draw = jax.random.fold_in(root, i)
+        k_params, k_input = jax.random.split(k_draw)
         params = network.init(k_params, dtype)
         x = (jnp.asarray(file_inputs[i]) if file_inputs is not None
-             else _draw_input(plan, network, k_input, dtype))
+             else _draw_input(plan, activation, network.width, k_input, dtype))
         jax.block_until_ready((params, x))
         seconds["sampling"] += time.perf_counter() - t
         if depths is not None:
             t = time.perf_counter()
             layers.append(jac.layer_statistics(network, params, x))
             seconds["profile"] += time.perf_counter() - t
-        t = time.perf_counter()
-        profiled = (jac.profiled_jacobian(network, params, x, depths)
-                    if i == 0 and depths is not None else None)
-        jmat = (profiled.jacobian if profiled is not None
-                else jac.dense_jacobian(network, params, x)).block_until_ready()
-        seconds["jacobian"] += time.perf_counter() - t
-        if not bool(jnp.all(jnp.isfinite(jmat))):
-            fault = (jac.forward_fault(network, params, x) or jac.jacobian_fault(network, params, x)
-                     or jac.Fault("jacobian", 0, "the Jacobian is not finite"))
-            if progress is not None:
-                progress(i + 1, total)
-            break
-        t = time.perf_counter()
-        if profiled is not None:
-            partial = jac.partial_spectra(profiled)
-            singular.append(partial.singular_values(-1))  # the last kept depth is the full depth
-            seconds["profile"] += time.perf_counter() - t
-        else:
-            singular.append(np.asarray(_svd_values()(jmat)))
-            seconds["svd"] += time.perf_counter() - t
+        draw = routes.measure_draw(route, network, params, x, depths if i == 0 else None, spec,
+                                   jax.random.fold_in(k_draw, 2 ** 31 - 1))
+        for stage, v in draw.seconds.items():
+            seconds[stage] += v
         if progress is not None:
             progress(i + 1, total)
+        if draw.fault is not None:
+            fault = draw.fault
+            break
+        rows.append(draw.log_s)
+        partial = draw.partial if i == 0 else partial
+        if draw.quadrature is not None:
+            quadrature.append(draw.quadrature)
+    method = {"dense": "svd", "deep": "udt", "matrix-free": "slq"}[route]
+    spectrum = None if fault is not None else from_log_singular_values(np.stack(rows), dtype, method)
+    return _Draws(spectrum, fault, i, partial, layers, tuple(quadrature) or None, seconds)
+
+
+def _finish(spec, design, label, plan, warnings, prediction, pending, draws: _Draws, route,
+            reason, t0) -> Analysis:
+    """The score, the agreement and the profile (the second half of analyze)."""
+    seconds = draws.seconds
     predicted, notes, seconds["theory"] = prediction.result()
     warnings += notes
+    depth = (design or spec).network.depth
+    spectrum, fault = draws.spectrum, draws.fault
     if fault is not None:
-        spectrum, score = None, non_finite_score(f"draw {i}: {fault.detail}")
-        warnings += (f"measurement stopped: {fault.detail} (draw {i}); lower sigma_w or the depth, "
-                     "or use float64",)
+        score = non_finite_score(f"draw {draws.fault_draw}: {fault.detail}")
+        warnings += (f"measurement stopped: {fault.detail} (draw {draws.fault_draw}); lower "
+                     "sigma_w or the depth, or use float64",)
     else:
-        spectrum = from_singular_values(np.stack(singular), dtype)
-        score = score_spectrum(spectrum, spec.network.depth)
+        score = score_spectrum(spectrum, depth)
         warnings += _precision_warnings(spectrum)
+    if route == "matrix-free":
+        warnings += ("matrix-free route: each draw's spectrum is the stochastic Lanczos "
+                     f"quadrature estimate ({spec.analysis.probes} probes x "
+                     f"{spec.analysis.lanczos_steps} steps), shown as its quantiles; there is no "
+                     "depth profile on this route",)
+    if label and predicted is not None:
+        warnings += (f"the prediction is that of the {label}",)
     agree = profile = None
     if predicted is not None and spectrum is not None:
         agree = agreement(spectrum, predicted)
         warnings += agree.warnings
         bulk, _ = split_outliers(spectrum, predicted)
-        score = score_spectrum(bulk, spec.network.depth, judged_gain(agree, predicted, bulk),
+        score = score_spectrum(bulk, depth, judged_gain(agree, predicted, bulk),
                                scored=agree.compared)
-        if partial is not None:
+        if draws.partial is not None and pending is not None:
             t = time.perf_counter()
             try:
                 predictions, predicted_layers = pending.result()
-                profile = depth_profile(spec, partial, predictions, layers, predicted_layers)
+                profile = depth_profile(spec, draws.partial, predictions, draws.layers,
+                                        predicted_layers)
             except TheoryError as e:
                 warnings += (f"no depth profile: {e}",)
             seconds["profile"] += time.perf_counter() - t
     seconds["total"] = time.perf_counter() - t0
     return Analysis(spec=spec, inputs=plan, spectrum=spectrum, fault=fault, score=score,
-                    predicted=predicted, agreement=agree, profile=profile, warnings=warnings, seconds=seconds)
+                    predicted=predicted, agreement=agree, profile=profile, warnings=warnings,
+                    seconds=seconds, route=route, route_reason=reason, theory_label=label,
+                    quadrature=draws.quadrature)

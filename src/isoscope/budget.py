@@ -22,6 +22,14 @@ float32), N the width, L the depth and D the number of draws:
 * the Python, NumPy and JAX runtime itself, 300 MB (measured: 204 MB resident after
   ``import isoscope``, plus the compiled functions).
 
+The deep route keeps a frame U, the factor T and the layer's product (about ``6 b N^2``,
+counted as the dense Jacobian's ``4 + 2``).  The matrix-free route forms no N x N matrix: its
+Lanczos basis holds ``(steps + 2) N`` numbers per probe, and the weights are sampled and kept
+once (``P`` plus one layer's transient, as :func:`isoscope.initializers` samples them layer by
+layer).  A convolution stack's parameters are its kernels, ``L k^d C^2`` numbers, and its
+"width" N is channels x positions.  A user's factory's parameters are not known before it runs:
+they are not counted (the estimate covers the Jacobian side only).
+
 Time (seconds) counts floating-point operations over a rate measured on the spot (one
 matrix product in NumPy): per draw, the forward-mode Jacobian ``2 L N^3`` (L products of
 N x N matrices), the SVD about ``(8/3) N^3`` (Golub & Van Loan, *Matrix Computations*, 4th ed.,
@@ -90,16 +98,36 @@ def estimate(spec, rate: float | None = None) -> Budget:
       spec: a validated :class:`~isoscope.spec.Spec`.
       rate: floating-point operations per second (default: measured now).
     """
-    n, L, d = spec.network.width, spec.network.depth, spec.analysis.inputs
+    from isoscope.routes import choose_route
+    from isoscope.spec import CONV_FAMILIES
+    net, d = spec.network, spec.analysis.inputs
+    n, L = net.width, net.depth or 0
     b = _BYTES[spec.analysis.dtype]
-    params = b * (L * n * n + L * n + 1)
-    transient = (3 if spec.init.weights == "orthogonal" else 2) * params
+    route, _ = choose_route(spec, net.family != "python")
+    if net.family == "python":
+        params = 0
+    elif net.family in CONV_FAMILIES:
+        params = b * (L * net.kernel ** len(net.size) * net.channels ** 2 + L * net.channels + 1)
+    else:
+        params = b * (L * n * n + L * n + 1)
+    dense_weights = net.family in ("plain", "residual")
+    transient = ((3 if spec.init.weights == "orthogonal" else 2) * params if dense_weights
+                 else params)
     jacobian = b * n * n
     singular = 8 * d * n
-    peak = (2 * params + transient + (4 + 2 + _PROFILE_POINTS) * jacobian + (3 * 8 + 1) * d * n
-            + _RUNTIME_BYTES)
-    per_draw = 2.0 * L * n ** 3 + (8 / 3) * n ** 3
-    if spec.init.weights == "orthogonal":
+    if route == "matrix-free":
+        layer = params // max(L, 1)
+        vectors = b * (spec.analysis.lanczos_steps + 2) * n * spec.analysis.probes
+        peak = params + 3 * layer + vectors + (3 * 8 + 1) * d * n + _RUNTIME_BYTES
+        per_draw = spec.analysis.probes * spec.analysis.lanczos_steps * (
+            4.0 * L * n * n + 2.0 * spec.analysis.lanczos_steps * n)
+    else:
+        peak = (2 * params + transient + (4 + 2 + _PROFILE_POINTS) * jacobian
+                + (3 * 8 + 1) * d * n + _RUNTIME_BYTES)
+        per_draw = 2.0 * L * n ** 3 + (8 / 3) * n ** 3
+        if route == "deep":
+            per_draw += L * (4 / 3) * n ** 3           # a QR of the frame at every layer
+    if dense_weights and spec.init.weights == "orthogonal":
         per_draw += L * (8 / 3) * n ** 3
     flops = d * per_draw
     rate = _flop_rate() if rate is None else rate
@@ -155,12 +183,16 @@ def check(spec, available: int | None = None) -> Budget:
     avail = available_memory() if available is None else available
     if avail is not None and bud.peak_bytes > avail:
         n = spec.network
+        from isoscope.routes import choose_route
+        route = choose_route(spec, n.family != "python")[0]
         raise InputError(
             f"width {n.width}, depth {n.depth}, {spec.analysis.inputs} draws in {spec.analysis.dtype} "
+            f"on the {route} route "
             f"needs about {_size(bud.peak_bytes)} of memory (weights {_size(bud.params_bytes)} per draw, "
             f"Jacobian {_size(bud.jacobian_bytes)}) and at least {_duration(bud.seconds)}, but "
             f"{_size(avail)} is available",
             expected=f"an estimated peak below {_size(avail)}",
             hint="lower network.width or network.depth (the weights take depth x width^2 numbers), "
-                 "analysis.inputs, or use dtype = \"float32\"")
+                 "analysis.inputs, use dtype = \"float32\", or route = \"matrix-free\" (no N x N "
+                 "matrix)")
     return bud

@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import contextlib
 import functools
+import math
 from collections import OrderedDict
 from collections.abc import Callable, Iterator
 from typing import Protocol
@@ -26,7 +27,8 @@ import numpy as np
 from isoscope.errors import InputError
 
 __all__ = ["Initializer", "gaussian", "orthogonal", "uniform", "gaussian_bias",
-           "get_initializer", "initializer_names", "reused_draws"]
+           "delta_orthogonal", "conv_kernel", "get_initializer", "initializer_names",
+           "reused_draws"]
 
 
 class Initializer(Protocol):
@@ -236,8 +238,92 @@ _WEIGHT_INITIALIZERS: dict[str, Callable[[float], Initializer]] = {
 
 
 def initializer_names() -> tuple[str, ...]:
-    """Names accepted by :func:`get_initializer`."""
-    return tuple(_WEIGHT_INITIALIZERS)
+    """Every weight initializer name: the dense ones of :func:`get_initializer` and the
+    convolution kernels' ``"delta-orthogonal"`` (:func:`conv_kernel`)."""
+    return (*_WEIGHT_INITIALIZERS, "delta-orthogonal")
+
+
+# ----------------------------------------------------------------------------- convolutions
+# A kernel stack has shape (L, *taps, C_in, C_out) (lax.conv_general_dilated's "WIO"/"HWIO"
+# layout with a leading layer axis): h[p, o] = sum_{t, i} x[p + t - c, i] K[t, i, o].
+
+def _kernel_fans(shape: tuple[int, ...]) -> tuple[int, int, int]:
+    """``(fan_in, fan_out, taps)`` of a kernel stack ``(L, *taps, C_in, C_out)``."""
+    if len(shape) < 4:
+        raise InputError(f"kernel shape {shape} has fewer than 4 axes",
+                         expected="(layers, *taps, channels_in, channels_out)")
+    taps = math.prod(shape[1:-2])
+    return int(shape[-2]) * taps, int(shape[-1]) * taps, taps
+
+
+def delta_orthogonal(scale: float = 1.0) -> Initializer:
+    """Delta-orthogonal kernels: every tap zero except the centre, ``K[c, :, :] = scale * H``
+    with H Haar-orthogonal (Xiao, Bahri, Sohl-Dickstein, Schoenholz & Pennington 2018, ICML,
+    algorithm 1 for equal channel counts).
+
+    With circular padding the layer's operator is then ``x[p, :] -> scale * x[p, :] H`` at
+    every position, an orthogonal map on channels x positions times ``scale``, so a stack of
+    them has the singular values of a plain orthogonal stack of width ``channels``.
+    """
+    scale = float(scale)
+
+    def init(key, shape, dtype=jnp.float64):
+        _kernel_fans(shape)
+        layers, taps, c_in, c_out = shape[0], shape[1:-2], shape[-2], shape[-1]
+        h = _unit("haar", _unit_haar, key, (layers, c_in, c_out), dtype)
+        centre = tuple(t // 2 for t in taps)
+        kernel = jnp.zeros(shape, dtype).at[(slice(None), *centre)].set(h)
+        return kernel * jnp.asarray(scale, dtype)
+
+    return init
+
+
+def _gaussian_kernel(scale: float) -> Initializer:
+    """Gaussian kernels ``K ~ N(0, scale^2 / (C_in * taps))`` (the fan-in variance of the
+    convolution's rows, He et al. 2015, sec. 2.2)."""
+    def init(key, shape, dtype=jnp.float64):
+        fan_in, _, _ = _kernel_fans(shape)
+        return (_unit("normal", _unit_normal, key, tuple(shape), dtype)
+                * jnp.asarray(scale / fan_in ** 0.5, dtype))
+    return init
+
+
+def _uniform_kernel(scale: float) -> Initializer:
+    """Uniform kernels on ``[-a, a]``, ``a = scale sqrt(6 / (fan_in + fan_out))`` with
+    ``fan = channels * taps`` (Glorot & Bengio 2010, eq. 16 with a gain)."""
+    def init(key, shape, dtype=jnp.float64):
+        fan_in, fan_out, _ = _kernel_fans(shape)
+        bound = scale * (6.0 / (fan_in + fan_out)) ** 0.5
+        return _unit("uniform", _unit_uniform, key, tuple(shape), dtype) * jnp.asarray(bound, dtype)
+    return init
+
+
+_KERNEL_INITIALIZERS: dict[str, Callable[[float], Initializer]] = {
+    "delta-orthogonal": delta_orthogonal,
+    "gaussian": _gaussian_kernel,
+    "uniform": _uniform_kernel,
+}
+
+
+def conv_kernel(name: str, scale: float) -> Initializer:
+    """The convolution-kernel initializer registered under ``name`` at scale sigma_w.
+
+    ``"delta-orthogonal"`` (:func:`delta_orthogonal`), ``"gaussian"`` or ``"uniform"`` with
+    the fans of a kernel (channels times taps).
+
+    Raises:
+      InputError: for a name without a kernel form (``"orthogonal"`` is a dense matrix) or a
+        negative scale.
+    """
+    key = str(name).lower()
+    if key not in _KERNEL_INITIALIZERS:
+        raise InputError(f"weight initializer {name!r} has no convolution kernel form",
+                         expected=f"one of {', '.join(_KERNEL_INITIALIZERS)}",
+                         hint="delta-orthogonal is the orthogonal initializer of a convolution")
+    if not scale >= 0:
+        raise InputError(f"weight scale sigma_w = {scale!r} is negative or not a number",
+                         expected="a number >= 0", hint="give sigma_w as a scale, not a variance")
+    return _KERNEL_INITIALIZERS[key](float(scale))
 
 
 def get_initializer(name: str, scale: float) -> Initializer:
@@ -247,6 +333,10 @@ def get_initializer(name: str, scale: float) -> Initializer:
       InputError: for an unknown name (the message lists the allowed names) or a negative scale.
     """
     key = str(name).lower()
+    if key == "delta-orthogonal":
+        raise InputError("weight initializer 'delta-orthogonal' is a convolution kernel",
+                         expected=f"one of {', '.join(_WEIGHT_INITIALIZERS)} for a dense layer",
+                         hint="use orthogonal for dense layers")
     if key not in _WEIGHT_INITIALIZERS:
         raise InputError(f"unknown weight initializer {name!r}",
                          expected=f"one of {', '.join(_WEIGHT_INITIALIZERS)}",

@@ -17,6 +17,9 @@ Routes (each a pure function of ``(network, params, x)``):
 * :func:`qr_log_singular_values` -- log singular values of very deep products by QR
   accumulation (Benettin et al. 1980): ``Q_t R_t = qr(J_t Q_{t-1})``, ``ln s ~ sum_t ln|diag R_t|``,
   which never forms J and so never over- or underflows.
+* :func:`stable_log_singular_values` -- the deep route: ``ln s`` of J to full accuracy by a
+  stabilised product ``U D T`` updated with pivoted QR at every layer, and
+  :func:`graded_log_singular_values`, the final recovery by one-sided Jacobi.
 
 The compiled functions are cached on the network's ``apply``/``layer`` objects, which the
 built-in families share across networks of one family and activation.
@@ -36,7 +39,8 @@ from isoscope.network import Network
 
 __all__ = ["dense_jacobian", "layer_product", "qr_log_singular_values", "forward_fault",
            "jacobian_fault", "Fault", "trace_count", "ProfiledJacobian", "profiled_jacobian",
-           "PartialSpectra", "partial_spectra", "LayerStatistics", "layer_statistics"]
+           "PartialSpectra", "partial_spectra", "LayerStatistics", "layer_statistics",
+           "StableProduct", "stable_log_singular_values", "graded_log_singular_values"]
 
 _TRACES = {"count": 0}
 
@@ -371,3 +375,214 @@ def qr_log_singular_values(network: Network, params, x: jax.Array) -> np.ndarray
     """
     logs = _compiled_qr(network.layer)(network.layer_slices(params), x)
     return np.sort(np.asarray(logs))[::-1]
+
+
+# ----------------------------------------------------------------------------- the deep route
+class StableProduct(NamedTuple):
+    """Singular values of ``J = J_L ... J_1`` from the stabilised product (the deep route).
+
+    Attributes:
+      log_s: ``(N,)`` float64, ``ln s_i(J)`` decreasing, to full accuracy however far the
+        singular values spread (no under- or overflow: ``ln s`` is carried, never s).
+      partial_log_s: ``(len(depths), N)`` the same for ``J_l ... J_1`` at the requested depths
+        (the last row is the full depth when it is requested), or ``None``.
+      depths: those depths, or ``None``.
+      layer_log_stretch: ``(L, N)`` float64, ``ln |R_ll,ii|`` of each layer's pivoted QR step:
+        the per-layer log-stretching of the frame (the Lyapunov view; for long products its
+        column means converge to the Lyapunov exponents, Benettin et al. 1980).
+      sweeps: one-sided Jacobi sweeps the final recovery took (full depth).
+    """
+
+    log_s: np.ndarray
+    partial_log_s: np.ndarray | None
+    depths: np.ndarray | None
+    layer_log_stretch: np.ndarray
+    sweeps: int
+
+
+def _udt_step(a, log_d, t):
+    """One update of the graded product: the new frame ``A = J_l U`` meets ``D T``.
+
+    Householder QR with column pivoting of ``M = A D`` (Businger & Golub 1965), carried out
+    on the *unscaled* A so that d may leave the float range: at step k the pivot p is the
+    column whose remaining part is largest in M, ``argmax_j ln||A^(k)_{k:,j}|| + ln d_j``
+    (in logs), and the reflector acts on A alone.  With R the triangular factor of A (diagonal
+    made positive) ``ln d_new_k = ln r_kk + ln d_p`` and the new factor has rows
+    ``F_kj = (r_kj / r_kk) exp(ln d_j - ln d_p)`` over the columns j not yet chosen
+    (``|F_kj| <= 1`` by the pivoting, so ``T_new = F T`` stays well-conditioned), 1 at p, 0 at
+    the columns already chosen.  When every remaining column of M is exactly zero (an exactly
+    rank-deficient layer) ``ln d_new_k = -inf`` and ``F_k = e_p``: an exact zero singular
+    value.  Returns ``(Q, ln d_new, T_new, ln r_kk)``.
+    """
+    n, dtype, ldt = a.shape[0], a.dtype, log_d.dtype
+    rows = jnp.arange(n)
+    neg_inf = jnp.array(-jnp.inf, ldt)
+
+    def step(k, state):
+        w, chosen, vs, betas, signs, f, new_d, log_r = state
+        below = (rows >= k).astype(dtype)
+        norms = jnp.linalg.norm(w * below[:, None], axis=0)
+        key = jnp.where(chosen, neg_inf, jnp.log(norms).astype(ldt) + log_d)
+        p = jnp.argmax(key)
+        x = w[:, p] * below
+        alpha = norms[p]
+        sign = jnp.where(x[k] < 0, -1.0, 1.0).astype(dtype)   # H x = -sign alpha e_k
+        v = x.at[k].add(sign * alpha)
+        vv = v @ v
+        beta = jnp.where(vv > 0, 2.0 / jnp.where(vv > 0, vv, 1.0), 0.0)
+        free = (~chosen).astype(dtype)
+        w = w - beta * v[:, None] * (v @ w)[None, :] * free[None, :]
+        r = -sign * w[k]                                       # row k of R, r_kk = alpha
+        chosen_next = chosen.at[p].set(True)
+        deg = key[p] == -jnp.inf
+        lr = jnp.log(alpha).astype(ldt)
+        expo = jnp.log(jnp.abs(r)).astype(ldt) - lr + log_d - jnp.where(deg, 0, log_d[p])
+        row = jnp.sign(r) * jnp.exp(jnp.minimum(expo, 709.0)).astype(dtype)
+        row = jnp.where(chosen_next | deg, 0, row).at[p].set(1)
+        return (w, chosen_next, vs.at[:, k].set(v), betas.at[k].set(beta),
+                signs.at[k].set(-sign), f.at[k].set(row),
+                new_d.at[k].set(jnp.where(deg, neg_inf, lr + log_d[p])), log_r.at[k].set(lr))
+
+    def build(i, q):                    # Q = H_0 ... H_(n-1), applied from the last reflector
+        k = n - 1 - i
+        v = vs[:, k]
+        return q - betas[k] * v[:, None] * (v @ q)[None, :]
+
+    init = (a, jnp.zeros(n, bool), jnp.zeros_like(a), jnp.zeros(n, dtype), jnp.zeros(n, dtype),
+            jnp.zeros_like(a), jnp.zeros(n, ldt), jnp.zeros(n, ldt))
+    _, _, vs, betas, signs, f, new_d, log_r = jax.lax.fori_loop(0, n, step, init)
+    q = jax.lax.fori_loop(0, n, build, jnp.eye(n, dtype=dtype)) * signs[None, :]
+    return q, new_d, f @ t, log_r
+
+
+@functools.lru_cache(maxsize=None)
+def _compiled_stable(layer):
+    def run(slices, x, slot, count):
+        n, dtype = x.shape[0], x.dtype
+        ld_dtype = jnp.float64 if jax.config.read("jax_enable_x64") else dtype
+
+        def step(carry, inputs):
+            p, where = inputs
+            x, u, log_d, t, t_buf, d_buf = carry
+            y, a = jax.vmap(lambda v: jax.jvp(lambda z: layer(p, z), (x,), (v,)), in_axes=1,
+                            out_axes=(None, 1))(u)
+            u, log_d, t, log_r = _udt_step(a, log_d, t)
+            t_buf = jax.lax.dynamic_update_index_in_dim(t_buf, t, where, 0)
+            d_buf = jax.lax.dynamic_update_index_in_dim(d_buf, log_d, where, 0)
+            return (y, u, log_d, t, t_buf, d_buf), log_r
+
+        eye = jnp.eye(n, dtype=dtype)
+        init = (x, eye, jnp.zeros(n, ld_dtype), eye, jnp.zeros((count + 1, n, n), dtype),
+                jnp.zeros((count + 1, n), ld_dtype))
+        (_, _, _, _, t_buf, d_buf), stretch = jax.lax.scan(step, init, (slices, slot))
+        return t_buf[:count], d_buf[:count], stretch
+
+    return jax.jit(_counted(run), static_argnums=(3,))
+
+
+def graded_log_singular_values(log_d: np.ndarray, t: np.ndarray, tol: float | None = None,
+                               max_sweeps: int = 80) -> tuple[np.ndarray, int]:
+    """``ln s`` of ``D T`` (D diagonal given as ``ln d``, T well-conditioned) to high relative
+    accuracy, however far d spreads, by one-sided Jacobi on columns held as (unit vector, log
+    scale).
+
+    The columns of ``X = (D T)^T`` are ``d_k T_k,:``; Hestenes' one-sided Jacobi rotates pairs
+    of columns until all are orthogonal, and the singular values are the column norms
+    (Demmel & Veselic 1992, SIAM J. Matrix Anal. Appl. 13: accurate to a relative error set by
+    the conditioning of T, not of D).  A column is kept as ``e^l w``, ``|w| = 1``; for a pair
+    with ``delta = l_a - l_b >= 0`` and ``gamma = w_a . w_b`` the rotation
+    ``zeta = (|b|^2 - |a|^2) / (2 a.b) = -sinh(delta)/gamma``, ``t = sign(zeta)/(|zeta| +
+    sqrt(1 + zeta^2))`` is carried as ``kappa = t e^delta``, finite for any delta, so that
+    ``a' = e^(l_a) c (w_a - kappa e^(-2 delta) w_b)`` and ``b' = e^(l_b) c (kappa w_a + w_b)``
+    never form ``e^delta`` (for delta -> inf, ``b'`` is the Gram-Schmidt projection
+    ``w_b - gamma w_a``).  Pairs are swept in round-robin order, N/2 disjoint pairs at once.
+
+    Returns:
+      ``(ln s decreasing, sweeps)``.
+    """
+    w = np.array(np.asarray(t, dtype=np.float64).T)          # columns w_k = T[k, :]
+    lv = np.asarray(log_d, dtype=np.float64).copy()
+    n = lv.size
+    norms = np.linalg.norm(w, axis=0)
+    zero = norms == 0
+    w[:, zero], norms[zero] = 1.0 / np.sqrt(n), 1.0
+    w /= norms
+    lv += np.where(zero, -np.inf, np.log(norms))
+    tol = n * np.finfo(np.float64).eps if tol is None else tol
+    players = list(range(n)) + ([-1] if n % 2 else [])
+    m = len(players)
+    sweeps = 0
+    for sweeps in range(1, max_sweeps + 1):
+        worst = 0.0
+        order = players[:]
+        for _ in range(m - 1):
+            pa = np.array([order[k] for k in range(m // 2)])
+            pb = np.array([order[m - 1 - k] for k in range(m // 2)])
+            keep = (pa >= 0) & (pb >= 0)
+            pa, pb = pa[keep], pb[keep]
+            swap = lv[pa] < lv[pb]                        # a: the larger column of each pair
+            pa, pb = np.where(swap, pb, pa), np.where(swap, pa, pb)
+            gamma = np.einsum("ij,ij->j", w[:, pa], w[:, pb])
+            gamma = np.where(np.isfinite(lv[pb]), gamma, 0.0)
+            worst = max(worst, float(np.max(np.abs(gamma), initial=0.0)))
+            act = (np.abs(gamma) > tol) & np.isfinite(lv[pb])   # a zero column is orthogonal
+            if act.any():
+                a_i, b_i, g = pa[act], pb[act], gamma[act]
+                delta = lv[a_i] - lv[b_i]
+                r2 = np.exp(-2.0 * delta)                 # (|b| / |a|)^2 <= 1
+                # |zeta| e^-delta = (1 - r2) / (2 |gamma|); kappa = t e^delta
+                z = (1.0 - r2) / (2.0 * np.abs(g))
+                kappa = -np.sign(g) / (z + np.sqrt(r2 + z * z))
+                c = 1.0 / np.sqrt(1.0 + kappa * kappa * r2)
+                wa, wb = w[:, a_i], w[:, b_i]
+                new_a = c * (wa - kappa * r2 * wb)
+                new_b = c * (kappa * wa + wb)
+                na, nb = np.linalg.norm(new_a, axis=0), np.linalg.norm(new_b, axis=0)
+                w[:, a_i], w[:, b_i] = new_a / na, new_b / nb
+                lv[a_i] += np.log(na)
+                lv[b_i] += np.log(nb)
+            order = [order[0]] + [order[-1]] + order[1:-1]
+        if worst <= tol:
+            break
+    return np.sort(lv)[::-1], sweeps
+
+
+def stable_log_singular_values(network: Network, params, x: jax.Array, depths=None) -> StableProduct:
+    """``ln s`` of ``J = J_L ... J_1`` to full accuracy, by a stabilised product (the deep route).
+
+    The partial product is kept as ``U D T`` (U orthogonal, D diagonal held as ``ln d``, T
+    well-conditioned) and updated at every layer by :func:`_udt_step` (QR with pre-pivoting;
+    the method of Loh & Gubernatis 1992 for long matrix products in determinant quantum Monte
+    Carlo, whose accuracy Bai, Lee, Li & Xu 2011, Linear Algebra Appl. 435, analyse); each
+    step pushes the frame U through one layer by ``jax.jvp`` (under ``jax.vmap``) inside one
+    ``lax.scan``, compiled once per (layer function, width, depth, dtype, number of depths).
+    ``s(J) = s(D T)`` since U is orthogonal; :func:`graded_log_singular_values` recovers it.
+    ``ln d`` is accumulated in float64 whatever the dtype of the parameters.
+
+    Args:
+      network: a stack with per-layer structure (plain, residual, convolution).
+      params, x: parameters and input.
+      depths: increasing layer counts in ``1..L`` at which to keep ``ln s`` of the partial
+        product as well (default: only the full depth).
+    """
+    if network.layer is None:
+        raise ValueError("stable_log_singular_values needs a stack with per-layer structure")
+    keep = np.asarray([network.depth] if depths is None else depths, dtype=int)
+    if keep.size == 0 or np.any(np.diff(keep) <= 0) or keep[0] < 1 or keep[-1] > network.depth:
+        raise ValueError(f"depths must increase within 1..{network.depth}, got {keep.tolist()}")
+    slot = np.full(network.depth, keep.size, dtype=np.int32)
+    slot[keep - 1] = np.arange(keep.size, dtype=np.int32)
+    t_buf, d_buf, stretch = _compiled_stable(network.layer)(
+        network.layer_slices(params), x, jnp.asarray(slot), int(keep.size))
+    t_buf, d_buf = np.asarray(t_buf), np.asarray(d_buf)
+    rows, sweeps = [], 0
+    for t, d in zip(t_buf, d_buf):
+        log_s, sweeps = graded_log_singular_values(d, t)
+        rows.append(log_s)
+    rows = np.stack(rows)
+    full = rows[-1] if keep[-1] == network.depth else None
+    if full is None:
+        full = stable_log_singular_values(network, params, x).log_s
+    return StableProduct(full, None if depths is None else rows,
+                         None if depths is None else keep,
+                         np.asarray(stretch, dtype=np.float64), sweeps)

@@ -14,12 +14,17 @@ The residual branch scale alpha is a parameter leaf for the same reason.
 Model (see docs/architecture.md):
   plain:     h^l = W^l x^{l-1} + b^l,  x^l = phi(h^l)
   residual:  h^l = W^l x^{l-1} + b^l,  x^l = x^{l-1} + alpha * phi(h^l)
+  conv1d/2d: h^l = K^l * x^{l-1} + b^l, x^l = phi(h^l), with * a circular convolution over
+             the positions (kernels ``K: (L, *taps, C, C)``, biases ``b: (L, C)``); x is
+             held flat, channel-last, ``x[p * C + c]``, so the Jacobian is over
+             channels x positions.
 """
 
 from __future__ import annotations
 
 import dataclasses
 import functools
+import math
 from collections.abc import Callable
 from typing import Any
 
@@ -28,12 +33,12 @@ import jax.numpy as jnp
 
 from isoscope.activations import Activation, get_activation
 from isoscope.errors import InputError
-from isoscope.initializers import gaussian_bias, get_initializer
+from isoscope.initializers import conv_kernel, gaussian_bias, get_initializer
 
-__all__ = ["Network", "plain_stack", "residual_stack", "custom_network", "FAMILIES"]
+__all__ = ["Network", "plain_stack", "residual_stack", "conv_stack", "custom_network", "FAMILIES"]
 
 Params = Any  # a pytree of arrays
-FAMILIES = ("plain", "residual", "python")
+FAMILIES = ("plain", "residual", "conv1d", "conv2d", "python")
 
 
 @dataclasses.dataclass(frozen=True)
@@ -51,6 +56,8 @@ class Network:
         slice of the stacked parameters (see :func:`layer_slices`).
       trace: ``trace(params, x) -> (y, h)`` with the pre-activations ``h: (L, N)``.
       weights, sigma_w, sigma_b, alpha: the initialization the stack was built with.
+      channels, size, kernel: a convolution stack's channels, spatial size (a tuple) and
+        kernel size (``None`` for dense stacks).
     """
 
     init: Callable[[jax.Array], Params]
@@ -65,17 +72,22 @@ class Network:
     sigma_w: float | None = None
     sigma_b: float | None = None
     alpha: float | None = None
+    channels: int | None = None
+    size: tuple[int, ...] | None = None
+    kernel: int | None = None
 
     def layer_slices(self, params: Params) -> Params:
         """Per-layer parameters as a pytree with a leading layer axis (for ``lax.scan``)."""
         if self.layer is None:
             raise InputError("this network has no per-layer structure (a user's black box)",
-                             expected="a built-in family (plain, residual)",
+                             expected="a built-in family (plain, residual, conv1d, conv2d)",
                              hint="use the dense Jacobian route for black-box networks")
         return _slices(params)
 
 
 def _slices(params: Params) -> Params:
+    if "K" in params:
+        return {"K": params["K"], "b": params["b"]}
     return {"W": params["W"], "b": params["b"],
             "alpha": jnp.broadcast_to(params["alpha"], params["b"].shape[:1])}
 
@@ -187,15 +199,106 @@ def residual_stack(width: int, depth: int, activation: str | Activation = "relu"
     return _stack("residual", width, depth, activation, weights, sigma_w, sigma_b, alpha)
 
 
-def custom_network(init: Callable[[jax.Array], Params], apply: Callable[[Params, jax.Array], jax.Array],
+@functools.lru_cache(maxsize=None)
+def _conv_forward(size: tuple[int, ...], activation: Activation):
+    """Cached ``(layer, apply, trace)`` of a circular convolution stack on ``size`` positions.
+
+    One layer pads the positions periodically by ``(k - 1) / 2`` on each side
+    (``jnp.pad(mode="wrap")``) and correlates with ``lax.conv_general_dilated`` at VALID
+    padding, so ``h[p, o] = sum_{t, i} x[(p + t - c) mod size, i] K[t, i, o] + b[o]``.
+    """
+    phi, dims = activation.fn, len(size)
+    numbers = ("NWC", "WIO", "NWC") if dims == 1 else ("NHWC", "HWIO", "NHWC")
+
+    def pre(p, x):
+        k = p["K"]
+        image = x.reshape((1, *size, k.shape[-1]))
+        pad = [(0, 0)] + [((t - 1) // 2, (t - 1) // 2) for t in k.shape[:-2]] + [(0, 0)]
+        out = jax.lax.conv_general_dilated(jnp.pad(image, pad, mode="wrap"), k,
+                                           window_strides=(1,) * dims, padding="VALID",
+                                           dimension_numbers=numbers)
+        return (out + p["b"]).reshape(-1)
+
+    def layer(p, x):
+        return phi(pre(p, x))
+
+    def step(x, p):
+        h = pre(p, x)
+        return phi(h), h
+
+    def trace(params, x):
+        return jax.lax.scan(step, x, _slices(params))
+
+    def apply(params, x):
+        return trace(params, x)[0]
+
+    return layer, apply, trace
+
+
+def conv_stack(dims: int, channels: int, size, kernel: int, depth: int,
+               activation: str | Activation = "tanh", *, weights: str = "delta-orthogonal",
+               sigma_w: float = 1.0, sigma_b: float = 0.0) -> Network:
+    """A stack of circular convolutions ``x^l = phi(K^l * x^{l-1} + b^l)`` over 1 or 2
+    spatial dimensions, ``channels`` in and out at every layer.
+
+    Args:
+      dims: 1 (conv1d) or 2 (conv2d).
+      channels: C.
+      size: positions (an int, square for 2-d, or a tuple of ``dims`` ints).
+      kernel: the odd kernel size k (k taps per spatial axis), at most every size.
+      depth: L.
+      activation: a registry name or an Activation.
+      weights: ``"delta-orthogonal"``, ``"gaussian"`` or ``"uniform"``
+        (:func:`~isoscope.initializers.conv_kernel`).
+      sigma_w, sigma_b: weight and bias scales (bias per channel, shared by the positions).
+
+    Returns:
+      A :class:`Network` of width ``C * prod(size)``; its Jacobian is
+      ``prod_l D^l K^l`` with ``K^l`` the block-circulant operator of layer l's kernel
+      (Xiao et al. 2018, ICML, sec. 2).
+    """
+    if dims not in (1, 2):
+        raise InputError(f"dims = {dims!r}", expected="1 (conv1d) or 2 (conv2d)")
+    size = (size,) * dims if isinstance(size, int) and not isinstance(size, bool) else tuple(size)
+    if len(size) != dims:
+        raise InputError(f"size = {size!r} has {len(size)} axes", expected=f"{dims} spatial sizes")
+    size = tuple(_check_size("size", s) for s in size)
+    channels, depth = _check_size("channels", channels), _check_size("depth", depth)
+    kernel = _check_size("kernel", kernel)
+    if kernel % 2 == 0 or kernel > min(size):
+        raise InputError(f"kernel = {kernel} with size {size}",
+                         expected="an odd kernel size no larger than every spatial size",
+                         key="kernel")
+    sigma_w, sigma_b = _check_scale("sigma_w", sigma_w), _check_scale("sigma_b", sigma_b)
+    act = get_activation(activation)
+    k_init = conv_kernel(weights, sigma_w)
+    b_init = gaussian_bias(sigma_b)
+    layer, apply, trace = _conv_forward(size, act)
+    shape = (depth, *(kernel,) * dims, channels, channels)
+
+    def init(key: jax.Array, dtype=jnp.float64) -> Params:
+        kk, kb = jax.random.split(key)
+        return {"K": k_init(kk, shape, dtype), "b": b_init(kb, (depth, channels), dtype)}
+
+    width = channels * math.prod(size)
+    return Network(init=init, apply=apply, width=width, depth=depth,
+                   family="conv1d" if dims == 1 else "conv2d", activation=act, layer=layer,
+                   trace=trace, weights=str(weights).lower(), sigma_w=sigma_w, sigma_b=sigma_b,
+                   channels=channels, size=size, kernel=kernel)
+
+
+def custom_network(init: Callable[[jax.Array, Any], Params],
+                   apply: Callable[[Params, jax.Array], jax.Array],
                    width: int, depth: int | None = None) -> Network:
     """Wrap a user's pure ``(init, apply)`` pair as a black-box :class:`Network`.
 
-    ``init(key)`` returns the parameters, ``apply(params, x)`` maps one input of shape
-    ``(width,)`` to one output vector.  Only the dense Jacobian route applies.  Pass the same
-    ``apply`` object for every draw so that the Jacobian compiles once.
+    ``init(key, dtype)`` returns the parameters in that dtype, ``apply(params, x)`` maps one
+    input of shape ``(width,)`` to one output vector.  The dense and matrix-free routes apply
+    (there is no per-layer structure for the deep route).  Pass the same ``apply`` object for
+    every draw so that the Jacobian compiles once.
     """
     if not callable(init) or not callable(apply):
-        raise InputError("init and apply must be callables", expected="init(key) and apply(params, x)")
-    return Network(init=lambda key, dtype=jnp.float64: init(key), apply=apply,
-                   width=_check_size("width", width), depth=depth, family="python")
+        raise InputError("init and apply must be callables",
+                         expected="init(key, dtype) and apply(params, x)")
+    return Network(init=init, apply=apply, width=_check_size("width", width), depth=depth,
+                   family="python")

@@ -32,6 +32,10 @@ __all__ = ["SCHEMA", "COMPARISON_SCHEMA", "RECOMMENDATION_SCHEMA", "GLOSSARY", "
 SCHEMA = "isoscope.result/1"
 
 GLOSSARY = {
+    "measured.route": "how the singular values were obtained: dense, deep (stabilised product) or matrix-free",
+    "measured.route_reason": "why that route (set in the spec, or chosen by route = \"auto\")",
+    "measured.log_s.values": "ln s of every draw, draw after draw (listed up to 100,000 values; on the matrix-free route the quantiles of the quadrature measure)",
+    "measured.quadrature": "matrix-free route: per draw the Lanczos quadrature's moments of lambda with standard errors across probes and the extreme Ritz values",
     "measured.draws": "independent (parameter, input) draws pooled in the spectrum",
     "measured.singular_values_per_draw": "singular values of each Jacobian (its smaller dimension)",
     "measured.lambda_moments.mK": "K-th moment of lambda = s^2 over all draws, E[lambda^K], zeros included",
@@ -53,6 +57,7 @@ GLOSSARY = {
     "score.verdict": "isometric | mis-scaled | spread | vanishing | exploding | non-finite (see score.reason)",
     "predicted": "infinite-width prediction (mean field + free probability); predicted.regime says what it assumes",
     "predicted.q_star, chi, xi_q, xi_c, c_star": "mean field of a plain stack: fixed point q*, chi_1, depth scales, correlation fixed point (null for residual stacks)",
+    "predicted.design": "when present: the design whose law is drawn (a convolution stack's plain-stack law, a factory's equivalent built-in design)",
     "predicted.tau": "residual stacks: sum over blocks of alpha^2 sigma_w^2 E[phi'(h^l)^2]",
     "predicted.lambda_moments.mK": "K-th moment of lambda at infinite width",
     "predicted.density": "continuous part of the law of lambda: x (lambda grid), rho (density in lambda), log_x, rho_log (density of ln lambda); atoms listed separately",
@@ -118,18 +123,43 @@ def _measured(analysis: Analysis) -> dict[str, Any] | None:
     if s is None:
         return None
     lo, hi = s.log_s_range
+    values = s.log_s.ravel()
     return {
-        "method": "dense Jacobian by jax.jacfwd, singular values by SVD" if s.method == "svd" else s.method,
+        "route": analysis.route,
+        "route_reason": analysis.route_reason,
+        "method": _METHODS.get(s.method, s.method),
         "draws": s.draws,
         "singular_values_per_draw": s.size,
         "lambda_moments": s.lambda_moments,
         "lambda_m1_draw_spread": float(np.std(s.lambda_moment_draws(1))) if s.draws > 1 else None,
-        "log_s": {"mean": s.log_s_mean, "std": s.log_s_std, "min": lo, "max": hi},
+        "log_s": {"mean": s.log_s_mean, "std": s.log_s_std, "min": lo, "max": hi,
+                  **({"values": values} if values.size <= MAX_LISTED_VALUES else {})},
         "zero_fraction": s.zero_fraction,
         "zero_threshold": s.threshold,
         "log10_condition": s.log10_condition,
         "s_quantiles": s.s_quantiles,
+        **({} if analysis.quadrature is None else {"quadrature": _quadrature(analysis.quadrature)}),
     }
+
+
+# ln s of every draw is listed in result.json up to this many values (a 100,000-value list is
+# about 2 MB of JSON)
+MAX_LISTED_VALUES = 100_000
+
+_METHODS = {
+    "svd": "dense Jacobian by jax.jacfwd, singular values by SVD",
+    "udt": "stabilised product U D T by pivoted QR at every layer, ln s from the graded factor",
+    "slq": ("stochastic Lanczos quadrature of J^T J from jax.jvp/jax.vjp products; ln s are the "
+            "quantiles of the quadrature measure"),
+}
+
+
+def _quadrature(draws: tuple[dict, ...]) -> dict[str, Any]:
+    """The matrix-free route's per-draw quadrature summaries, with the draws' mean of each
+    number (moments from the quadrature rule itself, not from the quantile values)."""
+    keys = [k for k, v in draws[0].items() if isinstance(v, (int, float))]
+    return {"draws": list(draws),
+            "mean": {k: float(np.mean([d[k] for d in draws])) for k in keys}}
 
 
 def prediction_dict(p) -> dict[str, Any]:
@@ -208,9 +238,12 @@ def result_dict(analysis: Analysis) -> dict[str, Any]:
         "inputs": {"kind": analysis.inputs.kind, "variance": analysis.inputs.variance,
                    "detail": analysis.inputs.detail},
         "measured": _measured(analysis),
-        "fault": None if f is None else {"stage": f.stage, "layer": f.layer, "detail": f.detail},
+        "fault": None if f is None else {"stage": f.stage, "layer": f.layer, "detail": f.detail,
+                                         "route": analysis.route},
         "score": analysis.score._asdict(),
-        "predicted": None if analysis.predicted is None else prediction_dict(analysis.predicted),
+        "predicted": None if analysis.predicted is None else {
+            **prediction_dict(analysis.predicted),
+            **({"design": analysis.theory_label} if analysis.theory_label else {})},
         "agreement": _agreement_dict(analysis.agreement),
         "profile": _profile_dict(analysis.profile),
         "warnings": list(analysis.warnings),
@@ -295,7 +328,7 @@ def _figures(analysis: Analysis, folder: Path, prefix: str = "") -> dict[str, Pa
                                 analysis.spectrum.size)
         out["depth"] = plot.save(fig, folder / f"{prefix}spread-by-depth")[0]
     n, i = analysis.spec.network, analysis.spec.init
-    if n.family == "plain":
+    if n.family in ("plain", "conv1d", "conv2d"):
         try:
             line = mean_field.critical_line(n.activation)
         except TheoryError:  # no critical line for this activation: nothing to draw
@@ -350,11 +383,23 @@ def verdict_sentence(r: dict[str, Any]) -> str:
 
 
 def _design_line(r: dict[str, Any]) -> str:
-    n, i, a = r["spec"]["network"], r["spec"]["init"], r["spec"]["analysis"]
-    extra = f", alpha = {n['alpha']:g}" if n["family"] == "residual" else ""
-    return (f"{n['family']} stack, width {n['width']}, depth {n['depth']}, {n['activation']}; "
-            f"{i['weights']} weights, sigma_w = {i['sigma_w']:g} (sigma_w^2 = {_square(i['sigma_w']):.4g}), "
-            f"sigma_b = {i['sigma_b']:g}{extra}; {a['inputs']} draws, seed {a['seed']}, {a['dtype']}")
+    n, a = r["spec"]["network"], r["spec"]["analysis"]
+    i = r["spec"].get("init")
+    route = (r.get("measured") or {}).get("route") or (r.get("fault") or {}).get("route")
+    tail = (f"; {a['inputs']} draws, seed {a['seed']}, {a['dtype']}"
+            + (f", {route} route" if route else ""))
+    if n["family"] == "python":
+        return f"the user's network {n['factory']}, input width {n['width']}{tail}"
+    if n["family"] in ("conv1d", "conv2d"):
+        size = n["size"] if isinstance(n["size"], int) else " x ".join(map(str, n["size"]))
+        shape = (f"{n['family']} stack, {n['channels']} channels x {size} positions, kernel "
+                 f"{n['kernel']}, circular padding, depth {n['depth']}, {n['activation']}")
+    else:
+        extra = f", alpha = {n['alpha']:g}" if n["family"] == "residual" else ""
+        shape = (f"{n['family']} stack, width {n['width']}, depth {n['depth']}, "
+                 f"{n['activation']}{extra}")
+    return (f"{shape}; {i['weights']} weights, sigma_w = {i['sigma_w']:g} (sigma_w^2 = "
+            f"{_square(i['sigma_w']):.4g}), sigma_b = {i['sigma_b']:g}{tail}")
 
 
 _CAPTIONS = {
@@ -391,7 +436,9 @@ def _design_section(doc, r: dict[str, Any], figures: dict[str, Path], heading: b
         doc.paragraph(verdict_sentence(r))
     if r["spec"]["description"]:
         doc.paragraph(r["spec"]["description"])
-    doc.paragraph(f"{_design_line(r)}. Inputs: {r['inputs']['detail']}.", small=True)
+    reason = (r.get("measured") or {}).get("route_reason")
+    doc.paragraph(f"{_design_line(r)}. Inputs: {r['inputs']['detail']}."
+                  + (f" Route: {reason}." if reason else ""), small=True)
     for key, path in figures.items():
         doc.figure(path, f"{r['name']}: {_CAPTIONS.get(key, key)}")
     doc.table(["quantity", r["name"]], [(label, get(r)) for label, get in _ROWS],

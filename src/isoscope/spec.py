@@ -4,23 +4,32 @@ A spec describes one design to analyse::
 
     name = "deep-tanh-orthogonal"
     [network]
-    family = "plain"          # plain | residual
-    width = 512
-    depth = 200
-    activation = "tanh"
+    family = "plain"          # plain | residual | conv1d | conv2d | python
+    width = 512               # plain, residual, python (the input dimension)
+    depth = 200               # every family but python
+    activation = "tanh"       # every family but python
     alpha = 1.0               # residual branch scale (residual only)
     leaky_slope = 0.01        # slope a of max(h, a h) (activation = "leaky-relu" only)
-    [init]
-    weights = "orthogonal"    # orthogonal | gaussian | uniform
+    channels = 16             # conv1d, conv2d: channels of every layer
+    size = 16                 # conv1d: positions; conv2d: an int (square) or [height, width]
+    kernel = 3                # conv1d, conv2d: odd kernel size (circular padding)
+    factory = "net.py:make"   # python: FILE.py:NAME, relative to the spec file
+    [init]                    # not with family = "python" (the factory draws its parameters)
+    weights = "orthogonal"    # orthogonal | gaussian | uniform | delta-orthogonal (conv)
     sigma_w = 1.01            # scales, not variances
     sigma_b = 0.0
     [analysis]
     inputs = 4                # independent (parameter, input) draws, pooled
     seed = 0                  # 0 .. 2^64 - 1
-    dtype = "float64"         # float64 | float32
+    route = "auto"            # auto | dense | deep | matrix-free
+    dtype = "float64"         # float64 | float32 (default float32 on the matrix-free route)
     input = "steady-state"    # steady-state | gaussian | file
     input_variance = 1.0      # for input = "gaussian"
     input_file = "x.npy"      # for input = "file"; shape (width,) or (inputs, width)
+    probes = 8                # matrix-free: Lanczos probe vectors per draw
+    lanczos_steps = 80        # matrix-free: Lanczos steps per probe
+
+A convolution stack's ``width`` is derived (channels x positions) and never given.
 
 Unknown keys are errors (a misspelt key would otherwise be silently ignored).  ``name`` is a
 label (any text); the default output folder is derived from it by
@@ -46,7 +55,23 @@ __all__ = ["Spec", "NetworkSpec", "InitSpec", "AnalysisSpec", "load_spec", "pars
 
 INPUT_KINDS = ("steady-state", "gaussian", "file")
 DTYPES = ("float64", "float32")
-SPEC_FAMILIES = ("plain", "residual")
+ROUTES = ("auto", "dense", "deep", "matrix-free")
+SPEC_FAMILIES = ("plain", "residual", "conv1d", "conv2d", "python")
+CONV_FAMILIES = ("conv1d", "conv2d")
+# Above this width route = "auto" measures matrix-free (see isoscope.routes.choose_route), and
+# so the dtype defaults to float32 there as on route = "matrix-free".
+MATRIX_FREE_WIDTH = 2048
+# keys of [network] that only some families take (every other key applies to all but python)
+_FAMILY_KEYS = {
+    "alpha": ("residual",),
+    "channels": CONV_FAMILIES,
+    "size": CONV_FAMILIES,
+    "kernel": CONV_FAMILIES,
+    "factory": ("python",),
+    "width": ("plain", "residual", "python"),
+    "depth": ("plain", "residual", "conv1d", "conv2d"),
+    "activation": ("plain", "residual", "conv1d", "conv2d"),
+}
 
 
 @dataclasses.dataclass(frozen=True)
@@ -55,10 +80,19 @@ class NetworkSpec:
 
     family: str = "plain"
     width: int = 256
-    depth: int = 32
-    activation: str = "tanh"
+    depth: int | None = 32
+    activation: str | None = "tanh"
     alpha: float = 1.0
     leaky_slope: float = 0.01
+    channels: int = 16
+    size: tuple[int, ...] = (16,)
+    kernel: int = 3
+    factory: str | None = None
+
+    @property
+    def positions(self) -> int:
+        """Spatial positions of a convolution stack (the product of ``size``)."""
+        return math.prod(self.size)
 
 
 @dataclasses.dataclass(frozen=True)
@@ -76,10 +110,13 @@ class AnalysisSpec:
 
     inputs: int = 4
     seed: int = 0
+    route: str = "auto"
     dtype: str = "float64"
     input: str = "steady-state"
     input_variance: float = 1.0
     input_file: str | None = None
+    probes: int = 8
+    lanczos_steps: int = 80
 
 
 @dataclasses.dataclass(frozen=True)
@@ -99,10 +136,17 @@ class Spec:
         ``network.alpha`` of a plain stack, are left out)."""
         d = dataclasses.asdict(self)
         d.pop("source")
-        if self.network.family != "residual":
-            d["network"].pop("alpha")
+        family = self.network.family
+        for key, families in _FAMILY_KEYS.items():
+            if family not in families:
+                d["network"].pop(key)
+        if family in CONV_FAMILIES:
+            d["network"]["size"] = (self.network.size[0] if family == "conv1d"
+                                    else list(self.network.size))
         if self.network.activation != "leaky-relu":
             d["network"].pop("leaky_slope")
+        if family == "python":
+            d.pop("init")
         if d["analysis"]["input_file"] is None:
             d["analysis"].pop("input_file")
         return d
@@ -181,6 +225,95 @@ def _section(source, data, name, cls):
     return raw
 
 
+def _network(source, net: dict[str, Any], family: str) -> NetworkSpec:
+    """``[network]`` of one family: the keys it takes, checked; the width of a convolution
+    stack derived as channels x positions."""
+    d = NetworkSpec()
+    for key, families in _FAMILY_KEYS.items():
+        if key in net and family not in families:
+            raise _err(source, f"network.{key}", f"{key} is set but the family is {family!r}",
+                       f"{key} only with family = " + " or ".join(f'"{f}"' for f in families),
+                       f"remove {key}" + (" (a convolution stack's width is channels x positions)"
+                                          if key == "width" else ""))
+    if family == "python":
+        factory = net.get("factory")
+        if not isinstance(factory, str) or ":" not in factory:
+            raise _err(source, "network.factory", f"value {factory!r} is not FILE.py:NAME",
+                       "a string \"path/to/file.py:name\" (the path relative to the spec file)",
+                       "name the Python file and the function in it that returns (init, apply)")
+        return NetworkSpec(family=family, width=_int(source, "network.width",
+                                                     net.get("width", d.width), 1),
+                           depth=None, activation=None, factory=factory)
+    activation = _choice(source, "network.activation", net.get("activation", d.activation),
+                         activation_names(), canonical=lambda n: get_activation(n).name)
+    if "leaky_slope" in net and activation != "leaky-relu":
+        raise _err(source, "network.leaky_slope",
+                   f"leaky_slope is set but the activation is {activation!r}",
+                   "leaky_slope only with activation = \"leaky-relu\"",
+                   "remove leaky_slope or set activation = \"leaky-relu\"")
+    depth = _int(source, "network.depth", net.get("depth", d.depth), 1)
+    common = dict(family=family, depth=depth, activation=activation,
+                  leaky_slope=_slope(source, net.get("leaky_slope", d.leaky_slope)))
+    if family in CONV_FAMILIES:
+        channels = _int(source, "network.channels", net.get("channels", d.channels), 1)
+        size = _size(source, family, net.get("size", 16 if family == "conv1d" else 8))
+        kernel = _int(source, "network.kernel", net.get("kernel", d.kernel), 1)
+        if kernel % 2 == 0:
+            raise _err(source, "network.kernel", f"value {kernel} is even",
+                       "an odd kernel size (1, 3, 5, ...): the centre tap keeps positions aligned",
+                       f"use {kernel - 1} or {kernel + 1}")
+        if kernel > min(size):
+            raise _err(source, "network.kernel", f"kernel {kernel} is larger than the size {list(size)}",
+                       "a kernel no larger than the spatial size (circular padding wraps once)")
+        return NetworkSpec(width=channels * math.prod(size), channels=channels, size=size,
+                           kernel=kernel, **common)
+    return NetworkSpec(width=_int(source, "network.width", net.get("width", d.width), 1),
+                       alpha=_float(source, "network.alpha", net.get("alpha", d.alpha), -math.inf),
+                       **common)
+
+
+def _size(source, family: str, v: Any) -> tuple[int, ...]:
+    """``network.size``: positions of a conv1d stack; an int or ``[height, width]`` for conv2d."""
+    dims = 1 if family == "conv1d" else 2
+    expected = ("a whole number of positions >= 1" if dims == 1 else
+                "a whole number >= 1 (a square) or a list [height, width]")
+    if dims == 2 and isinstance(v, list):
+        if len(v) != 2:
+            raise _err(source, "network.size", f"value {v!r} has {len(v)} entries", expected)
+        return tuple(_int(source, "network.size", x, 1) for x in v)
+    if isinstance(v, list):
+        raise _err(source, "network.size", f"value {v!r} is a list", expected)
+    return (_int(source, "network.size", v, 1),) * dims
+
+
+def _check_weights(source, family: str, weights: str) -> None:
+    """Delta-orthogonal kernels are for convolution stacks; a conv kernel is not a square
+    matrix, so plain "orthogonal" is refused there."""
+    if family in CONV_FAMILIES and weights == "orthogonal":
+        raise _err(source, "init.weights", "weights = \"orthogonal\" for a convolution stack",
+                   "delta-orthogonal, gaussian or uniform for conv1d/conv2d",
+                   "delta-orthogonal puts an orthogonal matrix on the centre tap (Xiao et al. 2018)")
+    if family not in CONV_FAMILIES and weights == "delta-orthogonal":
+        raise _err(source, "init.weights", f"weights = \"delta-orthogonal\" for family {family!r}",
+                   "orthogonal, gaussian or uniform for plain and residual stacks",
+                   "delta-orthogonal is a convolution kernel; use orthogonal for dense layers")
+
+
+def _default_dtype(network: NetworkSpec, route: str) -> str:
+    """float32 where the measurement is matrix-free (the weights dominate memory there),
+    float64 elsewhere."""
+    free = route == "matrix-free" or (route == "auto" and network.width > MATRIX_FREE_WIDTH)
+    return "float32" if free else "float64"
+
+
+def _check_route(source, network: NetworkSpec, route: str) -> None:
+    """The deep route needs per-layer structure, which a user's network does not expose."""
+    if route == "deep" and network.family == "python":
+        raise _err(source, "analysis.route", "route = \"deep\" for family \"python\"",
+                   "dense, matrix-free or auto for a user's network",
+                   "the deep route steps through the layers one by one; a factory is a black box")
+
+
 def parse_spec(data: dict[str, Any], source: str | None = None) -> Spec:
     """Validate a spec mapping (as read from TOML) and fill in defaults.
 
@@ -201,28 +334,21 @@ def parse_spec(data: dict[str, Any], source: str | None = None) -> Spec:
     d_net, d_ini, d_ana = NetworkSpec(), InitSpec(), AnalysisSpec()
 
     family = _choice(source, "network.family", net.get("family", d_net.family), SPEC_FAMILIES)
-    network = NetworkSpec(
-        family=family,
-        width=_int(source, "network.width", net.get("width", d_net.width), 1),
-        depth=_int(source, "network.depth", net.get("depth", d_net.depth), 1),
-        activation=_choice(source, "network.activation", net.get("activation", d_net.activation),
-                           activation_names(), canonical=lambda n: get_activation(n).name),
-        alpha=_float(source, "network.alpha", net.get("alpha", d_net.alpha), -math.inf),
-        leaky_slope=_slope(source, net.get("leaky_slope", d_net.leaky_slope)),
-    )
-    if "leaky_slope" in net and network.activation != "leaky-relu":
-        raise _err(source, "network.leaky_slope",
-                   f"leaky_slope is set but the activation is {network.activation!r}",
-                   "leaky_slope only with activation = \"leaky-relu\"",
-                   "remove leaky_slope or set activation = \"leaky-relu\"")
-    if family != "residual" and "alpha" in net:
-        raise _err(source, "network.alpha", "alpha is set but the family is not residual",
-                   "alpha only with family = \"residual\"", "remove alpha or set family = \"residual\"")
+    network = _network(source, net, family)
+    if family == "python" and ini:
+        raise _err(source, "init", "an [init] table is given but the family is \"python\"",
+                   "no [init] table with family = \"python\"",
+                   "the factory's init(key, dtype) draws the parameters; remove [init]")
+    default_weights = "delta-orthogonal" if family in CONV_FAMILIES else d_ini.weights
     init = InitSpec(
-        weights=_choice(source, "init.weights", ini.get("weights", d_ini.weights), initializer_names()),
+        weights=_choice(source, "init.weights", ini.get("weights", default_weights),
+                        initializer_names()),
         sigma_w=_float(source, "init.sigma_w", ini.get("sigma_w", d_ini.sigma_w)),
         sigma_b=_float(source, "init.sigma_b", ini.get("sigma_b", d_ini.sigma_b)),
     )
+    _check_weights(source, family, init.weights)
+    route = _choice(source, "analysis.route", ana.get("route", d_ana.route), ROUTES)
+    _check_route(source, network, route)
     kind = _choice(source, "analysis.input", ana.get("input", d_ana.input), INPUT_KINDS)
     input_file = ana.get("input_file")
     if kind == "file":
@@ -238,11 +364,16 @@ def parse_spec(data: dict[str, Any], source: str | None = None) -> Spec:
     analysis = AnalysisSpec(
         inputs=_int(source, "analysis.inputs", ana.get("inputs", d_ana.inputs), 1),
         seed=_int(source, "analysis.seed", ana.get("seed", d_ana.seed), 0, SEED_MAX, "2^64 - 1"),
-        dtype=_choice(source, "analysis.dtype", ana.get("dtype", d_ana.dtype), DTYPES),
+        route=route,
+        dtype=_choice(source, "analysis.dtype",
+                      ana.get("dtype", _default_dtype(network, route)), DTYPES),
         input=kind,
         input_variance=_float(source, "analysis.input_variance",
                               ana.get("input_variance", d_ana.input_variance)),
         input_file=input_file,
+        probes=_int(source, "analysis.probes", ana.get("probes", d_ana.probes), 1),
+        lanczos_steps=_int(source, "analysis.lanczos_steps",
+                           ana.get("lanczos_steps", d_ana.lanczos_steps), 2),
     )
     name = data.get("name", Path(source).stem if source else "design")
     if not isinstance(name, str) or not name.strip():

@@ -15,7 +15,8 @@ import math
 import numpy as np
 from scipy.special import logsumexp
 
-__all__ = ["Spectrum", "from_singular_values", "zero_threshold"]
+__all__ = ["Spectrum", "from_singular_values", "from_log_singular_values", "quadrature_log_s",
+           "zero_threshold"]
 
 QUANTILES = (0.01, 0.05, 0.25, 0.5, 0.75, 0.95, 0.99)
 
@@ -40,7 +41,10 @@ class Spectrum:
       zero_mask: ``(draws, n)`` true where ``s`` is numerically zero (see ``threshold``).
       threshold: the relative zero threshold used (``s <= threshold * s_max`` of its draw).
       dtype: the dtype the Jacobian was computed in.
-      method: how ``log_s`` was obtained (``"svd"`` or ``"qr"``).
+      method: how ``log_s`` was obtained: ``"svd"`` (dense SVD), ``"udt"`` (the deep route's
+        stabilised product) or ``"slq"`` (the matrix-free route: each row is the N quantiles of
+        a draw's stochastic-Lanczos-quadrature measure, :func:`quadrature_log_s`, not N
+        singular values).
     """
 
     log_s: np.ndarray
@@ -157,3 +161,44 @@ def from_singular_values(s: np.ndarray, dtype, method: str = "svd") -> Spectrum:
         log_s = np.log(s)
     return Spectrum(log_s=log_s, zero_mask=zero, threshold=thr, dtype=str(np.dtype(dtype)),
                     method=method)
+
+
+def from_log_singular_values(log_s: np.ndarray, dtype, method: str) -> Spectrum:
+    """Build a :class:`Spectrum` from ``ln s`` of shape ``(draws, n)`` or ``(n,)``, for
+    routes whose singular values need not fit in floating point (the deep route).
+
+    A value with ``ln s <= ln(threshold) + ln s_max`` of its draw is marked numerically zero,
+    where ``threshold`` (:func:`zero_threshold`) is that of the dtype the factors were computed
+    in: below it relative to the largest, the factors' rounding decides the value.
+    """
+    log_s = np.atleast_2d(np.asarray(log_s, dtype=np.float64))
+    log_s = -np.sort(-log_s, axis=1)
+    thr = zero_threshold(log_s.shape[1], dtype)
+    zero = log_s <= math.log(thr) + log_s[:, :1]
+    return Spectrum(log_s=log_s, zero_mask=zero, threshold=thr, dtype=str(np.dtype(dtype)),
+                    method=method)
+
+
+def quadrature_log_s(nodes: np.ndarray, weights: np.ndarray, n: int) -> np.ndarray:
+    """``n`` equally weighted values of ``ln s`` standing for a quadrature measure of lambda.
+
+    A stochastic Lanczos quadrature rule is the discrete measure
+    ``mu = sum_j w_j delta(theta_j)`` (weights summing to 1) estimating the spectral measure of
+    ``J^T J`` (Ubaru, Chen & Saad 2017, SIAM J. Matrix Anal. Appl. 38, eq. 2.5).  Its quantile
+    function at ``(i - 1/2)/n``, ``i = 1..n``, gives n values whose empirical CDF differs from
+    mu's by at most ``1/(2n)`` everywhere (a quantile rounding of the CDF's jumps), so every
+    statistic the dense route reads from N singular values (histograms, KS distance to a
+    predicted law, quantiles, moments to that accuracy) is read from these in the same way.
+    Returned as ``(1/2) ln theta``, decreasing; a node at zero (or below, from rounding) gives
+    ``-inf``.
+    """
+    nodes = np.asarray(nodes, dtype=np.float64).ravel()
+    weights = np.asarray(weights, dtype=np.float64).ravel()
+    order = np.argsort(nodes)
+    cdf = np.cumsum(weights[order])
+    cdf /= cdf[-1]
+    at = np.searchsorted(cdf, (np.arange(n) + 0.5) / n, side="left")
+    theta = nodes[order][np.minimum(at, nodes.size - 1)]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        log_s = np.where(theta > 0, 0.5 * np.log(np.where(theta > 0, theta, 1.0)), -np.inf)
+    return log_s[::-1].copy()
