@@ -28,7 +28,7 @@ import pytest
 from scipy.stats import kstwobign
 
 from isoscope import jacobian as jac
-from isoscope.analysis import _draw_input, build_network, plan_inputs, predict_spec
+from isoscope.analysis import _draw_input, build_network, plan_inputs, predict_spec, spec_activation
 from isoscope.score import agreement, ks_distance, split_outliers
 from isoscope.spec import parse_spec
 from isoscope.spectrum import from_singular_values
@@ -55,7 +55,8 @@ def _draw(spec):
     plan, _ = plan_inputs(spec)
     k_params, k_input = jax.random.split(jax.random.fold_in(jax.random.PRNGKey(spec.analysis.seed), 0))
     params = network.init(k_params, jnp.float64)
-    x = _draw_input(plan, network, k_input, jnp.float64)
+    act = spec_activation(spec) if plan.kind == "steady-state" else None
+    x = _draw_input(plan, act, network.width, k_input, jnp.float64)
     s = np.linalg.svd(np.asarray(jac.dense_jacobian(network, params, x)), compute_uv=False)
     return plan, from_singular_values(s, np.float64)
 

@@ -155,11 +155,20 @@ _METHODS = {
 
 
 def _quadrature(draws: tuple[dict, ...]) -> dict[str, Any]:
-    """The matrix-free route's per-draw quadrature summaries, with the draws' mean of each
-    number (moments from the quadrature rule itself, not from the quantile values)."""
-    keys = [k for k, v in draws[0].items() if isinstance(v, (int, float))]
-    return {"draws": list(draws),
-            "mean": {k: float(np.mean([d[k] for d in draws])) for k in keys}}
+    """The matrix-free route's per-draw quadrature summaries and their pooled values: moments
+    averaged over the draws with standard error ``sqrt(sum se_i^2) / draws`` (independent
+    draws), the largest ``lambda_max`` and the smallest ``lambda_min`` with the residual of
+    each Ritz pair (moments from the quadrature rule itself, not from the quantile values)."""
+    n = len(draws)
+    pooled: dict[str, Any] = {k: draws[0][k] for k in ("probes", "steps", "dim")}
+    for k in ("m1", "m2", "m3", "m4"):
+        pooled[k] = float(np.mean([d[k] for d in draws]))
+        pooled[f"{k}_se"] = float(np.sqrt(np.sum([d[f"{k}_se"] ** 2 for d in draws])) / n)
+    top = max(draws, key=lambda d: d["lambda_max"])
+    low = min(draws, key=lambda d: d["lambda_min"])
+    pooled.update(lambda_max=top["lambda_max"], lambda_max_residual=top["lambda_max_residual"],
+                  lambda_min=low["lambda_min"], lambda_min_residual=low["lambda_min_residual"])
+    return {"draws": list(draws), "pooled": pooled}
 
 
 def prediction_dict(p) -> dict[str, Any]:
