@@ -680,7 +680,15 @@ def _draws(spec, network, design, dtype, plan, file_inputs, route, depths, progr
         if draw.quadrature is not None:
             quadrature.append(draw.quadrature)
     method = {"dense": "svd", "deep": "udt", "matrix-free": "slq"}[route]
-    spectrum = None if fault is not None else from_log_singular_values(np.stack(rows), dtype, method)
+    # the zero threshold of each route (relative to s_max): the dtype's on the dense route;
+    # none on the deep route (its finite values are resolved); on the matrix-free route the
+    # resolution of m Lanczos steps, whose degree-m polynomials resolve lambda near the lower
+    # end of [0, lambda_max] only to about lambda_max / m^2, i.e. s to s_max / m (the
+    # Chebyshev extremal property; Lin, Saad & Yang 2016, SIAM Rev. 58, sec. 3)
+    threshold = {"dense": None, "deep": 0.0,
+                 "matrix-free": 1.0 / spec.analysis.lanczos_steps}[route]
+    spectrum = (None if fault is not None
+                else from_log_singular_values(np.stack(rows), dtype, method, threshold))
     return _Draws(spectrum, fault, i, partial, layers, tuple(quadrature) or None, seconds)
 
 

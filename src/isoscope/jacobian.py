@@ -305,9 +305,14 @@ def _compiled_statistics(trace, family: str, activation):
         _, h = trace(params, x)
         n = h.shape[-1]
         d = activation.derivative(h)                        # phi'(h^l_i), shape (L, N)
-        rows = jnp.sum(params["W"] ** 2, axis=-1)           # |W^l_{i,:}|^2
+        if "K" in params:       # row (p, o) of a circular convolution: every K[taps, :, o]
+            k = params["K"]
+            per_channel = jnp.sum(k ** 2, axis=tuple(range(1, k.ndim - 1)))   # (L, C)
+            rows = jnp.tile(per_channel, (1, n // k.shape[-1]))  # flat index p * C + o
+        else:
+            rows = jnp.sum(params["W"] ** 2, axis=-1)       # |W^l_{i,:}|^2
         branch = jnp.sum(d * d * rows, axis=-1) / n         # ||D W||_F^2 / N
-        if family == "plain":
+        if family != "residual":
             gain = branch
         else:
             a = params["alpha"]
@@ -327,6 +332,9 @@ def layer_statistics(network: Network, params, x: jax.Array) -> LayerStatistics:
 
     * plain, ``J_l = D^l W^l``:
       ``g^l = (1/N) ||D W||_F^2 = (1/N) sum_i phi'(h^l_i)^2 |W^l_{i,:}|^2``;
+    * convolution, ``J_l = D^l K^l`` with ``K^l`` block-circulant: the same formula, row
+      ``(p, o)`` of ``K^l`` holding every kernel entry of output channel o once, so
+      ``|K^l_{(p,o),:}|^2 = sum_{taps, i} K^l[taps, i, o]^2`` (kernel no larger than the size);
     * residual, ``J_l = I + alpha D^l W^l``:
       ``g^l = (1/N) ||I + alpha D W||_F^2 = 1 + 2 alpha tr(D W)/N + alpha^2 ||D W||_F^2/N``
       with ``tr(D W) = sum_i phi'(h^l_i) W^l_{ii}``.
@@ -337,8 +345,8 @@ def layer_statistics(network: Network, params, x: jax.Array) -> LayerStatistics:
     whose forward pass overflowed gives non-finite entries.  Compiled once per (family,
     activation, width, depth, dtype).
     """
-    if network.trace is None or network.family not in ("plain", "residual"):
-        raise ValueError("layer_statistics needs a built-in stack (plain or residual)")
+    if network.trace is None or network.family not in ("plain", "residual", "conv1d", "conv2d"):
+        raise ValueError("layer_statistics needs a built-in stack (plain, residual, conv1d, conv2d)")
     q, g = _compiled_statistics(network.trace, network.family, network.activation)(params, x)
     return LayerStatistics(np.asarray(q, dtype=np.float64), np.asarray(g, dtype=np.float64))
 
@@ -391,6 +399,10 @@ class StableProduct(NamedTuple):
         the per-layer log-stretching of the frame (the Lyapunov view; for long products its
         column means converge to the Lyapunov exponents, Benettin et al. 1980).
       sweeps: one-sided Jacobi sweeps the final recovery took (full depth).
+      rank_deficit: the largest numerical rank deficit of one layer up to the full depth (and
+        ``partial_deficit`` up to each requested depth): the count of a step's ``r_kk`` at or
+        below ``n eps`` times its largest.  rank(J) <= min_l rank(J_l), so that many of the
+        smallest ``ln s`` are rounding noise of exact zeros; they are returned as ``-inf``.
     """
 
     log_s: np.ndarray
@@ -398,10 +410,28 @@ class StableProduct(NamedTuple):
     depths: np.ndarray | None
     layer_log_stretch: np.ndarray
     sweeps: int
+    rank_deficit: int = 0
+    partial_deficit: np.ndarray | None = None
 
 
-def _udt_step(a, log_d, t):
-    """One update of the graded product: the new frame ``A = J_l U`` meets ``D T``.
+def _rank_deficits(stretch: np.ndarray, dtype) -> np.ndarray:
+    """Per layer, the count of ``ln r_kk <= ln(n eps) + max_k ln r_kk`` (numerical rank
+    deficit of ``J_l``, Golub & Van Loan 2013, sec. 5.4.1, read from the QR diagonal)."""
+    n = stretch.shape[1]
+    cut = np.max(stretch, axis=1, keepdims=True) + math.log(n * float(np.finfo(dtype).eps))
+    with np.errstate(invalid="ignore"):
+        return np.sum(~(stretch > cut), axis=1)
+
+
+def _zero_bottom(log_s: np.ndarray, count: int) -> np.ndarray:
+    out = np.array(log_s, dtype=np.float64)
+    if count > 0:
+        out[-count:] = -np.inf
+    return out
+
+
+def _udt_pivoted(a, log_d, t):
+    """The exact update of the graded product (the fallback of :func:`_udt_step`).
 
     Householder QR with column pivoting of ``M = A D`` (Businger & Golub 1965), carried out
     on the *unscaled* A so that d may leave the float range: at step k the pivot p is the
@@ -453,6 +483,46 @@ def _udt_step(a, log_d, t):
     _, _, vs, betas, signs, f, new_d, log_r = jax.lax.fori_loop(0, n, step, init)
     q = jax.lax.fori_loop(0, n, build, jnp.eye(n, dtype=dtype)) * signs[None, :]
     return q, new_d, f @ t, log_r
+
+
+# Largest |entry| of the new factor accepted from the pre-pivoted step before the exact
+# pivoted one is taken instead.  Common practice of this project, no source: pre-pivoting keeps
+# the factor's entries O(1) for full-rank layers (Bai, Lee, Li & Xu 2011, sec. 4), and a value
+# far above 1 signals a (numerically) rank-deficient layer, where only true pivoting is safe.
+PREPIVOT_BOUND = 1e3
+
+
+def _udt_prepivoted(a, log_d, t):
+    """Pre-pivoted update: columns ordered by ``ln||A_j|| + ln d_j``, then LAPACK Householder
+    QR of the unscaled ``A P = Q R'`` (QR commutes with the column scaling), signs fixed so
+    that ``diag R' > 0``; ``ln d_new_i = ln r'_ii + ln d_P(i)`` and the factor's entries
+    ``r'_ij / r'_ii exp(ln d_P(j) - ln d_P(i))`` are formed in logs.  Returns
+    ``(Q, ln d_new, T_new, ln r'_ii, largest |factor entry|)``."""
+    key = jnp.log(jnp.linalg.norm(a, axis=0)).astype(log_d.dtype) + log_d
+    perm = jnp.argsort(-key)
+    q, r = jnp.linalg.qr(a[:, perm])
+    sign = jnp.where(jnp.diagonal(r) < 0, -1.0, 1.0).astype(a.dtype)
+    q, r = q * sign[None, :], r * sign[:, None]
+    log_r = jnp.log(jnp.abs(jnp.diagonal(r))).astype(log_d.dtype)
+    lp = log_d[perm]
+    expo = jnp.log(jnp.abs(r)).astype(log_d.dtype) + lp[None, :] - lp[:, None] - log_r[:, None]
+    m = jnp.triu(jnp.sign(r) * jnp.exp(jnp.minimum(expo, 709.0)).astype(a.dtype))
+    m = jnp.where(jnp.isfinite(m), m, jnp.inf)
+    return q, log_r + lp, m @ t[perm, :], log_r, jnp.max(jnp.abs(m))
+
+
+def _udt_step(a, log_d, t):
+    """One update of the graded product: the new frame ``A = J_l U`` meets ``D T``.
+
+    The pre-pivoted step (:func:`_udt_prepivoted`, one LAPACK QR) is taken when its factor is
+    bounded by :data:`PREPIVOT_BOUND` and every ``ln d`` stays finite; otherwise (a layer that
+    annihilates directions, as ReLU does) the exact pivoted step :func:`_udt_pivoted`.
+    Returns ``(Q, ln d_new, T_new, ln r_kk)``.
+    """
+    q, new_d, new_t, log_r, worst = _udt_prepivoted(a, log_d, t)
+    ok = (worst <= PREPIVOT_BOUND) & jnp.all(jnp.isfinite(new_d)) & jnp.all(jnp.isfinite(new_t))
+    return jax.lax.cond(ok, lambda: (q, new_d, new_t, log_r),
+                        lambda: _udt_pivoted(a, log_d, t))
 
 
 @functools.lru_cache(maxsize=None)
@@ -551,7 +621,8 @@ def stable_log_singular_values(network: Network, params, x: jax.Array, depths=No
     """``ln s`` of ``J = J_L ... J_1`` to full accuracy, by a stabilised product (the deep route).
 
     The partial product is kept as ``U D T`` (U orthogonal, D diagonal held as ``ln d``, T
-    well-conditioned) and updated at every layer by :func:`_udt_step` (QR with pre-pivoting;
+    well-conditioned) and updated at every layer by :func:`_udt_step` (pre-pivoted QR, or
+    QR with column pivoting where a layer is rank-deficient;
     the method of Loh & Gubernatis 1992 for long matrix products in determinant quantum Monte
     Carlo, whose accuracy Bai, Lee, Li & Xu 2011, Linear Algebra Appl. 435, analyse); each
     step pushes the frame U through one layer by ``jax.jvp`` (under ``jax.vmap``) inside one
@@ -575,14 +646,17 @@ def stable_log_singular_values(network: Network, params, x: jax.Array, depths=No
     t_buf, d_buf, stretch = _compiled_stable(network.layer)(
         network.layer_slices(params), x, jnp.asarray(slot), int(keep.size))
     t_buf, d_buf = np.asarray(t_buf), np.asarray(d_buf)
+    stretch = np.asarray(stretch, dtype=np.float64)
+    running = np.maximum.accumulate(_rank_deficits(stretch, np.asarray(x).dtype))
+    partial = running[keep - 1]
     rows, sweeps = [], 0
-    for t, d in zip(t_buf, d_buf):
+    for t, d, lost in zip(t_buf, d_buf, partial):
         log_s, sweeps = graded_log_singular_values(d, t)
-        rows.append(log_s)
+        rows.append(_zero_bottom(log_s, int(lost)))
     rows = np.stack(rows)
     full = rows[-1] if keep[-1] == network.depth else None
     if full is None:
         full = stable_log_singular_values(network, params, x).log_s
     return StableProduct(full, None if depths is None else rows,
-                         None if depths is None else keep,
-                         np.asarray(stretch, dtype=np.float64), sweeps)
+                         None if depths is None else keep, stretch, sweeps,
+                         int(running[-1]), None if depths is None else partial)

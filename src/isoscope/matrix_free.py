@@ -12,7 +12,10 @@ eigenpairs ``(theta_i, y_i)``; the Gauss rule ``sum_i tau_i delta(theta_i)``,
 ``tau_i = (e_1^T y_i)^2``, integrates polynomials of degree ``<= 2m - 1`` against the measure
 ``q_1^T delta(A - theta) q_1`` exactly, and its average over probes estimates the spectral
 measure ``(1/N) sum_k delta(lambda_k)`` (unbiased for Rademacher probes, since
-``E[z z^T] = I`` and ``|z|^2 = N``).
+``E[z z^T] = I`` and ``|z|^2 = N``).  The measure the route reports is the Gauss-Radau rule
+with one node fixed at lambda = 0 (see :func:`_gauss_rule`), so that an atom at zero (ReLU
+stacks) is not smeared onto the lowest Ritz value; moments and extreme values come from the
+Gauss rule itself.
 
 The basis is fully reorthogonalised (classical Gram-Schmidt, applied twice, Giraud et al.
 2005): without it the finite-precision recurrence loses orthogonality once a Ritz value
@@ -44,17 +47,22 @@ __all__ = ["QuadratureRule", "lanczos_quadrature", "lanczos_tridiagonal", "quadr
 
 
 class QuadratureRule(NamedTuple):
-    """Per probe, the Gauss rule of the Lanczos tridiagonal matrix.
+    """Per probe, the Gauss-Radau rule of the Lanczos tridiagonal matrix and its Ritz pairs.
 
     Attributes:
-      nodes: ``(P, m)`` Ritz values theta (eigenvalues of ``T_m``), estimates of lambda = s^2.
-      weights: ``(P, m)`` squared first components ``tau``; each row sums to 1.
+      nodes: ``(P, m + 1)`` nodes of the Gauss-Radau rule with one node fixed at lambda = 0,
+        estimates of lambda = s^2 standing for the spectral measure.
+      weights: ``(P, m + 1)`` their weights; each row sums to 1.
+      ritz: ``(P, m)`` Ritz values theta (eigenvalues of ``T_m``, the Gauss rule's nodes).
+      ritz_weights: ``(P, m)`` the Gauss rule's weights ``tau``.
       residuals: ``(P, m)`` Ritz residual bounds ``beta_m |e_m^T y_i|``.
       dim: N, the dimension of the operator (the input size).
     """
 
     nodes: jax.Array
     weights: jax.Array
+    ritz: jax.Array
+    ritz_weights: jax.Array
     residuals: jax.Array
     dim: int
 
@@ -100,11 +108,32 @@ def lanczos_tridiagonal(matvec, probe: jax.Array, steps: int) -> tuple[jax.Array
     return alpha, beta
 
 
-def _gauss_rule(alpha: jax.Array, beta: jax.Array) -> tuple[jax.Array, jax.Array, jax.Array]:
-    """Nodes, weights and Ritz residuals of the tridiagonal ``(alpha, beta[:-1])``."""
-    t = jnp.diag(alpha) + jnp.diag(beta[:-1], 1) + jnp.diag(beta[:-1], -1)
+def _gauss_rule(alpha: jax.Array, beta: jax.Array):
+    """Gauss and Gauss-Radau rules of the tridiagonal ``(alpha, beta[:-1])``, residual
+    ``beta[-1]``.
+
+    Gauss: the eigenpairs ``(theta_i, y_i)`` of ``T_m``, weights ``(e_1^T y_i)^2``, Ritz
+    residuals ``beta_m |e_m^T y_i|``.  Gauss-Radau with a node fixed at ``a = 0`` (the lower
+    end of the spectrum of ``J^T J``): ``T_m`` bordered by ``beta_m e_m`` and the corner
+    ``a + delta_m``, ``(T_m - a I) delta = beta_m^2 e_m`` (Golub 1973; Golub & Meurant 2010,
+    sec. 6.2), exact for polynomials of degree <= 2m.  Its node at 0 carries the mass the
+    Gauss rule would smear over its lowest node, which matters where lambda = 0 is an atom
+    (ReLU) or the spectrum runs down to 0.  After an exhausted Krylov space (``beta_m = 0``)
+    the extra node has weight 0.
+    """
+    m = alpha.shape[0]
+    off = beta[:-1]
+    t = jnp.diag(alpha) + jnp.diag(off, 1) + jnp.diag(off, -1)
     theta, y = jnp.linalg.eigh(t)
-    return theta, y[0] ** 2, jnp.abs(beta[-1] * y[-1])
+    b = beta[-1]
+    dead = (alpha == 0) & (jnp.concatenate([off, b[None]]) == 0)   # padding after exhaustion
+    safe = t + jnp.diag(dead.astype(t.dtype))
+    delta = jnp.linalg.solve(safe, (b * b) * jax.nn.one_hot(m - 1, m, dtype=t.dtype))
+    corner = jnp.where(b > 0, delta[-1], 0.0)
+    border = jnp.zeros((m + 1, m + 1), t.dtype).at[:m, :m].set(t)
+    border = border.at[m - 1, m].set(b).at[m, m - 1].set(b).at[m, m].set(corner)
+    radau, z = jnp.linalg.eigh(border)
+    return jnp.maximum(radau, 0.0), z[0] ** 2, theta, y[0] ** 2, jnp.abs(b * y[-1])
 
 
 @functools.lru_cache(maxsize=None)
@@ -147,8 +176,7 @@ def lanczos_quadrature(network: Network, params, x: jax.Array, key: jax.Array, *
     dim = int(x.shape[0])
     m = min(steps, dim)
     z = rademacher_probes(key, probes, dim, x.dtype)
-    nodes, weights, residuals = _compiled_rule(network.apply, m)(params, x, z)
-    return QuadratureRule(nodes, weights, residuals, dim)
+    return QuadratureRule(*_compiled_rule(network.apply, m)(params, x, z), dim)
 
 
 def quadrature_summary(rule: QuadratureRule) -> dict[str, Any]:
@@ -162,8 +190,8 @@ def quadrature_summary(rule: QuadratureRule) -> dict[str, Any]:
     lies within the residual of it; ``lambda_min`` likewise, over Ritz values of weight above
     ``1e-12`` (zero-weight values come from an exhausted Krylov space).
     """
-    nodes = np.asarray(rule.nodes, np.float64)
-    weights = np.asarray(rule.weights, np.float64)
+    nodes = np.asarray(rule.ritz, np.float64)
+    weights = np.asarray(rule.ritz_weights, np.float64)
     residuals = np.asarray(rule.residuals, np.float64)
     p = nodes.shape[0]
     out: dict[str, Any] = {"probes": int(p), "steps": int(nodes.shape[1]), "dim": int(rule.dim)}

@@ -44,7 +44,7 @@ GLOSSARY = {
     "measured.log_s.std": "standard deviation of ln s over the non-zero singular values",
     "measured.log_s.min, .max": "smallest and largest ln s over the non-zero singular values",
     "measured.zero_fraction": "fraction of singular values at or below zero_threshold * s_max of their draw",
-    "measured.zero_threshold": "relative threshold n * eps(dtype) for a numerically zero singular value",
+    "measured.zero_threshold": "relative threshold for a numerically zero singular value: n * eps(dtype) on the dense route, 1 / lanczos_steps (the Lanczos resolution) on the matrix-free route, 0 on the deep route (where only exact zeros and directions below some layer's numerical rank count)",
     "measured.log10_condition": "log10(s_max / s_min) with s_min the smallest non-zero singular value",
     "measured.s_quantiles.qP": "P-th percentile of the pooled singular values s (zeros included)",
     "score.isometry": "E[min(lambda, 1/lambda)] in [0, 1]; 1 only for a perfect isometry",

@@ -520,7 +520,8 @@ def agreement(spectrum: Spectrum, prediction) -> Agreement:
     log_s, zero = bulk.log_s, bulk.zero_mask
     n_draws, width = log_s.shape
     log_s_max = float(np.median(log_s[:, 0]))
-    floor_ell = 2.0 * (math.log(spectrum.threshold) + log_s_max)
+    floor_ell = (2.0 * (math.log(spectrum.threshold) + log_s_max) if spectrum.threshold > 0
+                 else -math.inf)
     log_lam = np.where(zero, -np.inf, 2.0 * log_s).ravel()
     atoms = [la for la, _ in _atom_log_locations(density) if math.isfinite(la)]
     tol = max((atom_tolerance(spectrum.dtype, spectrum.size, depth, log_s_max, la / 2.0)

@@ -163,18 +163,20 @@ def from_singular_values(s: np.ndarray, dtype, method: str = "svd") -> Spectrum:
                     method=method)
 
 
-def from_log_singular_values(log_s: np.ndarray, dtype, method: str) -> Spectrum:
+def from_log_singular_values(log_s: np.ndarray, dtype, method: str,
+                             threshold: float | None = None) -> Spectrum:
     """Build a :class:`Spectrum` from ``ln s`` of shape ``(draws, n)`` or ``(n,)``, for
     routes whose singular values need not fit in floating point (the deep route).
 
-    A value with ``ln s <= ln(threshold) + ln s_max`` of its draw is marked numerically zero,
-    where ``threshold`` (:func:`zero_threshold`) is that of the dtype the factors were computed
-    in: below it relative to the largest, the factors' rounding decides the value.
+    A value with ``ln s <= ln(threshold) + ln s_max`` of its draw is marked numerically zero.
+    ``threshold`` defaults to that of the dtype (:func:`zero_threshold`); the deep route passes
+    0 (only ``-inf``, an exact zero or a direction below some layer's numerical rank, is zero:
+    every finite value is resolved), the matrix-free route its Lanczos resolution.
     """
     log_s = np.atleast_2d(np.asarray(log_s, dtype=np.float64))
     log_s = -np.sort(-log_s, axis=1)
-    thr = zero_threshold(log_s.shape[1], dtype)
-    zero = log_s <= math.log(thr) + log_s[:, :1]
+    thr = zero_threshold(log_s.shape[1], dtype) if threshold is None else float(threshold)
+    zero = (log_s <= math.log(thr) + log_s[:, :1]) if thr > 0 else ~np.isfinite(log_s)
     return Spectrum(log_s=log_s, zero_mask=zero, threshold=thr, dtype=str(np.dtype(dtype)),
                     method=method)
 
