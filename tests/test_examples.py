@@ -58,7 +58,61 @@ def _check_kiln(r):
     assert r["score"]["verdict"] == "exploding"
 
 
+def _check_glacier(r):
+    # 2,000 layers past the edge of chaos (chi_1 > 1, Schoenholz et al. 2017): the singular
+    # values spread over hundreds of decades, beyond float64, so auto takes the deep route and
+    # still every ln s is finite; the measured ln s follow the predicted law
+    m = r["measured"]
+    assert m["route"] == "deep" and m["route_reason"].startswith("auto: depth 2000")
+    assert r["predicted"]["phase"] == "chaotic"
+    assert all(math.isfinite(v) for v in m["log_s"]["values"])
+    assert (max(m["log_s"]["values"]) - min(m["log_s"]["values"])) / math.log(10) > 308
+    assert r["agreement"]["ks"] < 0.08 and r["score"]["verdict"] == "exploding"
+
+
+def _check_seismic(r):
+    # delta-orthogonal kernels at the critical scale: each layer is an orthogonal operator times
+    # sigma_w (Xiao et al. 2018), so the spectrum follows the plain orthogonal law of width
+    # channels with chi_1 = 1, hence m1 = 1 (Pennington et al. 2017, sec. 2.3)
+    assert r["predicted"]["design"].startswith("plain orthogonal stack of width 48")
+    assert r["predicted"]["lambda_moments"]["m1"] == pytest.approx(1.0, abs=1e-3)
+    assert r["measured"]["lambda_moments"]["m1"] == pytest.approx(1.0, abs=0.05)
+    assert r["agreement"]["ks"] < 0.05
+
+
+def _check_radio(r):
+    # wider than the dense route's limit: matrix-free in float32; ReLU at sigma_w^2 = 2 has
+    # predicted m1 = 1 exactly (He et al. 2015), matched by the quadrature within 4 standard
+    # errors, and half of lambda is the atom at 0 (counted below the Lanczos resolution)
+    m = r["measured"]
+    assert m["route"] == "matrix-free" and r["spec"]["analysis"]["dtype"] == "float32"
+    q = m["quadrature"]["pooled"]
+    assert abs(q["m1"] - 1.0) < 4 * q["m1_se"]
+    assert m["zero_fraction"] >= 0.5
+    assert r["agreement"]["ks"] < 0.06
+
+
+def _check_hive(r):
+    # the user's plain-JAX network is exactly the built-in plain tanh orthogonal stack it names
+    assert r["measured"]["route"] == "dense"
+    assert r["predicted"]["design"].startswith("equivalent built-in design named by the factory")
+    assert r["agreement"]["ks"] < 0.06
+
+
+def _check_gearbox(r):
+    # Equinox's default Linear initialization is uniform on +-1/sqrt(fan_in), variance
+    # 1/(3 fan_in): 7 linear maps give a gain of at most (1/3)^7 (tanh' <= 1), far below 1
+    assert r["predicted"] is None
+    assert r["measured"]["lambda_moments"]["m1"] < 3.0 ** -7
+    assert r["score"]["verdict"] == "vanishing"
+
+
 CHECKS = {
+    "glacier-core-tanh-deep": _check_glacier,
+    "seismic-trace-conv1d": _check_seismic,
+    "radio-array-wide-relu": _check_radio,
+    "hive-listener-python": _check_hive,
+    "gearbox-whisper-equinox": _check_gearbox,
     "soil-moisture-erf-orthogonal": _check_soil_moisture,
     "sonar-denoiser-relu-gaussian": _check_sonar,
     "tide-gauge-residual-tanh": _check_tide_gauge,
@@ -67,11 +121,11 @@ CHECKS = {
 
 
 def test_every_example_spec_has_a_check_and_a_readme_line():
-    assert 3 <= len(SPECS) <= 5
+    assert len(SPECS) == 9
     assert {p.stem for p in SPECS} == set(CHECKS)
     readme = (EXAMPLES / "README.md").read_text()
     top = (ROOT / "README.md").read_text()
-    for p in SPECS + sorted(EXAMPLES.glob("*.py")):
+    for p in SPECS + sorted(EXAMPLES.glob("*.py")) + sorted(EXAMPLES.glob("networks/*.py")):
         assert p.name in readme, f"{p.name} is not described in examples/README.md"
         assert p.name in top, f"{p.name} is not listed in README.md"
 

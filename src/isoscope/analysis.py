@@ -710,8 +710,9 @@ def _finish(spec, design, label, plan, warnings, prediction, pending, draws: _Dr
     if route == "matrix-free":
         warnings += ("matrix-free route: each draw's spectrum is the stochastic Lanczos "
                      f"quadrature estimate ({spec.analysis.probes} probes x "
-                     f"{spec.analysis.lanczos_steps} steps), shown as its quantiles; there is no "
-                     "depth profile on this route",)
+                     f"{spec.analysis.lanczos_steps} steps), shown as its quantiles; s below "
+                     f"s_max / {spec.analysis.lanczos_steps} (the Lanczos resolution) count as "
+                     "zero; there is no depth profile on this route",)
     if label and predicted is not None:
         warnings += (f"the prediction is that of the {label}",)
     agree = profile = None
