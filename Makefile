@@ -24,6 +24,7 @@ bench: $(STAMP)
 	$(BIN)/python benchmarks/theory.py
 	$(BIN)/python benchmarks/analyze.py
 	$(BIN)/python benchmarks/sweep.py
+	$(BIN)/python benchmarks/scale.py
 
 clean:
 	rm -rf $(VENV) isoscope-demo .isoscope-demo.* isoscope-out .isoscope-out.*
