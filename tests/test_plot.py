@@ -17,16 +17,18 @@ from isoscope.spec import parse_spec
 from isoscope.spectrum import from_singular_values
 
 
-def _spec(name, width, depth, activation, weights, sigma_w, sigma_b=0.0, inputs=2):
+def _spec(name, width, depth, activation, weights, sigma_w, sigma_b=0.0, inputs=2, route="auto"):
     return parse_spec({"name": name,
                        "network": {"width": width, "depth": depth, "activation": activation},
                        "init": {"weights": weights, "sigma_w": sigma_w, "sigma_b": sigma_b},
-                       "analysis": {"inputs": inputs, "seed": 5}})
+                       "analysis": {"inputs": inputs, "seed": 5, "route": route}})
 
 
 # Spread: tanh, Gaussian weights, sigma_w = 3 (chaotic, chi_1 > 1) at depth 64: the singular
-# values span far more than the 13 decades a float64 SVD resolves.
-SPREAD = _spec("tanh-gaussian-3", 48, 64, "tanh", "gaussian", 3.0)
+# values span far more than the 13 decades a float64 SVD resolves.  The dense route is pinned
+# (auto would take the deep route here): these figures must show the SVD floor, its atom of
+# numerically zero values and a prediction reaching far below it.
+SPREAD = _spec("tanh-gaussian-3", 48, 64, "tanh", "gaussian", 3.0, route="dense")
 # ReLU with orthogonal weights at its only critical point sigma_w^2 = 2 (He et al. 2015):
 # half the units are off, the rest spread like a product of Bernoulli masks.
 RELU = _spec("relu-orthogonal", 48, 16, "relu", "orthogonal", math.sqrt(2.0))
