@@ -30,7 +30,7 @@ import jax.numpy as jnp
 import jax.scipy.special as jsp
 import numpy as np
 
-from isoscope.errors import InputError
+from isoscope.errors import InputError, did_you_mean, hints
 
 __all__ = ["Activation", "get_activation", "activation_names", "SELU_ALPHA", "SELU_LAMBDA",
            "LEAKY_SLOPE"]
@@ -294,7 +294,8 @@ def get_activation(name: str | Activation, slope: float | None = None) -> Activa
             raise InputError(
                 f"unknown activation {name!r}",
                 expected=f"one of {', '.join(_REGISTRY)}",
-                hint="check the spelling, or register a new Activation row in isoscope/activations.py",
+                hint=hints(did_you_mean(name, [*_REGISTRY, *_ALIASES]),
+                           "check the spelling, or register a new Activation row in isoscope/activations.py"),
             )
         act = _REGISTRY[key]
     return act if slope is None else act.with_slope(slope)

@@ -12,6 +12,7 @@ from __future__ import annotations
 import argparse
 import contextlib
 import os
+import re
 import signal
 import sys
 import time
@@ -19,7 +20,7 @@ import traceback
 from importlib import resources
 from pathlib import Path
 
-from isoscope.errors import InputError, SolverError, TheoryError
+from isoscope.errors import InputError, SolverError, TheoryError, did_you_mean
 
 __all__ = ["main", "build_parser"]
 
@@ -273,7 +274,8 @@ def _cmd_recommend(args) -> int:
     if args.sigma_b is not None and not (math.isfinite(args.sigma_b) and args.sigma_b >= 0):
         raise InputError(f"--sigma-b {args.sigma_b!r} is not allowed", expected="a finite scale >= 0")
     if args.family not in ("plain", "residual"):
-        raise InputError(f"--family {args.family!r} is not allowed", expected="plain or residual")
+        raise InputError(f"--family {args.family!r} is not allowed", expected="plain or residual",
+                         hint=did_you_mean(args.family, ("plain", "residual")))
     from isoscope.spec import SEED_MAX
     if not 0 <= args.seed <= SEED_MAX:
         raise InputError(f"--seed {args.seed} is out of range", expected="an integer from 0 to 2^64 - 1")
@@ -610,17 +612,75 @@ def _add_design_flags(p: argparse.ArgumentParser) -> None:
     p.add_argument("--alpha", type=float, help="residual branch scale (network.alpha; default 1)")
 
 
+_INVALID_CHOICE = re.compile(r"invalid choice: '(?P<got>[^']*)' \(choose from (?P<allowed>.*)\)")
+
+
+class _Parser(argparse.ArgumentParser):
+    """argparse with the nearest valid name suggested for a misspelled command or choice."""
+
+    def error(self, message: str):  # type: ignore[override]
+        m = _INVALID_CHOICE.search(message)
+        if m:
+            allowed = re.findall(r"'([^']*)'", m["allowed"])
+            near = did_you_mean(m["got"], allowed)
+            if near:
+                message = f"{message}; {near}"
+        super().error(message)
+
+
+# Two or three runnable examples per command, printed at the end of its --help (the files named
+# are in the repository's examples/ folder; tests/test_suggest.py parses every line).
+EXAMPLES = {
+    "analyze": ["isoscope analyze examples/kiln-monitor-tanh-chaotic.toml",
+                "isoscope analyze examples/soil-moisture-erf-orthogonal.toml --out results/soil",
+                "isoscope analyze examples/sonar-denoiser-relu-gaussian.toml --json --inputs 4"],
+    "isoscope": ["isoscope demo",
+                 "isoscope analyze examples/kiln-monitor-tanh-chaotic.toml",
+                 "isoscope analyze --help"],
+    "demo": ["isoscope demo",
+             "isoscope demo --out results/demo --json"],
+    "compare": ["isoscope compare examples/kiln-monitor-tanh-chaotic.toml "
+                "examples/soil-moisture-erf-orthogonal.toml",
+                "isoscope compare examples/tide-gauge-residual-tanh.toml "
+                "examples/kiln-monitor-tanh-chaotic.toml --seed 3 --out results/pair"],
+    "recommend": ["isoscope recommend --activation tanh --depth 64 --width 256",
+                  "isoscope recommend --activation relu --depth 32 --width 128 --family residual",
+                  "isoscope recommend --activation erf --depth 100 --width 200 --sigma-b 0.05 "
+                  "--out results/erf"],
+    "sweep": ["isoscope sweep examples/grids/avalanche-phase.toml --store avalanche.sqlite",
+              "isoscope sweep grid.toml --store s.sqlite --workers 1",
+              "isoscope sweep grid.toml --store s.sqlite --scheduler local"],
+    "show": ["isoscope show phase.sqlite",
+             "isoscope show phase.sqlite --x init.sigma_w --y init.sigma_b --where network.depth=16",
+             "isoscope show phase.sqlite --out results/phase --csv phase.csv"],
+    "predict": ["isoscope predict --activation tanh --sigma-w 1.1225 --sigma-b 0.05 --depth 200",
+                "isoscope predict examples/tide-gauge-residual-tanh.toml --json",
+                "isoscope predict --activation relu --weights gaussian --sigma-w 1.4142 --depth 16"],
+    "critical": ["isoscope critical --activation tanh --sigma-b 0.1",
+                 "isoscope critical --activation erf --sigma-w 1.5 --depth 300",
+                 "isoscope critical --activation tanh --plot critical-line.png"],
+}
+
+
+def _epilog(command: str) -> dict:
+    """``add_parser`` keywords that end a command's --help with its examples."""
+    lines = "\n".join(f"  {e}" for e in EXAMPLES[command])
+    return {"epilog": f"examples:\n{lines}", "formatter_class": argparse.RawDescriptionHelpFormatter}
+
+
 def build_parser() -> argparse.ArgumentParser:
     """The argument parser (exposed for documentation and tests)."""
-    p = argparse.ArgumentParser(
+    p = _Parser(
         prog="isoscope",
-        description="Jacobian spectra of deep networks at initialization: measure, score, report.")
+        description="Jacobian spectra of deep networks at initialization: measure, score, report.",
+        **_epilog("isoscope"))
     from isoscope import __version__
     p.add_argument("--version", action="version", version=f"isoscope {__version__}")
     sub = p.add_subparsers(dest="command", required=True, metavar="COMMAND")
 
     a = sub.add_parser("analyze", help="measure and score one design from a TOML spec",
-                       description="Measure the input-output Jacobian spectrum of one design.")
+                       description="Measure the input-output Jacobian spectrum of one design.",
+                       **_epilog("analyze"))
     a.add_argument("spec", metavar="SPEC.toml", help="the design (see docs/spec.md)")
     a.add_argument("--out", metavar="DIR",
                    help="output folder (default isoscope-out/ and a folder name made from the spec's name; "
@@ -636,7 +696,8 @@ def build_parser() -> argparse.ArgumentParser:
     a.set_defaults(run=_cmd_analyze)
 
     d = sub.add_parser("demo", help="run the built-in scenario end to end",
-                       description="Analyse the four built-in designs and write one report folder.")
+                       description="Analyse the four built-in designs and write one report folder.",
+                       **_epilog("demo"))
     d.add_argument("--out", metavar="DIR", default="isoscope-demo", help="output folder (default isoscope-demo)")
     d.add_argument("--json", action="store_true", help="print the results JSON to stdout")
     d.set_defaults(run=_cmd_demo)
@@ -644,7 +705,8 @@ def build_parser() -> argparse.ArgumentParser:
     cm = sub.add_parser("compare", help="rank several designs side by side",
                         description="Analyse several designs (each exactly as `analyze` would) and "
                                     "rank them by isometry score, with gain, spread, outliers, "
-                                    "agreement with theory and a trainable-depth estimate.")
+                                    "agreement with theory and a trainable-depth estimate.",
+                        **_epilog("compare"))
     cm.add_argument("specs", metavar="SPEC.toml", nargs="+", help="two or more designs")
     cm.add_argument("--out", metavar="DIR", help="output folder (default isoscope-out/comparison; "
                     "with --json and no --out nothing is written to disk)")
@@ -657,7 +719,8 @@ def build_parser() -> argparse.ArgumentParser:
                         description="Propose weights, sigma_w and sigma_b (alpha for residual "
                                     "stacks) for an activation, depth and width from theory, then "
                                     "measure every candidate at that width. Advice judged at "
-                                    "initialization only.")
+                                    "initialization only.",
+                        **_epilog("recommend"))
     rc.add_argument("--activation", required=True, help="activation name")
     rc.add_argument("--depth", type=int, required=True, help="number of weight layers L")
     rc.add_argument("--width", type=int, required=True, help="width N")
@@ -678,11 +741,7 @@ def build_parser() -> argparse.ArgumentParser:
                                     "[grid] table of dotted spec keys and lists) exactly as "
                                     "`analyze` would, in parallel, committing each point to the "
                                     "store as it finishes. Run the same command again to resume.",
-                        epilog="examples:\n"
-                               "  isoscope sweep examples/grids/avalanche-phase.toml --store avalanche.sqlite\n"
-                               "  isoscope sweep grid.toml --store s.sqlite --workers 1\n"
-                               "  isoscope sweep grid.toml --store s.sqlite --scheduler local",
-                        formatter_class=argparse.RawDescriptionHelpFormatter)
+                        **_epilog("sweep"))
     sw.add_argument("grid", metavar="GRID.toml", help="a spec with a [grid] table (docs/sweep.md)")
     sw.add_argument("--store", required=True, metavar="FILE.sqlite",
                     help="the SQLite store (created if absent; finished points are skipped)")
@@ -703,12 +762,7 @@ def build_parser() -> argparse.ArgumentParser:
                                     "it): one row per point, or with --x and --y a metric as a "
                                     "matrix; --json, --csv and a report folder with phase "
                                     "diagrams, depth curves and the mean-field critical line.",
-                        epilog="examples:\n"
-                               "  isoscope show phase.sqlite\n"
-                               "  isoscope show phase.sqlite --x init.sigma_w --y init.sigma_b "
-                               "--where network.depth=16\n"
-                               "  isoscope show phase.sqlite --out results/phase --csv phase.csv",
-                        formatter_class=argparse.RawDescriptionHelpFormatter)
+                        **_epilog("show"))
     sh.add_argument("store", metavar="FILE.sqlite", help="a store written by `isoscope sweep`")
     sh.add_argument("--x", metavar="KEY", help="setting along the columns (a dotted spec key)")
     sh.add_argument("--y", metavar="KEY", help="setting along the rows (with --x)")
@@ -724,7 +778,8 @@ def build_parser() -> argparse.ArgumentParser:
 
     pr = sub.add_parser("predict", help="theory only: mean field and the predicted spectrum",
                         description="Predict the Jacobian spectrum of a design at infinite width "
-                                    "(no network is built). Give a spec, flags, or both.")
+                                    "(no network is built). Give a spec, flags, or both.",
+                        **_epilog("predict"))
     _add_design_flags(pr)
     pr.add_argument("--points", type=int, default=400, help="grid size of the density (default 400)")
     pr.add_argument("--json", action="store_true", help="print the prediction JSON to stdout")
@@ -733,7 +788,8 @@ def build_parser() -> argparse.ArgumentParser:
     c = sub.add_parser("critical", help="critical sigma_w for a sigma_b, the critical line, depth scales",
                        description="Where chi_1 = 1 for an activation: the critical weight scale at "
                                    "the given bias scale, the whole critical line, and the depth "
-                                   "scales at your point.")
+                                   "scales at your point.",
+                       **_epilog("critical"))
     c.add_argument("--activation", required=True, help="activation name")
     c.add_argument("--sigma-b", dest="sigma_b", type=float, default=0.0, help="bias scale (default 0)")
     c.add_argument("--sigma-w", dest="sigma_w", type=float,

@@ -11,8 +11,35 @@ exits 1 for it, with the statement of the limit and no traceback.
 
 from __future__ import annotations
 
-__all__ = ["InputError", "TheoryError", "SolverError", "IsoscopeWarning", "FiniteWidthWarning",
+import difflib
+from collections.abc import Iterable
+
+__all__ = ["did_you_mean", "hints", "InputError", "TheoryError", "SolverError", "IsoscopeWarning", "FiniteWidthWarning",
            "NumericalFaultWarning"]
+
+
+def did_you_mean(received: object, allowed: Iterable[str]) -> str | None:
+    """``"did you mean 'tanh'?"`` for the allowed name nearest to ``received``, else ``None``.
+
+    Nearness is difflib's ratio 2M/T (M matching characters in the longest matching blocks, T
+    the total length of both strings; Ratcliff and Obershelp's gestalt pattern matching), with
+    the cut-off 0.6 that ``difflib.get_close_matches`` uses by default.  Case is ignored.
+    """
+    names = list(allowed)
+    lowered = {n.lower(): n for n in names}
+    near = difflib.get_close_matches(str(received).lower(), list(lowered), n=1)
+    return f"did you mean {lowered[near[0]]!r}?" if near else None
+
+
+def hints(*parts: str | None) -> str | None:
+    """The non-empty hints as sentences, in order (``None`` when there are none)."""
+    text = None
+    for part in filter(None, parts):
+        if text is None:
+            text = part
+        else:
+            text += (" " if text.endswith(("?", ".")) else ". ") + part[0].upper() + part[1:]
+    return text
 
 
 class InputError(ValueError):

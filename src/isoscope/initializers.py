@@ -24,7 +24,7 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
-from isoscope.errors import InputError
+from isoscope.errors import InputError, did_you_mean, hints
 
 __all__ = ["Initializer", "gaussian", "orthogonal", "uniform", "gaussian_bias",
            "delta_orthogonal", "conv_kernel", "get_initializer", "initializer_names",
@@ -340,7 +340,7 @@ def get_initializer(name: str, scale: float) -> Initializer:
     if key not in _WEIGHT_INITIALIZERS:
         raise InputError(f"unknown weight initializer {name!r}",
                          expected=f"one of {', '.join(_WEIGHT_INITIALIZERS)}",
-                         hint="check the spelling")
+                         hint=hints(did_you_mean(name, _WEIGHT_INITIALIZERS), "check the spelling"))
     if not scale >= 0:
         raise InputError(f"weight scale sigma_w = {scale!r} is negative or not a number",
                          expected="a number >= 0", hint="give sigma_w as a scale, not a variance")

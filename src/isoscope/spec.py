@@ -47,7 +47,7 @@ from pathlib import Path
 from typing import Any
 
 from isoscope.activations import activation_names, get_activation
-from isoscope.errors import InputError
+from isoscope.errors import InputError, did_you_mean, hints
 from isoscope.initializers import initializer_names
 
 __all__ = ["Spec", "NetworkSpec", "InitSpec", "AnalysisSpec", "load_spec", "parse_spec", "spec_toml",
@@ -209,7 +209,8 @@ def _choice(source, key, v, allowed, canonical=None):
         except InputError as e:
             raise e.located(file=source, key=key) from None
     if name not in allowed:
-        raise _err(source, key, f"value {v!r} is not allowed", f"one of {', '.join(allowed)}")
+        raise _err(source, key, f"value {v!r} is not allowed", f"one of {', '.join(allowed)}",
+                   did_you_mean(name, allowed))
     return name
 
 
@@ -221,7 +222,8 @@ def _section(source, data, name, cls):
     for k in raw:
         if k not in allowed:
             raise _err(source, f"{name}.{k}", "unknown key", f"one of {', '.join(allowed)}",
-                       "check the spelling; unknown keys are refused so that typos are not ignored")
+                       hints(did_you_mean(k, allowed),
+                             "check the spelling; unknown keys are refused so that typos are not ignored"))
     return raw
 
 
@@ -327,7 +329,8 @@ def parse_spec(data: dict[str, Any], source: str | None = None) -> Spec:
     top_allowed = ("name", "description", "network", "init", "analysis")
     for k in data:
         if k not in top_allowed:
-            raise _err(source, k, "unknown top-level key", f"one of {', '.join(top_allowed)}")
+            raise _err(source, k, "unknown top-level key", f"one of {', '.join(top_allowed)}",
+                       did_you_mean(k, top_allowed))
     net = _section(source, data, "network", NetworkSpec)
     ini = _section(source, data, "init", InitSpec)
     ana = _section(source, data, "analysis", AnalysisSpec)
