@@ -10,7 +10,7 @@ import difflib
 import pytest
 
 from isoscope import cli
-from isoscope.activations import activation_names, get_activation
+from isoscope.activations import get_activation
 from isoscope.errors import InputError, did_you_mean
 from isoscope.initializers import get_initializer
 from isoscope.spec import parse_spec
@@ -67,7 +67,6 @@ def test_misspelled_activation_and_initializer_names():
         get_activation("tahn")
     with pytest.raises(InputError, match=r"(?i)did you mean 'leaky-relu'\?"):
         get_activation("leaky-rlu")
-    assert "tanh" in activation_names()
     with pytest.raises(InputError, match=r"(?i)did you mean 'gaussian'\?"):
         get_initializer("gausian", 1.0)
 

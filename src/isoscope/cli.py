@@ -612,7 +612,8 @@ def _add_design_flags(p: argparse.ArgumentParser) -> None:
     p.add_argument("--alpha", type=float, help="residual branch scale (network.alpha; default 1)")
 
 
-_INVALID_CHOICE = re.compile(r"invalid choice: '(?P<got>[^']*)' \(choose from (?P<allowed>.*)\)")
+# argparse's wording; the choices are quoted up to Python 3.11 and bare from 3.12 on
+_INVALID_CHOICE = re.compile(r"invalid choice: '?(?P<got>[^' ]*)'? \(choose from (?P<allowed>.*)\)")
 
 
 class _Parser(argparse.ArgumentParser):
@@ -621,7 +622,7 @@ class _Parser(argparse.ArgumentParser):
     def error(self, message: str):  # type: ignore[override]
         m = _INVALID_CHOICE.search(message)
         if m:
-            allowed = re.findall(r"'([^']*)'", m["allowed"])
+            allowed = [c.strip().strip("'") for c in m["allowed"].split(",")]
             near = did_you_mean(m["got"], allowed)
             if near:
                 message = f"{message}; {near}"

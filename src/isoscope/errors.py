@@ -14,8 +14,8 @@ from __future__ import annotations
 import difflib
 from collections.abc import Iterable
 
-__all__ = ["did_you_mean", "hints", "InputError", "TheoryError", "SolverError", "IsoscopeWarning", "FiniteWidthWarning",
-           "NumericalFaultWarning"]
+__all__ = ["did_you_mean", "hints", "InputError", "TheoryError", "SolverError", "IsoscopeWarning",
+           "FiniteWidthWarning", "NumericalFaultWarning"]
 
 
 def did_you_mean(received: object, allowed: Iterable[str]) -> str | None:
@@ -25,8 +25,7 @@ def did_you_mean(received: object, allowed: Iterable[str]) -> str | None:
     the total length of both strings; Ratcliff and Obershelp's gestalt pattern matching), with
     the cut-off 0.6 that ``difflib.get_close_matches`` uses by default.  Case is ignored.
     """
-    names = list(allowed)
-    lowered = {n.lower(): n for n in names}
+    lowered = {n.lower(): n for n in allowed}
     near = difflib.get_close_matches(str(received).lower(), list(lowered), n=1)
     return f"did you mean {lowered[near[0]]!r}?" if near else None
 

@@ -19,7 +19,6 @@ Load only files you trust, as you would before running them with ``python``.
 
 from __future__ import annotations
 
-import difflib
 import hashlib
 import importlib.util
 import sys
@@ -30,7 +29,7 @@ from typing import Any, NamedTuple
 import jax
 import jax.numpy as jnp
 
-from isoscope.errors import InputError
+from isoscope.errors import InputError, did_you_mean
 from isoscope.network import Network, custom_network
 
 __all__ = ["UserFactory", "load_factory", "parse_reference"]
@@ -106,11 +105,10 @@ def _function(module, name: str, path: Path):
     fn = getattr(module, name, None)
     if fn is None:
         names = [n for n in vars(module) if callable(vars(module)[n]) and not n.startswith("_")]
-        near = difflib.get_close_matches(name, names, n=1)
         raise InputError(f"{path.name} has no function {name!r}",
                          expected="the name of a function defined in the file"
                          + (f" (it defines {', '.join(sorted(names))})" if names else ""),
-                         hint=f"did you mean {near[0]!r}?" if near else "check the name after ':'")
+                         hint=did_you_mean(name, names) or "check the name after ':'")
     if not callable(fn):
         raise InputError(f"{path.name}:{name} is a {type(fn).__name__}, not a function",
                          expected="a function width -> (init, apply[, equivalent])")

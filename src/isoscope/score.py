@@ -560,11 +560,14 @@ def agreement(spectrum: Spectrum, prediction) -> Agreement:
         warnings.append(f"heavy tail: the top 1/{width} of the predicted law carries "
                         f"{100 * shares[1]:.1f}% of m2, so m2 is not compared; compare the KS "
                         "distance and the ln s statistics")
+    # a measurement with a floor (an SVD) loses values below it; one without (the deep route)
+    # counts only exact zeros, the rank the layers' Jacobians leave
+    below = (f"lie below the SVD floor {_exp(floor_ell):.2g}" if math.isfinite(floor_ell) else
+             "are zero (a layer's Jacobian has lower rank at this width)")
     lost = meas_zero - pred_zero > 0.01
     if lost:
-        warnings.append(f"{100 * meas_zero:.1f}% of the measured lambda lie below the SVD floor "
-                        f"{_exp(floor_ell):.2g} where theory puts {100 * pred_zero:.1f}%: "
-                        "the ln s statistics cover only the resolved part")
+        warnings.append(f"{100 * meas_zero:.1f}% of the measured lambda {below} where theory puts "
+                        f"{100 * pred_zero:.1f}%: the ln s statistics cover only the rest")
     disagree = ks > KS_LIMIT or (m1_ok and math.isfinite(e1) and abs(e1) > MOMENT_LIMIT)
     cause = None
     if disagree:
@@ -573,8 +576,8 @@ def agreement(spectrum: Spectrum, prediction) -> Agreement:
             cause = (f"finite width (sqrt(L/N) = {ratio:.2f} > {FINITE_WIDTH_LIMIT}): widen the "
                      "network or compare at a smaller depth")
         if cause is None and lost:
-            cause = ("values lost below the SVD floor" + (" (use dtype = \"float64\")"
-                                                          if spectrum.dtype == "float32" else ""))
+            cause = (f"measured values that {below}" + (" (use dtype = \"float64\")"
+                                                         if spectrum.dtype == "float32" else ""))
         if cause is None:
             cause = "no known cause: the design lies outside what the theory was checked on"
         warnings.append(f"measured and predicted spectra disagree (KS = {ks:.3f}"

@@ -26,7 +26,6 @@ point, and a store never holds it twice.
 from __future__ import annotations
 
 import dataclasses
-import difflib
 import hashlib
 import itertools
 import json
@@ -35,7 +34,7 @@ import tomllib
 from pathlib import Path
 from typing import Any
 
-from isoscope.errors import InputError
+from isoscope.errors import InputError, did_you_mean
 from isoscope.spec import AnalysisSpec, InitSpec, NetworkSpec, Spec, parse_spec
 
 __all__ = ["Grid", "Point", "load_grid", "parse_grid", "grid_keys", "point_key", "flat_spec",
@@ -152,11 +151,10 @@ def _check_key(source, table: str, key: str) -> None:
     allowed = grid_keys()
     if key in allowed:
         return
-    near = difflib.get_close_matches(key, allowed, n=1, cutoff=0.6)
     top = key.split(".")[0]
-    hint = (f"did you mean {near[0]!r}?" if near else
-            "name and description are labels and cannot vary" if top in ("name", "description")
-            else "write the key as section.key, e.g. \"init.sigma_w\"")
+    hint = did_you_mean(key, allowed) or (
+        "name and description are labels and cannot vary" if top in ("name", "description")
+        else "write the key as section.key, e.g. \"init.sigma_w\"")
     raise _refuse(source, f"{table}.{key}", f"unknown grid key {key!r}",
                   f"a dotted spec key: one of {', '.join(allowed)}", hint)
 
