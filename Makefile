@@ -5,12 +5,12 @@ VENV := .venv
 BIN := $(VENV)/bin
 STAMP := $(VENV)/.installed
 
-.PHONY: demo test bench clean
+.PHONY: demo test lint bench clean
 
 $(STAMP): pyproject.toml
 	$(PYTHON) -m venv $(VENV)
 	$(BIN)/pip install --quiet --upgrade pip
-	$(BIN)/pip install --quiet -e '.[test]'
+	$(BIN)/pip install --quiet -e '.[test,lint]'
 	touch $(STAMP)
 
 demo: $(STAMP)
@@ -18,6 +18,12 @@ demo: $(STAMP)
 
 test: $(STAMP)
 	$(BIN)/python -m pytest
+
+# the quality gates: lint rules and formatting (pyproject [tool.ruff]) and the type check of src/
+lint: $(STAMP)
+	$(BIN)/ruff check src tests benchmarks examples
+	$(BIN)/ruff format --check src tests benchmarks examples
+	$(BIN)/mypy src
 
 bench: $(STAMP)
 	$(BIN)/python benchmarks/jacobian.py

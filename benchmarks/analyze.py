@@ -54,6 +54,7 @@ while time.time() < deadline and os.getppid() == parent:
 
 def _hand_stack(n: int, depth: int):
     """The hand-written network and its compiled Jacobian and SVD."""
+
     def layer(x, p):
         w, b = p
         return jnp.tanh(w @ x + b), None
@@ -61,7 +62,9 @@ def _hand_stack(n: int, depth: int):
     def forward(params, x):
         return jax.lax.scan(layer, x, params)[0]
 
-    return jax.jit(jax.jacfwd(forward, argnums=1)), jax.jit(lambda m: jnp.linalg.svd(m, compute_uv=False))
+    return jax.jit(jax.jacfwd(forward, argnums=1)), jax.jit(
+        lambda m: jnp.linalg.svd(m, compute_uv=False)
+    )
 
 
 def hand_loop(weights: str, n: int, depth: int, draws: int, compiled) -> dict[str, float]:
@@ -74,7 +77,7 @@ def hand_loop(weights: str, n: int, depth: int, draws: int, compiled) -> dict[st
         kw, kb, kx = jax.random.split(jax.random.PRNGKey(i), 3)
         z = jax.random.normal(kw, (depth, n, n))
         if weights == "gaussian":
-            w = z * (SIGMA_W / n ** 0.5)
+            w = z * (SIGMA_W / n**0.5)
         else:
             q, r = jnp.linalg.qr(z)
             w = SIGMA_W * q * jnp.sign(jnp.diagonal(r, axis1=-2, axis2=-1))[..., None, :]
@@ -102,10 +105,14 @@ def _median(runs: list[dict[str, float]]) -> dict[str, float]:
 
 
 def measure(weights: str, n: int, depth: int, draws: int, repeats: int) -> dict:
-    spec = parse_spec({"name": f"bench-{weights}-{n}",
-                       "network": {"width": n, "depth": depth, "activation": "tanh"},
-                       "init": {"weights": weights, "sigma_w": SIGMA_W, "sigma_b": SIGMA_B},
-                       "analysis": {"inputs": draws, "seed": 0, "dtype": "float64"}})
+    spec = parse_spec(
+        {
+            "name": f"bench-{weights}-{n}",
+            "network": {"width": n, "depth": depth, "activation": "tanh"},
+            "init": {"weights": weights, "sigma_w": SIGMA_W, "sigma_b": SIGMA_B},
+            "analysis": {"inputs": draws, "seed": 0, "dtype": "float64"},
+        }
+    )
     compiled = _hand_stack(n, depth)
     hand_loop(weights, n, depth, 1, compiled)  # compile
     analyze_run(spec)
@@ -132,15 +139,21 @@ def main() -> None:
     p.add_argument("--depth", type=int, default=64)
     p.add_argument("--draws", type=int, default=4)
     p.add_argument("--repeats", type=int, default=3)
-    p.add_argument("--load-limit", type=float, default=3600.0,
-                   help="seconds after which the competing process stops by itself")
+    p.add_argument(
+        "--load-limit",
+        type=float,
+        default=3600.0,
+        help="seconds after which the competing process stops by itself",
+    )
     p.add_argument("--no-load", action="store_true", help="skip the run under load")
     args = p.parse_args()
     sizes = [int(s) for s in args.sizes.split(",")]
     policy = thread_policy()
-    print(f"L = {args.depth}, {args.draws} draws, float64, tanh; medians of {args.repeats}; "
-          f"threads: BLAS {policy.blas}, XLA {policy.xla or 'default'} ({policy.source}); "
-          f"{os.cpu_count()} cores")
+    print(
+        f"L = {args.depth}, {args.draws} draws, float64, tanh; medians of {args.repeats}; "
+        f"threads: BLAS {policy.blas}, XLA {policy.xla or 'default'} ({policy.source}); "
+        f"{os.cpu_count()} cores"
+    )
     print(f"  {'':<22}" + "".join(f"{k:>10}" for k in STAGES))
     conditions = ["idle"] if args.no_load else ["idle", "one busy process"]
     rows, failures = [], []
@@ -150,10 +163,15 @@ def main() -> None:
             for weights in ("gaussian", "orthogonal"):
                 for n in sizes:
                     r = measure(weights, n, args.depth, args.draws, args.repeats)
-                    r.update(weights=weights, N=n, L=args.depth, draws=args.draws, condition=condition)
+                    r.update(
+                        weights=weights, N=n, L=args.depth, draws=args.draws, condition=condition
+                    )
                     rows.append(r)
-                    print(f"{weights} N = {n}, {condition}: analyze / hand = {r['ratio']:.2f} "
-                          f"(target {TARGET[weights]})", flush=True)
+                    print(
+                        f"{weights} N = {n}, {condition}: analyze / hand = {r['ratio']:.2f} "
+                        f"(target {TARGET[weights]})",
+                        flush=True,
+                    )
                     print(_row("hand loop", r["hand"]))
                     print(_row("analyze", r["analyze"]), flush=True)
                     if r["ratio"] > TARGET[weights]:
@@ -171,13 +189,25 @@ def main() -> None:
             base = idle[(r["weights"], r["N"])]["analyze"]
             slow = {k: r["analyze"][k] / base[k] for k in STAGES if base.get(k, 0) > 0}
             r["slowdown_vs_idle"] = slow
-            print(f"  {r['weights']:<10} N = {r['N']:<5}" + "".join(f" {k} {v:.2f}" for k, v in slow.items()))
-            failures += [f"{r['weights']} N = {r['N']} under load: {k} x{v:.2f}"
-                         for k, v in slow.items() if v > LOAD_TARGET]
+            print(
+                f"  {r['weights']:<10} N = {r['N']:<5}"
+                + "".join(f" {k} {v:.2f}" for k, v in slow.items())
+            )
+            failures += [
+                f"{r['weights']} N = {r['N']} under load: {k} x{v:.2f}"
+                for k, v in slow.items()
+                if v > LOAD_TARGET
+            ]
     print("targets met" if not failures else "targets missed: " + "; ".join(failures))
-    meta = {"jax": jax.__version__, "cores": os.cpu_count(), "blas_threads": policy.blas,
-            "xla_threads": policy.xla, "repeats": args.repeats,
-            "load": "one process of single-threaded NumPy matmuls", "targets_missed": failures}
+    meta = {
+        "jax": jax.__version__,
+        "cores": os.cpu_count(),
+        "blas_threads": policy.blas,
+        "xla_threads": policy.xla,
+        "repeats": args.repeats,
+        "load": "one process of single-threaded NumPy matmuls",
+        "targets_missed": failures,
+    }
     with open(args.out, "w") as f:
         json.dump({"meta": meta, "rows": rows}, f, indent=2)
     print(f"wrote {args.out}")

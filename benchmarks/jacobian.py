@@ -42,12 +42,20 @@ def run_case(n: int, depth: int, dtype) -> dict:
     svd = jax.jit(lambda m: jnp.linalg.svd(m, compute_uv=False))
     svd(j).block_until_ready()
     t_svd = median_time(lambda: svd(j).block_until_ready(), repeats)
-    jac_rate = 2.0 * depth * n ** 3 / t_jac
-    mm_rate = 2.0 * n ** 3 / t_mm
-    return {"N": n, "L": depth, "dtype": jnp.dtype(dtype).name,
-            "compile_s": first - t_jac, "jacobian_s": t_jac, "jacobian_gflops": jac_rate / 1e9,
-            "matmul_gflops": mm_rate / 1e9, "ratio_to_matmul": jac_rate / mm_rate, "svd_s": t_svd,
-            "peak_rss_mib": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0}
+    jac_rate = 2.0 * depth * n**3 / t_jac
+    mm_rate = 2.0 * n**3 / t_mm
+    return {
+        "N": n,
+        "L": depth,
+        "dtype": jnp.dtype(dtype).name,
+        "compile_s": first - t_jac,
+        "jacobian_s": t_jac,
+        "jacobian_gflops": jac_rate / 1e9,
+        "matmul_gflops": mm_rate / 1e9,
+        "ratio_to_matmul": jac_rate / mm_rate,
+        "svd_s": t_svd,
+        "peak_rss_mib": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0,
+    }
 
 
 def main() -> None:
@@ -63,11 +71,17 @@ def main() -> None:
         for dtype in (jnp.float32, jnp.float64):
             r = run_case(n, args.depth, dtype)
             rows.append(r)
-            print(f"{r['N']:>5} {r['dtype']:>8} {r['compile_s']:>9.3f} {r['jacobian_s']:>8.3f} "
-                  f"{r['jacobian_gflops']:>8.1f} {r['matmul_gflops']:>8.1f} {r['ratio_to_matmul']:>6.2f} "
-                  f"{r['svd_s']:>7.3f} {r['peak_rss_mib']:>8.0f}", flush=True)
-    meta = {"jax": jax.__version__, "device": jax.devices()[0].platform, "note":
-            "peak_rss_mib is the process high-water mark so far (monotone over the run)"}
+            print(
+                f"{r['N']:>5} {r['dtype']:>8} {r['compile_s']:>9.3f} {r['jacobian_s']:>8.3f} "
+                f"{r['jacobian_gflops']:>8.1f} {r['matmul_gflops']:>8.1f} {r['ratio_to_matmul']:>6.2f} "
+                f"{r['svd_s']:>7.3f} {r['peak_rss_mib']:>8.0f}",
+                flush=True,
+            )
+    meta = {
+        "jax": jax.__version__,
+        "device": jax.devices()[0].platform,
+        "note": "peak_rss_mib is the process high-water mark so far (monotone over the run)",
+    }
     with open(args.out, "w") as f:
         json.dump({"meta": meta, "rows": rows}, f, indent=2)
     print(f"wrote {args.out}")

@@ -66,8 +66,12 @@ CHILD = textwrap.dedent("""
 
 
 def _case(kind: str, n: int, depth: int) -> dict:
-    run = subprocess.run([sys.executable, "-c", CHILD, kind, str(n), str(depth)],
-                         capture_output=True, text=True, cwd=ROOT)
+    run = subprocess.run(
+        [sys.executable, "-c", CHILD, kind, str(n), str(depth)],
+        capture_output=True,
+        text=True,
+        cwd=ROOT,
+    )
     if run.returncode != 0:
         return {"kind": kind, "width": n, "depth": depth, "error": run.stderr.strip()[-400:]}
     return json.loads(run.stdout.strip().splitlines()[-1])
@@ -95,23 +99,48 @@ def main() -> int:
             d, how = d0 * (n / ref_n) ** 3, f"extrapolated (N^3 from N = {ref_n})"
         else:
             d, how = None, "not run"
-        rows.append({"route": "matrix-free", "width": n, "depth": 16, "seconds": total,
-                     "peak_GB": mf.get("peak_bytes", 0) / 1e9, "dense_seconds": d,
-                     "dense": how, "speed_up": (d / total) if d and total else None,
-                     "error": mf.get("error")})
+        rows.append(
+            {
+                "route": "matrix-free",
+                "width": n,
+                "depth": 16,
+                "seconds": total,
+                "peak_GB": mf.get("peak_bytes", 0) / 1e9,
+                "dense_seconds": d,
+                "dense": how,
+                "speed_up": (d / total) if d and total else None,
+                "error": mf.get("error"),
+            }
+        )
     for n, d in dense.items():
-        rows.append({"route": "dense", "width": n, "depth": 16,
-                     "seconds": d.get("sampling_s", 0) + d.get("first_s", 0),
-                     "peak_GB": d.get("peak_bytes", 0) / 1e9, "error": d.get("error")})
+        rows.append(
+            {
+                "route": "dense",
+                "width": n,
+                "depth": 16,
+                "seconds": d.get("sampling_s", 0) + d.get("first_s", 0),
+                "peak_GB": d.get("peak_bytes", 0) / 1e9,
+                "error": d.get("error"),
+            }
+        )
     for depth in [int(v) for v in a.deep_depths.split(",") if v]:
         deep, plain = _case("deep", 128, depth), _case("jacfwd", 128, depth)
-        rows.append({"route": "deep", "width": 128, "depth": depth,
-                     "seconds": deep.get("again_s"), "first_s": deep.get("first_s"),
-                     "peak_GB": deep.get("peak_bytes", 0) / 1e9,
-                     "jacfwd_seconds": plain.get("again_s"), "jacfwd_first_s": plain.get("first_s"),
-                     "ratio": (deep["again_s"] / plain["again_s"])
-                     if deep.get("again_s") and plain.get("again_s") else None,
-                     "error": deep.get("error") or plain.get("error")})
+        rows.append(
+            {
+                "route": "deep",
+                "width": 128,
+                "depth": depth,
+                "seconds": deep.get("again_s"),
+                "first_s": deep.get("first_s"),
+                "peak_GB": deep.get("peak_bytes", 0) / 1e9,
+                "jacfwd_seconds": plain.get("again_s"),
+                "jacfwd_first_s": plain.get("first_s"),
+                "ratio": (deep["again_s"] / plain["again_s"])
+                if deep.get("again_s") and plain.get("again_s")
+                else None,
+                "error": deep.get("error") or plain.get("error"),
+            }
+        )
     for r in rows:
         print(json.dumps(r))
     Path(a.out).write_text(json.dumps(rows, indent=1) + "\n")

@@ -50,10 +50,16 @@ TARGET_HAND, TARGET_WORKERS = 5.0, 1.6
 
 
 def grid():
-    return parse_grid({"name": "bench", "network": {"width": N, "depth": L, "activation": "tanh"},
-                       "init": {"weights": "orthogonal"}, "analysis": {"inputs": DRAWS, "seed": 0},
-                       "grid": {"init.sigma_w": SIGMA_W, "init.sigma_b": SIGMA_B}},
-                      source="<benchmark grid>")
+    return parse_grid(
+        {
+            "name": "bench",
+            "network": {"width": N, "depth": L, "activation": "tanh"},
+            "init": {"weights": "orthogonal"},
+            "analysis": {"inputs": DRAWS, "seed": 0},
+            "grid": {"init.sigma_w": SIGMA_W, "init.sigma_b": SIGMA_B},
+        },
+        source="<benchmark grid>",
+    )
 
 
 def hand_point(sw: float, sb: float, seed: int, with_prediction: bool, spec=None) -> np.ndarray:
@@ -67,7 +73,7 @@ def hand_point(sw: float, sb: float, seed: int, with_prediction: bool, spec=None
         b = sb * jax.random.normal(kb, (L, N))
         x0 = jnp.tanh(jax.random.normal(kx, (N,)))
 
-        def net(x):
+        def net(x, w=w, b=b):
             for layer in range(L):
                 x = jnp.tanh(w[layer] @ x + b[layer])
             return x
@@ -90,8 +96,10 @@ def timed_sweep(g, workers: int, folder: Path) -> tuple[float, Path]:
 
 def numbers(store: Path) -> dict:
     with Store.reader(store) as st:
-        return {p.key: {k: v for k, v in p.numbers.items() if not k.startswith("seconds.")}
-                for p in st.points()}
+        return {
+            p.key: {k: v for k, v in p.numbers.items() if not k.startswith("seconds.")}
+            for p in st.points()
+        }
 
 
 def main() -> int:
@@ -103,14 +111,18 @@ def main() -> int:
     points = len(g.points)
     with tempfile.TemporaryDirectory(prefix="isoscope-bench-") as tmp:
         one, store1 = timed_sweep(g, 1, Path(tmp))
-        print(f"sweep, 1 worker:  {points} points in {one:.1f} s = {points / one:.3f} points/s",
-              flush=True)
+        print(
+            f"sweep, 1 worker:  {points} points in {one:.1f} s = {points / one:.3f} points/s",
+            flush=True,
+        )
         two, store2 = timed_sweep(g, 2, Path(tmp))
-        print(f"sweep, 2 workers: {points} points in {two:.1f} s = {points / two:.3f} points/s",
-              flush=True)
+        print(
+            f"sweep, 2 workers: {points} points in {two:.1f} s = {points / two:.3f} points/s",
+            flush=True,
+        )
         same = numbers(store1) == numbers(store2)
-    subset = g.points[:args.hand_points]
-    hand_point(SIGMA_W[0], SIGMA_B[0], 0, False)     # import and first-call costs, not counted
+    subset = g.points[: args.hand_points]
+    hand_point(SIGMA_W[0], SIGMA_B[0], 0, False)  # import and first-call costs, not counted
     t = time.perf_counter()
     for p in subset:
         hand_point(p.spec.init.sigma_w, p.spec.init.sigma_b, 0, True, p.spec)
@@ -119,29 +131,55 @@ def main() -> int:
     for p in subset:
         hand_point(p.spec.init.sigma_w, p.spec.init.sigma_b, 0, False)
     hand_bare = (time.perf_counter() - t) / len(subset)
-    print(f"hand loop: {hand:.2f} s per point ({1 / hand:.3f} points/s) with the prediction, "
-          f"{hand_bare:.2f} s without (mean of {len(subset)} points)", flush=True)
-    rates = {"sweep_1_worker": points / one, "sweep_2_workers": points / two,
-             "hand_loop": 1 / hand, "hand_loop_without_prediction": 1 / hand_bare}
+    print(
+        f"hand loop: {hand:.2f} s per point ({1 / hand:.3f} points/s) with the prediction, "
+        f"{hand_bare:.2f} s without (mean of {len(subset)} points)",
+        flush=True,
+    )
+    rates = {
+        "sweep_1_worker": points / one,
+        "sweep_2_workers": points / two,
+        "hand_loop": 1 / hand,
+        "hand_loop_without_prediction": 1 / hand_bare,
+    }
     ratio_hand = rates["sweep_1_worker"] / rates["hand_loop"]
     ratio_bare = rates["sweep_1_worker"] / rates["hand_loop_without_prediction"]
     ratio_workers = rates["sweep_2_workers"] / rates["sweep_1_worker"]
-    print(f"1 worker / hand loop: {ratio_hand:.2f}x (target {TARGET_HAND}x: "
-          f"{'met' if ratio_hand >= TARGET_HAND else 'MISSED'}); against the hand loop without "
-          f"the prediction {ratio_bare:.2f}x")
-    print(f"2 workers / 1 worker: {ratio_workers:.2f}x (target {TARGET_WORKERS}x: "
-          f"{'met' if ratio_workers >= TARGET_WORKERS else 'MISSED'})")
+    print(
+        f"1 worker / hand loop: {ratio_hand:.2f}x (target {TARGET_HAND}x: "
+        f"{'met' if ratio_hand >= TARGET_HAND else 'MISSED'}); against the hand loop without "
+        f"the prediction {ratio_bare:.2f}x"
+    )
+    print(
+        f"2 workers / 1 worker: {ratio_workers:.2f}x (target {TARGET_WORKERS}x: "
+        f"{'met' if ratio_workers >= TARGET_WORKERS else 'MISSED'})"
+    )
     print(f"1 and 2 workers stored the same numbers: {same}")
-    result = {"grid": {"sigma_w": SIGMA_W, "sigma_b": SIGMA_B, "width": N, "depth": L,
-                       "draws": DRAWS, "activation": "tanh", "weights": "orthogonal"},
-              "points": points, "hand_points": len(subset), "seconds": {"sweep_1_worker": one,
-                                                                         "sweep_2_workers": two},
-              "points_per_second": rates, "ratio_1_worker_to_hand_loop": ratio_hand,
-              "ratio_1_worker_to_hand_loop_without_prediction": ratio_bare,
-              "ratio_2_workers_to_1": ratio_workers, "same_numbers": same,
-              "targets": {"hand_loop": TARGET_HAND, "workers": TARGET_WORKERS},
-              "machine": {"cores": len(os.sched_getaffinity(0)), "python": platform.python_version(),
-                          "jax": jax.__version__}}
+    result = {
+        "grid": {
+            "sigma_w": SIGMA_W,
+            "sigma_b": SIGMA_B,
+            "width": N,
+            "depth": L,
+            "draws": DRAWS,
+            "activation": "tanh",
+            "weights": "orthogonal",
+        },
+        "points": points,
+        "hand_points": len(subset),
+        "seconds": {"sweep_1_worker": one, "sweep_2_workers": two},
+        "points_per_second": rates,
+        "ratio_1_worker_to_hand_loop": ratio_hand,
+        "ratio_1_worker_to_hand_loop_without_prediction": ratio_bare,
+        "ratio_2_workers_to_1": ratio_workers,
+        "same_numbers": same,
+        "targets": {"hand_loop": TARGET_HAND, "workers": TARGET_WORKERS},
+        "machine": {
+            "cores": len(os.sched_getaffinity(0)),
+            "python": platform.python_version(),
+            "jax": jax.__version__,
+        },
+    }
     Path(args.out).write_text(json.dumps(result, indent=2) + "\n", encoding="utf-8")
     print(f"wrote {args.out}")
     return 0 if same else 1

@@ -21,8 +21,16 @@ from pathlib import Path
 from typing import NamedTuple
 
 CHROMIUM = os.environ.get("ISOSCOPE_CHROMIUM", "/usr/bin/chromium")
-CHROMIUM_ARGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
-                 "--disable-background-networking", "--disable-component-update", "--disable-sync"]
+CHROMIUM_ARGS = [
+    "--headless",
+    "--no-sandbox",
+    "--disable-gpu",
+    "--disable-quic",
+    "--no-first-run",
+    "--disable-background-networking",
+    "--disable-component-update",
+    "--disable-sync",
+]
 VIEWPORT = {"width": 1200, "height": 900}
 
 
@@ -44,8 +52,10 @@ def missing() -> str | None:
     if importlib.util.find_spec("playwright") is None:
         return "the Python package playwright is not installed: pip install playwright (no browser download needed)"
     if not (Path(CHROMIUM).is_file() or shutil.which(CHROMIUM)):
-        return (f"Chromium is not at {CHROMIUM}: apt-get install -y chromium "
-                "(or set ISOSCOPE_CHROMIUM to a Chromium binary)")
+        return (
+            f"Chromium is not at {CHROMIUM}: apt-get install -y chromium "
+            "(or set ISOSCOPE_CHROMIUM to a Chromium binary)"
+        )
     return None
 
 
@@ -53,7 +63,7 @@ _IMAGES = """() => Array.from(document.images).map((img, i) => ({
     index: i, alt: img.alt, ok: img.complete && img.naturalWidth > 0}))"""
 
 
-def inspect_page(html_path: "str | Path", screenshot_path: "str | Path") -> PageCheck:
+def inspect_page(html_path: str | Path, screenshot_path: str | Path) -> PageCheck:
     """Load ``html_path`` in headless Chromium, screenshot it to ``screenshot_path``, report."""
     from playwright.sync_api import sync_playwright
 
@@ -63,7 +73,10 @@ def inspect_page(html_path: "str | Path", screenshot_path: "str | Path") -> Page
         browser = pw.chromium.launch(executable_path=CHROMIUM, args=CHROMIUM_ARGS)
         try:
             page = browser.new_page(viewport=VIEWPORT)
-            page.on("console", lambda m: errors.append(f"console: {m.text}") if m.type == "error" else None)
+            page.on(
+                "console",
+                lambda m: errors.append(f"console: {m.text}") if m.type == "error" else None,
+            )
             page.on("pageerror", lambda e: errors.append(f"page error: {e}"))
             page.on("dialog", lambda d: (dialogs.append(f"{d.type}: {d.message}"), d.dismiss()))
             page.on("request", lambda r: requests.append(r.url) if r.url != url else None)

@@ -15,7 +15,11 @@ NAMES = activation_names()
 def test_derivative_matches_central_differences(name):
     act = get_activation(name)
     h = jnp.linspace(-3.0, 3.0, 601)
-    h = h[np.all(np.abs(np.asarray(h)[:, None] - np.asarray(act.kinks or [99.0])[None, :]) > 1e-3, axis=1)]
+    h = h[
+        np.all(
+            np.abs(np.asarray(h)[:, None] - np.asarray(act.kinks or [99.0])[None, :]) > 1e-3, axis=1
+        )
+    ]
     eps = 1e-6
     fd = (act.fn(h + eps) - act.fn(h - eps)) / (2 * eps)  # central difference, error O(eps^2)
     np.testing.assert_allclose(act.derivative(h), fd, atol=1e-8)
@@ -46,12 +50,18 @@ def test_symmetry_and_dtype(name):
 
 def test_reference_values():
     # SELU constants: Klambauer et al. 2017, eq. (14); selu(1) = lambda.
-    np.testing.assert_allclose(get_activation("selu").fn(jnp.asarray(1.0)), 1.0507009873554805, rtol=1e-15)
+    np.testing.assert_allclose(
+        get_activation("selu").fn(jnp.asarray(1.0)), 1.0507009873554805, rtol=1e-15
+    )
     # 4 sigmoid(x) - 2 = 2 tanh(x/2) (docs/theory-mean-field.md)
     x = jnp.linspace(-5, 5, 11)
-    np.testing.assert_allclose(get_activation("centred-sigmoid").fn(x), 2 * np.tanh(np.asarray(x) / 2), atol=1e-14)
+    np.testing.assert_allclose(
+        get_activation("centred-sigmoid").fn(x), 2 * np.tanh(np.asarray(x) / 2), atol=1e-14
+    )
     # gelu(1) = Phi(1) = 0.8413447460685429 (scipy.stats.norm.cdf(1))
-    np.testing.assert_allclose(get_activation("gelu").fn(jnp.asarray(1.0)), 0.8413447460685429, rtol=1e-14)
+    np.testing.assert_allclose(
+        get_activation("gelu").fn(jnp.asarray(1.0)), 0.8413447460685429, rtol=1e-14
+    )
 
 
 def test_unknown_activation_lists_allowed():
@@ -66,15 +76,17 @@ def test_unknown_activation_lists_allowed():
 # SiLU' = s(h) (1 + h s(-h)), SELU' = lambda alpha e^h for h < 0)
 # ---------------------------------------------------------------------------------------------
 
+
 def _mp_derivatives():
     import mpmath as mp
+
     from isoscope.activations import SELU_ALPHA, SELU_LAMBDA
 
     sig = lambda h: 1 / (1 + mp.exp(-h))  # noqa: E731
     return {
         "tanh": lambda h: mp.sech(h) ** 2,
         "erf": lambda h: 2 / mp.sqrt(mp.pi) * mp.exp(-h * h),
-        "sigmoid": lambda h: sig(h) * sig(-h),              # 1 - s(h) = s(-h): no cancellation
+        "sigmoid": lambda h: sig(h) * sig(-h),  # 1 - s(h) = s(-h): no cancellation
         "centred-sigmoid": lambda h: 4 * sig(h) * sig(-h),
         "gelu": lambda h: mp.ncdf(h) + h * mp.npdf(h),
         "silu": lambda h: sig(h) * (1 + h * sig(-h)),
@@ -88,12 +100,30 @@ def test_log_dphi_sq_keeps_relative_accuracy_in_the_tails(name):
 
     mp.mp.dps = 50
     want_fn = _mp_derivatives()[name]
-    h = np.array([-700.0, -300.0, -60.0, -37.0, -20.0, -5.0001, -4.999, -2.0, -0.3, 0.05, 0.7,
-                  3.0, 19.5, 40.0, 300.0, 700.0])
+    h = np.array(
+        [
+            -700.0,
+            -300.0,
+            -60.0,
+            -37.0,
+            -20.0,
+            -5.0001,
+            -4.999,
+            -2.0,
+            -0.3,
+            0.05,
+            0.7,
+            3.0,
+            19.5,
+            40.0,
+            300.0,
+            700.0,
+        ]
+    )
     got = get_activation(name).numpy_log_dphi_sq()(h)
     want = np.array([float(2 * mp.log(abs(want_fn(mp.mpf(x))))) for x in h])
     np.testing.assert_allclose(got, want, rtol=1e-13, atol=1e-14)
-    assert np.all(np.isfinite(got))   # never -inf: phi' of these never vanishes at these h
+    assert np.all(np.isfinite(got))  # never -inf: phi' of these never vanishes at these h
 
 
 def test_tanh_grad_underflows_where_the_closed_form_does_not():
@@ -111,11 +141,12 @@ def test_tanh_grad_underflows_where_the_closed_form_does_not():
 # Leaky ReLU slope
 # ---------------------------------------------------------------------------------------------
 
+
 def test_leaky_relu_slope_is_one_cached_row_per_slope():
     a = get_activation("leaky-relu", slope=0.2)
     assert a is get_activation("leaky_relu").with_slope(0.2)
     assert a is not get_activation("leaky-relu")
-    assert get_activation("leaky-relu").slope == 0.01          # the default
+    assert get_activation("leaky-relu").slope == 0.01  # the default
     np.testing.assert_allclose(a.fn(jnp.asarray([-2.0, 3.0])), [-0.4, 3.0], rtol=1e-15)
     assert a.derivative_values == (0.2, 1.0)
     # the NumPy callables are compiled per slope, not per name

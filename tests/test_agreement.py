@@ -36,16 +36,20 @@ from isoscope.theory import mean_field
 from isoscope.theory.predict import predict
 
 N = 1000
-KS_ACCEPT = 0.03                                   # the issue's acceptance limit
-KS_REJECT = float(kstwobign.ppf(0.999)) / math.sqrt(N)   # Kolmogorov 1933; ~0.062 at n = 1000
-SIGMAS = 3.0        # two-sided normal tail 0.27 % (the seeds are fixed: the test is deterministic)
+KS_ACCEPT = 0.03  # the issue's acceptance limit
+KS_REJECT = float(kstwobign.ppf(0.999)) / math.sqrt(N)  # Kolmogorov 1933; ~0.062 at n = 1000
+SIGMAS = 3.0  # two-sided normal tail 0.27 % (the seeds are fixed: the test is deterministic)
 SB_TANH = 0.05
-SW_TANH = mean_field.critical_point("tanh", SB_TANH).sigma_w   # chi_1 = 1 at q* (= 1.1225)
+SW_TANH = mean_field.critical_point("tanh", SB_TANH).sigma_w  # chi_1 = 1 at q* (= 1.1225)
 
 
 def _spec(width=N, seed=3, **kw):
-    net = {"width": width, "depth": kw.pop("depth"), "activation": kw.pop("act"),
-           "family": kw.pop("family", "plain")}
+    net = {
+        "width": width,
+        "depth": kw.pop("depth"),
+        "activation": kw.pop("act"),
+        "family": kw.pop("family", "plain"),
+    }
     return parse_spec({"network": net, "init": kw, "analysis": {"inputs": 1, "seed": seed}})
 
 
@@ -53,7 +57,9 @@ def _draw(spec):
     """Parameters, input and singular values of one draw, as ``analyze`` draws them."""
     network = build_network(spec)
     plan, _ = plan_inputs(spec)
-    k_params, k_input = jax.random.split(jax.random.fold_in(jax.random.PRNGKey(spec.analysis.seed), 0))
+    k_params, k_input = jax.random.split(
+        jax.random.fold_in(jax.random.PRNGKey(spec.analysis.seed), 0)
+    )
     params = network.init(k_params, jnp.float64)
     act = spec_activation(spec) if plan.kind == "steady-state" else None
     x = _draw_input(plan, act, network.width, k_input, jnp.float64)
@@ -61,7 +67,7 @@ def _draw(spec):
     return plan, from_singular_values(s, np.float64)
 
 
-@functools.lru_cache(maxsize=None)
+@functools.cache
 def _case(name):
     spec = CASES[name]
     plan, spectrum = _draw(spec)
@@ -89,7 +95,7 @@ def _simulate(spec, plan, pred, draws=400, seed=0):
     z = rng.standard_normal((draws, N))
     v = math.sqrt(plan.variance)
     x = np.asarray(phi(v * z)) if plan.kind == "steady-state" else v * z
-    sw2, log_m1, rank = i.sigma_w ** 2, np.zeros(draws), np.full(draws, N)
+    sw2, log_m1, rank = i.sigma_w**2, np.zeros(draws), np.full(draws, N)
     for _ in range(n.depth):
         g = rng.standard_normal((draws, N))
         norm_x = np.linalg.norm(x, axis=1, keepdims=True)
@@ -104,7 +110,7 @@ def _simulate(spec, plan, pred, draws=400, seed=0):
             log_m1 += np.log(sw2 * d.mean(axis=1))
             x = np.asarray(phi(h))
         else:
-            log_m1 += np.log1p(n.alpha ** 2 * sw2 * d.mean(axis=1))
+            log_m1 += np.log1p(n.alpha**2 * sw2 * d.mean(axis=1))
             x = x + n.alpha * np.asarray(phi(h))
     return np.exp(log_m1) / pred.moments.m1 - 1.0, 1.0 - rank / N
 
@@ -125,25 +131,28 @@ def _m1_sampling(spec, plan, pred):
     """
     err, _ = _simulate(spec, plan, pred)
     sd_weights = math.sqrt(spec.network.depth * (spec.network.depth + 1)) / N
-    return float(err.mean()), math.sqrt(float(err.std()) ** 2 + sd_weights ** 2)
+    return float(err.mean()), math.sqrt(float(err.std()) ** 2 + sd_weights**2)
 
 
 CASES = {
     # (a) tanh, orthogonal, at the critical point chi_1 = 1 for sigma_b = 0.05 (q* = 0.154),
     #     steady-state inputs: the spread is visible (log_s_std ~ 0.3), not a trivial isometry
-    "tanh-orthogonal-critical": _spec(act="tanh", depth=32, weights="orthogonal",
-                                      sigma_w=SW_TANH, sigma_b=SB_TANH),
+    "tanh-orthogonal-critical": _spec(
+        act="tanh", depth=32, weights="orthogonal", sigma_w=SW_TANH, sigma_b=SB_TANH
+    ),
     # (b) linear, Gaussian, sigma_w = 1: Fuss-Catalan law of a product of 4 Ginibre matrices
     "linear-gaussian": _spec(act="linear", depth=4, weights="gaussian", sigma_w=1.0),
     # (c) ReLU, orthogonal, He scale: half of lambda is an atom at 0.  Depth 4: the rank of J is
     #     the smallest active count over the layers (each Binomial(N, 1/2)), which sits below
     #     N/2 by about 0.5 E[max of L normals]/sqrt(N) (0.016 at L = 4): a finite-width shift of
     #     the zero atom that KS counts, growing with L
-    "relu-orthogonal": _spec(act="relu", depth=4, weights="orthogonal", sigma_w=math.sqrt(2.0),
-                             seed=0),
+    "relu-orthogonal": _spec(
+        act="relu", depth=4, weights="orthogonal", sigma_w=math.sqrt(2.0), seed=0
+    ),
     # (d) residual tanh, sigma_w^2 = 2/L: branch variance O(1/L), the large-depth law applies
-    "residual-tanh": _spec(act="tanh", depth=32, family="residual", weights="gaussian",
-                           sigma_w=math.sqrt(2.0 / 32)),
+    "residual-tanh": _spec(
+        act="tanh", depth=32, family="residual", weights="gaussian", sigma_w=math.sqrt(2.0 / 32)
+    ),
 }
 
 
@@ -158,7 +167,9 @@ def test_measured_spectrum_matches_prediction(name):
     # input-length direction, when it lies outside the bulk, is set apart first)
     bulk, _ = split_outliers(spectrum, pred)
     log_lam = np.where(bulk.zero_mask, -np.inf, 2.0 * bulk.log_s).ravel()
-    assert ks_distance(log_lam, pred.density, 2.0 * math.log(agree.floor)) == pytest.approx(agree.ks)
+    assert ks_distance(log_lam, pred.density, 2.0 * math.log(agree.floor)) == pytest.approx(
+        agree.ks
+    )
     bias, sd = _m1_sampling(spec, plan, pred)
     assert abs(agree.m1_rel_error) <= abs(bias) + SIGMAS * sd, (name, agree.m1_rel_error, bias, sd)
     # no disagreement warning on a case that agrees
@@ -177,7 +188,9 @@ def test_relu_matches_and_zero_atom_is_the_rank_deficit():
     # sampler seed 0 gives KS 0.035, most of it the zero atom's shift), hence the bound above.
     spec, plan, spectrum, pred, agree = _case("relu-orthogonal")
     assert not pred.notes, pred.notes
-    (a0, w0), = pred.density.atoms                  # the atom at zero, weight 1/2 (docs/theory-free-probability.md)
+    ((a0, w0),) = (
+        pred.density.atoms
+    )  # the atom at zero, weight 1/2 (docs/theory-free-probability.md)
     assert a0 == 0.0 and w0 == pytest.approx(0.5, abs=1e-6)
     _, zero_sim = _simulate(spec, plan, pred)
     zero_meas = agree.zero_fraction[1]
@@ -195,7 +208,7 @@ def test_m1_sampling_model_is_sharp_enough_to_fail():
     # tanh, He ReLU, Gaussian linear), a 25 % error in the gain would be caught
     for name in ("tanh-orthogonal-critical", "relu-orthogonal", "linear-gaussian"):
         spec, plan, _, pred, _ = _case(name)
-        assert pred.moments.m1 == pytest.approx(1.0, rel=1e-9)   # chi_1^L = 1 (Poole et al. 2016)
+        assert pred.moments.m1 == pytest.approx(1.0, rel=1e-9)  # chi_1^L = 1 (Poole et al. 2016)
         bias, sd = _m1_sampling(spec, plan, pred)
         assert abs(bias) + SIGMAS * sd < 0.25, (name, bias, sd)
 
@@ -206,7 +219,7 @@ def test_residual_finite_depth_bias_is_what_the_product_predicts():
     spec, plan, _, pred, agree = _case("residual-tanh")
     bias, sd = _m1_sampling(spec, plan, pred)
     s_l = pred.tau / spec.network.depth
-    expected = math.expm1(-spec.network.depth * s_l ** 2 / 2.0)   # equal s_l: first-order estimate
+    expected = math.expm1(-spec.network.depth * s_l**2 / 2.0)  # equal s_l: first-order estimate
     assert bias < 0 and abs(bias - expected) < 0.5 * abs(expected), (bias, expected)
     assert agree.m1_rel_error < 0
 

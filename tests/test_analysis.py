@@ -12,8 +12,13 @@ from isoscope.theory import mean_field
 
 
 def _spec(**init):
-    return parse_spec({"network": {"width": 64, "depth": 8, "activation": init.pop("act", "tanh")},
-                       "init": init, "analysis": {"inputs": 2, "seed": 1}})
+    return parse_spec(
+        {
+            "network": {"width": 64, "depth": 8, "activation": init.pop("act", "tanh")},
+            "init": init,
+            "analysis": {"inputs": 2, "seed": 1},
+        }
+    )
 
 
 def test_steady_state_inputs_use_the_length_map_fixed_point():
@@ -21,12 +26,14 @@ def test_steady_state_inputs_use_the_length_map_fixed_point():
     plan, warns = plan_inputs(spec)
     assert plan.kind == "steady-state" and not warns
     q = plan.variance
-    assert abs(mean_field.length_map("tanh", 1.3, 0.1, q) - q) < 1e-12  # V(q*) = q* (Poole et al. 2016)
+    assert (
+        abs(mean_field.length_map("tanh", 1.3, 0.1, q) - q) < 1e-12
+    )  # V(q*) = q* (Poole et al. 2016)
 
 
 def test_marginal_relu_map_does_not_feed_a_constant_input():
     # ReLU at sigma_w^2 = 2, sigma_b = 0: V(q) = q for every q (Poole et al. 2016: V(q) = sigma_w^2 q / 2 for ReLU)
-    spec = _spec(act="relu", weights="gaussian", sigma_w=2 ** 0.5, sigma_b=0.0)
+    spec = _spec(act="relu", weights="gaussian", sigma_w=2**0.5, sigma_b=0.0)
     plan, _ = plan_inputs(spec)
     assert plan.variance == 1.0
     a = analyze(spec)
@@ -35,7 +42,10 @@ def test_marginal_relu_map_does_not_feed_a_constant_input():
 
 
 def test_same_seed_same_numbers_other_seed_other_numbers():
-    a, b = analyze(_spec(weights="gaussian", sigma_w=1.1)), analyze(_spec(weights="gaussian", sigma_w=1.1))
+    a, b = (
+        analyze(_spec(weights="gaussian", sigma_w=1.1)),
+        analyze(_spec(weights="gaussian", sigma_w=1.1)),
+    )
     np.testing.assert_array_equal(a.spectrum.log_s, b.spectrum.log_s)
 
 
@@ -55,28 +65,43 @@ def test_demo_runs_end_to_end(tmp_path, capsys):
     # the ranking and the numbers equal those of separate analyses of the same specs
     from isoscope.report import result_dict
     from isoscope.spec import load_spec
+
     for d in comp["designs"]:
         single = result_dict(analyze(load_spec(out / "specs" / f"{d['name']}.toml")))
-        strip = lambda r: {k: v for k, v in r.items() if k not in ("seconds", "spec", "environment")}
+        strip = lambda r: {
+            k: v for k, v in r.items() if k not in ("seconds", "spec", "environment")
+        }
         assert strip(d["result"]) == strip(json.loads(json.dumps(single)))
     assert (out / "report.html").stat().st_size > 10000 and (out / "specs").is_dir()
     for d in comp["designs"]:
         assert (out / d["name"] / "result.json").is_file()
 
 
-@pytest.mark.parametrize("act,sigma_w,sigma_b,depth,dtype", [
-    ("tanh", 1e-10, 0.0, 50, "float64"),   # s ~ 1e-10^l: J_l ... J_1 underflows past l ~ 30
-    ("tanh", 1e-3, 0.0, 50, "float32"),    # 1e-3^l leaves float32 (1e-45) past l ~ 15
-    ("hard-tanh", 5.0, 10.0, 8, "float64"),  # |h| >> 1 mostly: phi' = 0, products exactly 0
-])
+@pytest.mark.parametrize(
+    "act,sigma_w,sigma_b,depth,dtype",
+    [
+        ("tanh", 1e-10, 0.0, 50, "float64"),  # s ~ 1e-10^l: J_l ... J_1 underflows past l ~ 30
+        ("tanh", 1e-3, 0.0, 50, "float32"),  # 1e-3^l leaves float32 (1e-45) past l ~ 15
+        ("hard-tanh", 5.0, 10.0, 8, "float64"),  # |h| >> 1 mostly: phi' = 0, products exactly 0
+    ],
+)
 def test_profile_of_vanishing_jacobians_finishes(act, sigma_w, sigma_b, depth, dtype):
-    spec = parse_spec({"network": {"width": 16, "depth": depth, "activation": act},
-                       "init": {"weights": "gaussian", "sigma_w": sigma_w, "sigma_b": sigma_b},
-                       "analysis": {"inputs": 2, "seed": 1, "dtype": dtype}})
+    spec = parse_spec(
+        {
+            "network": {"width": 16, "depth": depth, "activation": act},
+            "init": {"weights": "gaussian", "sigma_w": sigma_w, "sigma_b": sigma_b},
+            "analysis": {"inputs": 2, "seed": 1, "dtype": dtype},
+        }
+    )
     a = analyze(spec)
     pr = a.profile
     assert pr is not None and pr.depths[0] == 1 and pr.depths[-1] == depth
-    for row in (pr.measured_log_s_std, pr.measured_log_m1, pr.predicted_log_s_std, pr.predicted_log_m1):
+    for row in (
+        pr.measured_log_s_std,
+        pr.measured_log_m1,
+        pr.predicted_log_s_std,
+        pr.predicted_log_m1,
+    ):
         assert row.shape == pr.depths.shape
         assert not np.any(np.isinf(row))  # a value with no finite answer is NaN, never +-inf
     if act == "tanh":
@@ -87,8 +112,10 @@ def test_profile_of_vanishing_jacobians_finishes(act, sigma_w, sigma_b, depth, d
         # ln m1 fluctuates by O(sqrt(l / N)) around it (allowed: 0.1 l + 1).
         want = 2 * pr.depths * np.log(sigma_w)
         assert np.all(np.isfinite(pr.measured_log_m1))
-        assert np.all(np.abs(pr.measured_log_m1 - want) < 0.1 * pr.depths + 1), pr.measured_log_m1 - want
+        assert np.all(np.abs(pr.measured_log_m1 - want) < 0.1 * pr.depths + 1), (
+            pr.measured_log_m1 - want
+        )
     else:
         # once a partial product is exactly zero every deeper one is: NaN from there on
         gone = np.isnan(pr.measured_log_m1)
-        assert gone.any() and np.all(gone[np.argmax(gone):])
+        assert gone.any() and np.all(gone[np.argmax(gone) :])

@@ -71,15 +71,18 @@ def test_analysis_report_in_chromium(tmp_path):
     check, lines = _check(out, tmp_path / "analysis.png")
     result = json.loads((out / "result.json").read_text())
     assert result["name"] == HOSTILE and check.title == f"isoscope: {HOSTILE}"
-    assert lines[1] == verdict_sentence(result)          # the verdict first
-    assert check.image_count == len(list(out.glob("*.png")))   # every figure written is shown
+    assert lines[1] == verdict_sentence(result)  # the verdict first
+    assert check.image_count == len(list(out.glob("*.png")))  # every figure written is shown
     # the name shows as its characters wherever it appears, the spec's TOML included
     assert check.text.count(HOSTILE) >= 3 and json.dumps(HOSTILE) in check.text
     text = check.text
     for later in ("spec (resolved", "software and settings", "jaxlib", "scipy", "seed"):
         assert later in text
-    assert text.index("measured and predicted spectrum") < text.index("spec (resolved") \
+    assert (
+        text.index("measured and predicted spectrum")
+        < text.index("spec (resolved")
         < text.index("software and settings")
+    )
 
 
 def test_comparison_report_in_chromium(tmp_path):
@@ -104,10 +107,24 @@ def test_demo_report_in_chromium(tmp_path):
 
 def test_recommendation_report_in_chromium(tmp_path):
     out = tmp_path / "rec"
-    assert cli.main(["recommend", "--activation", "tanh", "--depth", "16", "--width", "32",
-                     "--out", str(out)]) == 0
+    assert (
+        cli.main(
+            [
+                "recommend",
+                "--activation",
+                "tanh",
+                "--depth",
+                "16",
+                "--width",
+                "32",
+                "--out",
+                str(out),
+            ]
+        )
+        == 0
+    )
     check, lines = _check(out, tmp_path / "recommend.png")
     data = json.loads((out / "recommendation.json").read_text())
     assert lines[1] == recommend_verdict(data)
-    assert lines[2] == data["advice"]                    # the limits of the advice come next
+    assert lines[2] == data["advice"]  # the limits of the advice come next
     assert "initialization only" in lines[2]

@@ -23,8 +23,11 @@ seed = {seed}
 
 def _write(tmp_path, name, act="tanh", weights="orthogonal", sigma_w=1.05, sigma_b=0.05, seed=3):
     path = tmp_path / f"{name}.toml"
-    path.write_text(SPEC.format(name=name, act=act, weights=weights, sigma_w=sigma_w,
-                                sigma_b=sigma_b, seed=seed))
+    path.write_text(
+        SPEC.format(
+            name=name, act=act, weights=weights, sigma_w=sigma_w, sigma_b=sigma_b, seed=seed
+        )
+    )
     return path
 
 
@@ -40,9 +43,18 @@ def _numbers(result):
 
 
 def test_compare_equals_separate_analyze_runs(tmp_path, capsys):
-    paths = [_write(tmp_path, "ortho"), _write(tmp_path, "gauss", weights="gaussian", seed=5),
-             _write(tmp_path, "relu", act="relu", weights="gaussian", sigma_w=1.4142135623730951,
-                    sigma_b=0.0)]
+    paths = [
+        _write(tmp_path, "ortho"),
+        _write(tmp_path, "gauss", weights="gaussian", seed=5),
+        _write(
+            tmp_path,
+            "relu",
+            act="relu",
+            weights="gaussian",
+            sigma_w=1.4142135623730951,
+            sigma_b=0.0,
+        ),
+    ]
     code, out, err = _run(capsys, "compare", *paths, "--json")
     assert code == 0, err
     comp = json.loads(out)
@@ -78,7 +90,9 @@ def test_compare_bad_input_exits_2_and_writes_nothing(tmp_path, capsys, case):
         argv, words = [good, tmp_path / "nope.toml"], ["nope.toml", "does not exist"]
     elif case == "duplicate":
         other = tmp_path / "other.toml"
-        other.write_text(SPEC.format(name="good", act="tanh", weights="gaussian", sigma_w=1, sigma_b=0, seed=0))
+        other.write_text(
+            SPEC.format(name="good", act="tanh", weights="gaussian", sigma_w=1, sigma_b=0, seed=0)
+        )
         argv, words = [good, other], ["good", "other.toml", "both name"]
     elif case == "same-folder":
         other = _write(tmp_path, "Good")
@@ -87,8 +101,11 @@ def test_compare_bad_input_exits_2_and_writes_nothing(tmp_path, capsys, case):
         argv, words = [good], ["two or more"]
     else:
         bad = tmp_path / "bad.toml"
-        bad.write_text(SPEC.format(name="bad", act="tanh", weights="orthogonal", sigma_w=1, sigma_b=0,
-                                   seed=0).replace("depth = 12", "depth = 0"))
+        bad.write_text(
+            SPEC.format(
+                name="bad", act="tanh", weights="orthogonal", sigma_w=1, sigma_b=0, seed=0
+            ).replace("depth = 12", "depth = 0")
+        )
         argv, words = [good, bad], ["bad.toml", "network.depth"]
     out = tmp_path / "cmp"
     before = sorted(p.name for p in tmp_path.iterdir())

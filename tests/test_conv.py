@@ -8,7 +8,6 @@ orthogonal prediction of m2/m1^2 for the same activation and scales.
 """
 
 import itertools
-import math
 
 import jax
 import jax.numpy as jnp
@@ -32,8 +31,9 @@ def _circulant(kernel: np.ndarray, size: tuple[int, ...]) -> np.ndarray:
     for p in positions:
         for t in itertools.product(*(range(k) for k in taps)):
             q = tuple((pi + ti - ci) % si for pi, ti, ci, si in zip(p, t, centre, size))
-            m[index[p] * c_out:(index[p] + 1) * c_out, index[q] * c_in:(index[q] + 1) * c_in] += \
-                kernel[t].T
+            m[
+                index[p] * c_out : (index[p] + 1) * c_out, index[q] * c_in : (index[q] + 1) * c_in
+            ] += kernel[t].T
     return m
 
 
@@ -51,7 +51,7 @@ def test_delta_orthogonal_linear_stack_is_an_isometry_times_sigma_w_to_the_depth
     params = net.init(jax.random.PRNGKey(2))
     x = jax.random.normal(jax.random.PRNGKey(3), (net.width,), jnp.float64)
     j = np.asarray(jac.dense_jacobian(net, params, x))
-    np.testing.assert_allclose(j.T @ j, 1.1 ** 12 * np.eye(net.width), atol=1e-12)
+    np.testing.assert_allclose(j.T @ j, 1.1**12 * np.eye(net.width), atol=1e-12)
 
 
 def test_conv_layer_statistics_are_the_layers_frobenius_gains():
@@ -62,15 +62,16 @@ def test_conv_layer_statistics_are_the_layers_frobenius_gains():
     stats = jac.layer_statistics(net, params, x)
     slices, h = net.layer_slices(params), x
     for l in range(net.depth):
-        p = jax.tree_util.tree_map(lambda a: a[l], slices)
+        p = jax.tree_util.tree_map(lambda a, l=l: a[l], slices)
         jl = np.asarray(jax.jacfwd(net.layer, argnums=1)(p, h))
-        assert stats.gain[l] == pytest.approx(np.sum(jl ** 2) / net.width, rel=1e-12)
+        assert stats.gain[l] == pytest.approx(np.sum(jl**2) / net.width, rel=1e-12)
         h = net.layer(p, h)
 
 
 def test_deep_route_on_a_conv_stack_agrees_with_the_dense_svd():
-    net = nw.conv_stack(1, 6, 8, 3, 20, "tanh", weights="delta-orthogonal", sigma_w=1.05,
-                        sigma_b=0.1)
+    net = nw.conv_stack(
+        1, 6, 8, 3, 20, "tanh", weights="delta-orthogonal", sigma_w=1.05, sigma_b=0.1
+    )
     params = net.init(jax.random.PRNGKey(6))
     x = 0.3 * jax.random.normal(jax.random.PRNGKey(7), (net.width,), jnp.float64)
     s = np.linalg.svd(np.asarray(jac.dense_jacobian(net, params, x)), compute_uv=False)
@@ -79,17 +80,27 @@ def test_deep_route_on_a_conv_stack_agrees_with_the_dense_svd():
 
 
 def _conv(channels, weights, seed=4):
-    return parse_spec({"name": "c", "network": {"family": "conv1d", "channels": channels,
-                                                 "size": 8, "kernel": 3, "depth": 16,
-                                                 "activation": "tanh"},
-                       "init": {"weights": weights, "sigma_w": 1.1, "sigma_b": 0.3},
-                       "analysis": {"inputs": 6, "seed": seed, "route": "dense"}})
+    return parse_spec(
+        {
+            "name": "c",
+            "network": {
+                "family": "conv1d",
+                "channels": channels,
+                "size": 8,
+                "kernel": 3,
+                "depth": 16,
+                "activation": "tanh",
+            },
+            "init": {"weights": weights, "sigma_w": 1.1, "sigma_b": 0.3},
+            "analysis": {"inputs": 6, "seed": seed, "route": "dense"},
+        }
+    )
 
 
 def _normalised_second_moment(a):
     m1, m2 = a.spectrum.lambda_moment(1), a.spectrum.lambda_moment(2)
     p = a.predicted.moments
-    return m2 / m1 ** 2, p.m2 / p.m1 ** 2
+    return m2 / m1**2, p.m2 / p.m1**2
 
 
 def test_delta_orthogonal_conv_follows_the_plain_orthogonal_law_closer_with_more_channels():

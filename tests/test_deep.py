@@ -25,10 +25,18 @@ def _draw(net, seed=0, scale=1.0):
     return params, x
 
 
-@pytest.mark.parametrize("act,weights,sigma_w,sigma_b", [
-    ("tanh", "orthogonal", 1.05, 0.1), ("tanh", "gaussian", 1.3, 0.05),
-    ("relu", "gaussian", 2 ** 0.5, 0.0), ("erf", "orthogonal", 1.2, 0.2)])
-def test_deep_route_agrees_with_the_dense_svd_where_that_is_accurate(act, weights, sigma_w, sigma_b):
+@pytest.mark.parametrize(
+    "act,weights,sigma_w,sigma_b",
+    [
+        ("tanh", "orthogonal", 1.05, 0.1),
+        ("tanh", "gaussian", 1.3, 0.05),
+        ("relu", "gaussian", 2**0.5, 0.0),
+        ("erf", "orthogonal", 1.2, 0.2),
+    ],
+)
+def test_deep_route_agrees_with_the_dense_svd_where_that_is_accurate(
+    act, weights, sigma_w, sigma_b
+):
     # an SVD in float64 has absolute error about N eps s_max (Golub & Van Loan 2013, sec. 8.6),
     # so ln s_i is accurate to N eps s_max / s_i: compare to 1e-9 wherever that bound is below
     # 1e-10, and require agreement within the bound elsewhere among the nonzero values
@@ -63,7 +71,7 @@ def test_residual_and_partial_depths_agree_with_dense_partial_products():
 def _layers(net, params):
     slices = net.layer_slices(params)
     for l in range(net.depth):
-        yield jax.tree_util.tree_map(lambda a: a[l], slices)
+        yield jax.tree_util.tree_map(lambda a, l=l: a[l], slices)
 
 
 def _mp_log_singular_values(weights, digits):
@@ -84,10 +92,10 @@ def test_deep_route_agrees_with_mpmath_across_hundreds_of_decades(n, depth, seed
     params, x = _draw(net, seed=seed)
     deep = jac.stable_log_singular_values(net, params, x).log_s
     span = (deep[0] - deep[-1]) / math.log(10)
-    digits = int(span) + 60                    # the whole spectrum plus 60 digits to spare
+    digits = int(span) + 60  # the whole spectrum plus 60 digits to spare
     ref = _mp_log_singular_values(np.asarray(params["W"]), digits)
     if n == 6:
-        assert span > 600                      # s spans more than 10^600
+        assert span > 600  # s spans more than 10^600
     np.testing.assert_allclose(deep, ref, rtol=0, atol=1e-8)
 
 
@@ -119,11 +127,11 @@ def test_ten_thousand_layer_chaotic_tanh_is_finite_and_keeps_the_determinant():
     params, x = _draw(net, seed=7)
     out = jac.stable_log_singular_values(net, params, x)
     assert np.all(np.isfinite(out.log_s))
-    assert out.log_s[0] - out.log_s[-1] > 700          # beyond what float64 can hold
+    assert out.log_s[0] - out.log_s[-1] > 700  # beyond what float64 can hold
     _, h = net.trace(params, x)
     h = np.asarray(h)
     _, logdet_w = np.linalg.slogdet(np.asarray(params["W"]))
-    logdet = float(np.sum(logdet_w) + np.sum(np.log1p(-np.tanh(h) ** 2)))
+    logdet = float(np.sum(logdet_w) + np.sum(np.log1p(-(np.tanh(h) ** 2))))
     assert float(np.sum(out.log_s)) == pytest.approx(logdet, rel=1e-8)
     # the per-layer stretch (the Lyapunov view) sums to the same determinant
     assert float(np.sum(out.layer_log_stretch)) == pytest.approx(logdet, rel=1e-8)
@@ -139,7 +147,7 @@ def test_orthogonal_linear_stack_is_exactly_sigma_w_to_the_depth():
 def test_relu_rank_loss_gives_exact_zeros_not_nan():
     # each ReLU layer zeroes the rows of its inactive units; the product's rank is at most the
     # fewest active units, and the remaining values are exact zeros (-inf) or rounding noise
-    net = nw.plain_stack(16, 40, "relu", weights="gaussian", sigma_w=2 ** 0.5)
+    net = nw.plain_stack(16, 40, "relu", weights="gaussian", sigma_w=2**0.5)
     params, x = _draw(net, seed=2)
     out = jac.stable_log_singular_values(net, params, x)
     assert not np.any(np.isnan(out.log_s))

@@ -27,7 +27,9 @@ def test_every_spec_key_and_activation_is_documented():
     spec_md = (ROOT / "docs" / "spec.md").read_text()
     for cls in (NetworkSpec, InitSpec, AnalysisSpec):
         for f in dataclasses.fields(cls):
-            assert re.search(rf"^{f.name} = ", spec_md, re.M), f"key {f.name} missing in docs/spec.md"
+            assert re.search(rf"^{f.name} = ", spec_md, re.M), (
+                f"key {f.name} missing in docs/spec.md"
+            )
     table = [ln for ln in spec_md.splitlines() if ln.startswith("| `")]
     for name in activation_names():
         assert any(ln.startswith(f"| `{name}`") for ln in table), f"activation {name} has no row"

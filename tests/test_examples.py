@@ -103,7 +103,7 @@ def _check_gearbox(r):
     # Equinox's default Linear initialization is uniform on +-1/sqrt(fan_in), variance
     # 1/(3 fan_in): 7 linear maps give a gain of at most (1/3)^7 (tanh' <= 1), far below 1
     assert r["predicted"] is None
-    assert r["measured"]["lambda_moments"]["m1"] < 3.0 ** -7
+    assert r["measured"]["lambda_moments"]["m1"] < 3.0**-7
     assert r["score"]["verdict"] == "vanishing"
 
 
@@ -143,8 +143,13 @@ def test_example_spec_runs_and_supports_its_conclusion(spec, tmp_path, capsys):
 def test_example_script_runs_and_finds_the_edge_of_chaos():
     env = dict(os.environ)
     env["PYTHONPATH"] = os.pathsep.join([str(ROOT / "src"), env.get("PYTHONPATH", "")])
-    run = subprocess.run([sys.executable, str(EXAMPLES / "edge_of_chaos_sweep.py")], env=env,
-                         capture_output=True, text=True, timeout=600)
+    run = subprocess.run(
+        [sys.executable, str(EXAMPLES / "edge_of_chaos_sweep.py")],
+        env=env,
+        capture_output=True,
+        text=True,
+        timeout=600,
+    )
     assert run.returncode == 0, run.stderr
     lines = run.stdout.splitlines()
     rows = [ln.split() for ln in lines if ln.strip()[:4] in ("0.85", "1.00", "1.15")]

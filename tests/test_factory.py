@@ -16,7 +16,9 @@ import jax.numpy as jnp
 import numpy as np
 import pytest
 
-from isoscope import cli, jacobian as jac, network as nw
+from isoscope import cli
+from isoscope import jacobian as jac
+from isoscope import network as nw
 from isoscope.analysis import seed_key
 from isoscope.errors import InputError
 from isoscope.factory import load_factory
@@ -35,9 +37,14 @@ def test_plain_jax_example_gives_the_builtin_spectrum_on_the_same_parameters():
     width = 48
     user = load_factory("networks/hive_listener.py:build", EXAMPLES, width)
     eq = user.equivalent
-    builtin = nw.plain_stack(width, eq["network"]["depth"], eq["network"]["activation"],
-                             weights=eq["init"]["weights"], sigma_w=eq["init"]["sigma_w"],
-                             sigma_b=eq["init"]["sigma_b"])
+    builtin = nw.plain_stack(
+        width,
+        eq["network"]["depth"],
+        eq["network"]["activation"],
+        weights=eq["init"]["weights"],
+        sigma_w=eq["init"]["sigma_w"],
+        sigma_b=eq["init"]["sigma_b"],
+    )
     params = builtin.init(jax.random.PRNGKey(5))
     layers = [{"w": params["W"][l], "b": params["b"][l]} for l in range(builtin.depth)]
     x = 0.3 * jax.random.normal(jax.random.PRNGKey(6), (width,), jnp.float64)
@@ -85,8 +92,10 @@ def _write(folder: Path, body: str, name="net.py") -> Path:
 
 def _spec(folder: Path, factory: str, width=8, extra="") -> Path:
     p = folder / "user.toml"
-    p.write_text(f'name = "user"\n[network]\nfamily = "python"\nfactory = "{factory}"\n'
-                 f"width = {width}\n[analysis]\ninputs = 2\nseed = 1\n{extra}")
+    p.write_text(
+        f'name = "user"\n[network]\nfamily = "python"\nfactory = "{factory}"\n'
+        f"width = {width}\n[analysis]\ninputs = 2\nseed = 1\n{extra}"
+    )
     return p
 
 
@@ -127,8 +136,12 @@ def test_matrix_free_route_on_a_factory_agrees_with_dense(tmp_path, capsys):
     assert cli.main(["analyze", str(dense), "--out", str(tmp_path / "d")]) == 0
     (tmp_path / "mf").mkdir()
     _write(tmp_path / "mf", LINEAR)
-    free = _spec(tmp_path / "mf", "net.py:build", width=64,
-                 extra='route = "matrix-free"\ndtype = "float64"\n')
+    free = _spec(
+        tmp_path / "mf",
+        "net.py:build",
+        width=64,
+        extra='route = "matrix-free"\ndtype = "float64"\n',
+    )
     assert cli.main(["analyze", str(free), "--out", str(tmp_path / "f")]) == 0
     capsys.readouterr()
     rd = json.loads((tmp_path / "d" / "result.json").read_text())["measured"]
@@ -165,15 +178,26 @@ BAD = {
     "misspelled function": ("net.py:biuld", LINEAR, "Did you mean 'build'"),
     "not callable": ("net.py:build", "build = 3\n", "not a function"),
     "wrong return": ("net.py:build", "def build(width):\n    return 1\n", "returned int"),
-    "raises": ("net.py:build", "def build(width):\n    raise RuntimeError('boom')\n",
-               "RuntimeError: boom"),
-    "matrix output": ("net.py:build", LINEAR.replace('return p["w"] @ x', 'return jnp.outer(x, x)'),
-                      "one output vector"),
-    "width mismatch": ("net.py:build", LINEAR.replace("(width, width)", "(width, width + 1)"),
-                       "shape (8,)"),
-    "bad equivalent": ("net.py:build", LINEAR.replace("return init, apply",
-                                                      "return init, apply, {'net': 1}"),
-                       "equivalent design"),
+    "raises": (
+        "net.py:build",
+        "def build(width):\n    raise RuntimeError('boom')\n",
+        "RuntimeError: boom",
+    ),
+    "matrix output": (
+        "net.py:build",
+        LINEAR.replace('return p["w"] @ x', "return jnp.outer(x, x)"),
+        "one output vector",
+    ),
+    "width mismatch": (
+        "net.py:build",
+        LINEAR.replace("(width, width)", "(width, width + 1)"),
+        "shape (8,)",
+    ),
+    "bad equivalent": (
+        "net.py:build",
+        LINEAR.replace("return init, apply", "return init, apply, {'net': 1}"),
+        "equivalent design",
+    ),
 }
 
 

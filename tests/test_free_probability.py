@@ -22,7 +22,9 @@ from isoscope.theory import mean_field as mf
 ACTIVATIONS = ("linear", "relu", "hard-tanh", "tanh", "erf")
 KINDS = ("gaussian", "orthogonal")
 DEPTHS = (1, 2, 8, 100, 1000)
-SIGMA_B_NEAR_CRITICAL = math.sqrt(0.05)   # sigma_b^2 = 0.05, as in docs/theory-mean-field.md check values
+SIGMA_B_NEAR_CRITICAL = math.sqrt(
+    0.05
+)  # sigma_b^2 = 0.05, as in docs/theory-mean-field.md check values
 
 
 def _point(act: str) -> tuple[float, float]:
@@ -41,16 +43,17 @@ def _mu_reference(act: str, q: float, k: int) -> float:
     if act == "linear":
         return 1.0
     if act == "relu":
-        return 0.5                                           # P(h > 0)
+        return 0.5  # P(h > 0)
     if act == "hard-tanh":
-        return special.erf(1.0 / math.sqrt(2.0 * q))         # P(|h| < 1), docs/theory-mean-field.md
+        return special.erf(1.0 / math.sqrt(2.0 * q))  # P(|h| < 1), docs/theory-mean-field.md
     if act == "erf":
         # phi' = (2/sqrt(pi)) e^{-h^2}: E[e^{-2k h^2}] = 1/sqrt(1 + 4 k q) (Gaussian integral)
         return (4.0 / math.pi) ** k / math.sqrt(1.0 + 4.0 * k * q)
     if act == "tanh":
         f = lambda z: (1.0 / math.cosh(math.sqrt(q) * z)) ** (4 * k) * math.exp(-0.5 * z * z)
         return integrate.quad(f, -40.0, 40.0, epsabs=0.0, epsrel=1e-13, limit=200)[0] / math.sqrt(
-            2.0 * math.pi)
+            2.0 * math.pi
+        )
     raise AssertionError(act)
 
 
@@ -58,15 +61,18 @@ def _closed_moments(act: str, kind: str, sigma_w: float, q: float, depth: int):
     """m1, m2, m3 from docs/theory-free-probability.md (t1, t2 in terms of mu_k; *derived* there)."""
     mu1, mu2, mu3 = (_mu_reference(act, q, k) for k in (1, 2, 3))
     if kind == "orthogonal":
-        t1 = mu2 / mu1 ** 2 - 1.0
-        t2 = 1.0 - mu2 / mu1 ** 2 + mu3 / mu1 ** 3 - mu2 ** 2 / mu1 ** 4
+        t1 = mu2 / mu1**2 - 1.0
+        t2 = 1.0 - mu2 / mu1**2 + mu3 / mu1**3 - mu2**2 / mu1**4
     else:
-        t1 = mu2 / mu1 ** 2
-        t2 = mu3 / mu1 ** 3 - mu2 ** 2 / mu1 ** 4
-    m1 = (sigma_w ** 2 * mu1) ** depth
+        t1 = mu2 / mu1**2
+        t2 = mu3 / mu1**3 - mu2**2 / mu1**4
+    m1 = (sigma_w**2 * mu1) ** depth
     L = depth
-    return (m1, m1 ** 2 * (1.0 + L * t1),
-            m1 ** 3 * (1.0 + 3 * L * t1 + L * t2 + L * (3 * L - 1) * t1 ** 2 / 2.0))
+    return (
+        m1,
+        m1**2 * (1.0 + L * t1),
+        m1**3 * (1.0 + 3 * L * t1 + L * t2 + L * (3 * L - 1) * t1**2 / 2.0),
+    )
 
 
 def _total_mass(d: fp.Density) -> float:
@@ -81,6 +87,7 @@ def laws():
 # ----------------------------------------------------------------------------------------
 # The law of d and the moments
 # ----------------------------------------------------------------------------------------
+
 
 @pytest.mark.parametrize("act", ACTIVATIONS)
 def test_derivative_law_moments_match_independent_integrals(laws, act):
@@ -125,13 +132,15 @@ def test_plain_moments_linear_gaussian_are_fuss_catalan(L):
     np.testing.assert_allclose(got.logs, np.log(want), rtol=1e-13, atol=1e-15)
     # sigma_w scales lambda by sigma_w^{2L}: m_k -> sigma_w^{2Lk} m_k
     got = fp.plain_moments(law, "gaussian", 1.3, L)
-    np.testing.assert_allclose(got[:4], [w * 1.3 ** (2 * L * k) for k, w in zip((1, 2, 3, 4), want)],
-                               rtol=1e-12)
+    np.testing.assert_allclose(
+        got[:4], [w * 1.3 ** (2 * L * k) for k, w in zip((1, 2, 3, 4), want)], rtol=1e-12
+    )
 
 
 # ----------------------------------------------------------------------------------------
 # Plain-stack densities: mass, atoms, moments
 # ----------------------------------------------------------------------------------------
+
 
 @pytest.mark.parametrize("L", DEPTHS)
 @pytest.mark.parametrize("kind", KINDS)
@@ -161,25 +170,35 @@ def test_linear_gaussian_density_is_fuss_catalan(L):
         return np.sin((s + 1) * phi) ** (s + 1) / (np.sin(phi) * np.sin(s * phi) ** s)
 
     def rho_of(phi):
-        return np.sin(phi) ** 2 * np.sin(s * phi) ** (s - 1) / (math.pi * np.sin((s + 1) * phi) ** s)
+        return (
+            np.sin(phi) ** 2 * np.sin(s * phi) ** (s - 1) / (math.pi * np.sin((s + 1) * phi) ** s)
+        )
 
     top = math.pi / (s + 1)
     # the parametric formula itself, checked against the Fuss-Catalan moments (mass included)
     for k in range(4):
         # |dx/dphi| = x |(s+1)^2 cot((s+1)phi) - cot(phi) - s^2 cot(s phi)|
-        def f(phi):
-            dlog = ((s + 1) ** 2 / math.tan((s + 1) * phi) - 1 / math.tan(phi)
-                    - s ** 2 / math.tan(s * phi))
+        def f(phi, k=k):
+            dlog = (
+                (s + 1) ** 2 / math.tan((s + 1) * phi)
+                - 1 / math.tan(phi)
+                - s**2 / math.tan(s * phi)
+            )
             return x_of(phi) ** (k + 1) * rho_of(phi) * abs(dlog)
+
         val = integrate.quad(f, 0.0, top, limit=400, epsrel=1e-11)[0]
         assert val == pytest.approx(special.comb((s + 1) * k, k) / (s * k + 1), rel=1e-8)
-    edge = (s + 1) ** (s + 1) / s ** s                       # support [0, (L+1)^{L+1}/L^L]
+    edge = (s + 1) ** (s + 1) / s**s  # support [0, (L+1)^{L+1}/L^L]
     d = fp.plain_density(fp.derivative_law("linear", 1.0), "gaussian", 1.0, L)
     assert d.support[1] == pytest.approx(edge, rel=1e-10)
     inside = (d.x > 1e-6 * edge) & (d.x < (1 - 1e-6) * edge)
     assert inside.sum() > 200
-    phis = [optimize.brentq(lambda p: x_of(p) - lam, 1e-14, top - 1e-14, xtol=1e-15, rtol=1e-15)
-            for lam in d.x[inside]]
+    phis = [
+        optimize.brentq(
+            lambda p, lam=lam: x_of(p) - lam, 1e-14, top - 1e-14, xtol=1e-15, rtol=1e-15
+        )
+        for lam in d.x[inside]
+    ]
     np.testing.assert_allclose(d.rho[inside], rho_of(np.array(phis)), rtol=1e-4)
 
 
@@ -192,8 +211,9 @@ def test_relu_orthogonal_depth_two_is_arcsine():
     # an inverse-square-root density by about 1e-9/distance there: measured 5.5e-6 at most)
     bulk = (d.x > 1e-6) & (d.x < 4 - 1e-6)
     assert bulk.sum() > 250
-    np.testing.assert_allclose(d.rho[bulk], 1 / (2 * math.pi * np.sqrt(d.x[bulk] * (4 - d.x[bulk]))),
-                               rtol=2e-5)
+    np.testing.assert_allclose(
+        d.rho[bulk], 1 / (2 * math.pi * np.sqrt(d.x[bulk] * (4 - d.x[bulk]))), rtol=2e-5
+    )
 
 
 def _bernoulli_edge(kind: str, p: float, sigma_w: float, L: int) -> float:
@@ -205,8 +225,9 @@ def _bernoulli_edge(kind: str, p: float, sigma_w: float, L: int) -> float:
         lz = lambda m: math.log(s2L) + L * math.log(m + p) - math.log(m) - (L - 1) * math.log1p(m)
     else:
         lz = lambda m: math.log(s2L) + math.log1p(m) + L * math.log(m + p) - math.log(m)
-    r = optimize.minimize_scalar(lambda t: lz(math.exp(t)), bounds=(-30, 10), method="bounded",
-                                 options={"xatol": 1e-12})
+    r = optimize.minimize_scalar(
+        lambda t: lz(math.exp(t)), bounds=(-30, 10), method="bounded", options={"xatol": 1e-12}
+    )
     return math.exp(r.fun)
 
 
@@ -215,10 +236,13 @@ def test_relu_orthogonal_edges(L, edge):
     # docs/theory-free-probability.md check values (ReLU orthogonal largest lambda), and the real inverse map
     d = fp.plain_density(fp.derivative_law("relu", 1.0), "orthogonal", math.sqrt(2.0), L)
     assert d.support[1] == pytest.approx(edge, abs=6e-4)
-    assert d.support[1] == pytest.approx(_bernoulli_edge("orthogonal", 0.5, math.sqrt(2), L),
-                                         rel=1e-8)
+    assert d.support[1] == pytest.approx(
+        _bernoulli_edge("orthogonal", 0.5, math.sqrt(2), L), rel=1e-8
+    )
     g = fp.plain_density(fp.derivative_law("relu", 1.0), "gaussian", math.sqrt(2.0), L)
-    assert g.support[1] == pytest.approx(_bernoulli_edge("gaussian", 0.5, math.sqrt(2), L), rel=1e-8)
+    assert g.support[1] == pytest.approx(
+        _bernoulli_edge("gaussian", 0.5, math.sqrt(2), L), rel=1e-8
+    )
 
 
 def test_tanh_check_values_at_q_half():
@@ -229,7 +253,8 @@ def test_tanh_check_values_at_q_half():
     assert sw2 == pytest.approx(1.687975, abs=1e-6)
     assert law.moment(2) / law.moment(1) ** 2 - 1 == pytest.approx(0.299244, abs=1e-6)
     assert mf.length_map("tanh", math.sqrt(sw2), math.sqrt(0.0380412), 0.5) == pytest.approx(
-        0.5, abs=1e-6)
+        0.5, abs=1e-6
+    )
     d = fp.plain_density(law, "orthogonal", math.sqrt(sw2), 8)
     assert d.support[1] == pytest.approx(7.493, abs=1e-3)
 
@@ -266,7 +291,7 @@ def test_near_isometric_tanh_orthogonal_depth_1000(sigma_b):
     d = fp.plain_density(law, "orthogonal", cp.sigma_w, L)
     m1, m2, _ = _closed_moments("tanh", "orthogonal", cp.sigma_w, cp.q_star, L)
     c = L * (_mu_reference("tanh", cp.q_star, 2) / _mu_reference("tanh", cp.q_star, 1) ** 2 - 1)
-    assert m2 / m1 ** 2 - 1 == pytest.approx(8 * L * cp.q_star ** 2, rel=0.2)
+    assert m2 / m1**2 - 1 == pytest.approx(8 * L * cp.q_star**2, rel=0.2)
     assert _total_mass(d) == pytest.approx(1.0, abs=1e-3)
     assert d.moment(1) == pytest.approx(m1, rel=1e-3)
     assert d.moment(2) == pytest.approx(m2, rel=1e-3)
@@ -284,10 +309,10 @@ def test_orthogonal_smooth_single_layer_is_pushforward():
     # direct scipy integral of the Gaussian over {h: sigma_w^2 sech^4(sqrt(q) z) <= t}.
     sw, q = _point("tanh")
     d = fp.plain_density(fp.derivative_law("tanh", q), "orthogonal", sw, 1)
-    assert d.support[1] == pytest.approx(sw ** 2, rel=1e-12)      # max of d is phi'(0)^2 = 1
-    for t in (0.05, 0.5, 1.0, 1.5, 0.999 * sw ** 2):
+    assert d.support[1] == pytest.approx(sw**2, rel=1e-12)  # max of d is phi'(0)^2 = 1
+    for t in (0.05, 0.5, 1.0, 1.5, 0.999 * sw**2):
         # sech^4(h) <= t / sw^2  <=>  |h| >= acosh((sw^2/t)^{1/4})
-        h0 = math.acosh((sw ** 2 / t) ** 0.25)
+        h0 = math.acosh((sw**2 / t) ** 0.25)
         want = special.erfc(h0 / math.sqrt(2 * q))
         assert d.cdf(t) == pytest.approx(want, abs=1e-3)
 
@@ -295,6 +320,7 @@ def test_orthogonal_smooth_single_layer_is_pushforward():
 # ----------------------------------------------------------------------------------------
 # Residual law and the large-depth orthogonal law
 # ----------------------------------------------------------------------------------------
+
 
 def _lagrange_mp(k: int, log_inv_s) -> float:
     """m_k = (1/k)[z^{k-1}] ((1+z)/S(z))^k (P17 eq. 18) by mpmath Taylor coefficients."""
@@ -308,28 +334,35 @@ def test_residual_moments(tau):
     got = fp.residual_moments(tau)
     assert got.m1 == pytest.approx(math.exp(tau), rel=1e-14)
     assert got.m2 == pytest.approx(math.exp(2 * tau) * (1 + 2 * tau), rel=1e-14)
-    log_inv_s = lambda z: tau * (1 + 2 * z)                  # 1/S = exp(tau (1 + 2 z))
-    np.testing.assert_allclose([got.m3, got.m4], [_lagrange_mp(3, log_inv_s),
-                                                 _lagrange_mp(4, log_inv_s)], rtol=1e-12)
+    log_inv_s = lambda z: tau * (1 + 2 * z)  # 1/S = exp(tau (1 + 2 z))
+    np.testing.assert_allclose(
+        [got.m3, got.m4], [_lagrange_mp(3, log_inv_s), _lagrange_mp(4, log_inv_s)], rtol=1e-12
+    )
 
 
 def _exp_law_edges_scipy(a: float, c: float) -> tuple[float, float]:
     """Edges of S(z) = exp(a - c z): extrema of z(M) = (1 + M) e^{cM - a}/M, by scipy alone
     (lambda_+ = min over M > 0, lambda_- = max over M < -1)."""
     lz = lambda m: math.log(abs(1 + m)) + c * m - a - math.log(abs(m))
-    hi = optimize.minimize_scalar(lambda t: lz(math.exp(t)), bounds=(-40, 20), method="bounded",
-                                  options={"xatol": 1e-12}).fun
-    lo = -optimize.minimize_scalar(lambda t: -lz(-1 - math.exp(t)), bounds=(-40, 20),
-                                   method="bounded", options={"xatol": 1e-12}).fun
+    hi = optimize.minimize_scalar(
+        lambda t: lz(math.exp(t)), bounds=(-40, 20), method="bounded", options={"xatol": 1e-12}
+    ).fun
+    lo = -optimize.minimize_scalar(
+        lambda t: -lz(-1 - math.exp(t)),
+        bounds=(-40, 20),
+        method="bounded",
+        options={"xatol": 1e-12},
+    ).fun
     return math.exp(lo), math.exp(hi)
 
 
 @pytest.mark.parametrize("tau", [1e-3, 0.1, 1.0, 5.0])
 def test_residual_edges(tau):
     lo, hi = fp.residual_edges(tau)
-    assert lo * hi == pytest.approx(1.0, rel=1e-12)          # docs/theory-free-probability.md sec. 7
-    for p, edge in zip(((-1 + math.sqrt(1 + 2 / tau)) / 2, (-1 - math.sqrt(1 + 2 / tau)) / 2),
-                       (hi, lo)):
+    assert lo * hi == pytest.approx(1.0, rel=1e-12)  # docs/theory-free-probability.md sec. 7
+    for p, edge in zip(
+        ((-1 + math.sqrt(1 + 2 / tau)) / 2, (-1 - math.sqrt(1 + 2 / tau)) / 2), (hi, lo)
+    ):
         assert edge == pytest.approx((1 + p) / p * math.exp(tau * (1 + 2 * p)), rel=1e-12)
     np.testing.assert_allclose((lo, hi), _exp_law_edges_scipy(-tau, 2 * tau), rtol=1e-9)
     assert fp.residual_edges(0.0) == (1.0, 1.0)
@@ -352,10 +385,12 @@ def test_residual_tau():
     # docs/theory-free-probability.md sec. 7: ReLU with sigma_b = 0: tau = L alpha^2 sigma_w^2 / 2 exactly (any q^l);
     # linear: L alpha^2 sigma_w^2; tanh: the sum of sigma_w^2 alpha^2 E[sech^4] along q^l
     qs = np.geomspace(0.3, 40.0, 50)
-    assert fp.residual_tau("relu", 0.2, qs, alpha=0.7) == pytest.approx(50 * 0.49 * 0.04 / 2,
-                                                                         rel=1e-12)
-    assert fp.residual_tau("linear", 0.2, qs, alpha=0.7) == pytest.approx(50 * 0.49 * 0.04,
-                                                                           rel=1e-12)
+    assert fp.residual_tau("relu", 0.2, qs, alpha=0.7) == pytest.approx(
+        50 * 0.49 * 0.04 / 2, rel=1e-12
+    )
+    assert fp.residual_tau("linear", 0.2, qs, alpha=0.7) == pytest.approx(
+        50 * 0.49 * 0.04, rel=1e-12
+    )
     want = sum(0.49 * 0.04 * _mu_reference("tanh", q, 1) for q in qs[:8])
     assert fp.residual_tau("tanh", 0.2, qs[:8], alpha=0.7) == pytest.approx(want, rel=1e-11)
     want = 0.04 * sum(_mu_reference("hard-tanh", q, 1) for q in qs[:8])
@@ -366,7 +401,7 @@ def test_residual_tau():
 def test_plain_limit_edges(c):
     lo, hi = fp.plain_limit_edges(c)
     np.testing.assert_allclose((lo, hi), _exp_law_edges_scipy(0.0, c), rtol=1e-9)
-    if c < 0.05:   # small c: semicircle of variance c around 1 (m2 - m1^2 = c)
+    if c < 0.05:  # small c: semicircle of variance c around 1 (m2 - m1^2 = c)
         assert hi - lo == pytest.approx(4 * math.sqrt(c), rel=2 * math.sqrt(c))
     # the residual law is the same family scaled by e^tau: S = e^{-tau} exp(-2 tau z)
     rlo, rhi = fp.residual_edges(c / 2)
@@ -377,6 +412,7 @@ def test_plain_limit_edges(c):
 # ----------------------------------------------------------------------------------------
 # Bad input
 # ----------------------------------------------------------------------------------------
+
 
 def test_errors_name_what_was_received():
     law = fp.derivative_law("tanh", 0.5)

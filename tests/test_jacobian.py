@@ -22,7 +22,9 @@ def test_linear_stack_jacobian_is_product_of_weights():
     p = net.init(jax.random.PRNGKey(0))
     want = np.eye(30)
     for w in np.asarray(p["W"]):
-        want = w @ want  # J = W^L ... W^1 (Pennington, Schoenholz & Ganguli 2017, sec. 2, with D = I)
+        want = (
+            w @ want
+        )  # J = W^L ... W^1 (Pennington, Schoenholz & Ganguli 2017, sec. 2, with D = I)
     np.testing.assert_allclose(jac.dense_jacobian(net, p, _x(30)), want, rtol=1e-12, atol=1e-14)
 
 
@@ -37,15 +39,19 @@ def test_jacfwd_agrees_with_jacrev_layer_product_and_finite_differences(family, 
     assert finite.all()
     np.testing.assert_allclose(j, prod, rtol=1e-11, atol=1e-13)
     eps = 1e-6  # central differences: truncation O(eps^2), rounding O(1e-16/eps)
-    fd = np.stack([(net.apply(p, x + eps * e) - net.apply(p, x - eps * e)) / (2 * eps)
-                   for e in np.eye(24)], axis=1)
+    fd = np.stack(
+        [(net.apply(p, x + eps * e) - net.apply(p, x - eps * e)) / (2 * eps) for e in np.eye(24)],
+        axis=1,
+    )
     np.testing.assert_allclose(j, fd, rtol=1e-6, atol=1e-8)
 
 
 def test_orthogonal_linear_stack_is_exact_isometry():
     net = plain_stack(128, 50, "linear", weights="orthogonal", sigma_w=1.0)
-    s = np.linalg.svd(np.asarray(jac.dense_jacobian(net, net.init(jax.random.PRNGKey(3)), _x(128))),
-                      compute_uv=False)
+    s = np.linalg.svd(
+        np.asarray(jac.dense_jacobian(net, net.init(jax.random.PRNGKey(3)), _x(128))),
+        compute_uv=False,
+    )
     np.testing.assert_allclose(s, 1.0, atol=1e-10)
 
 
@@ -66,7 +72,7 @@ def test_linear_gaussian_moments_are_fuss_catalan(depth):
         # Fuss-Catalan numbers binom((L+1)k, k)/(Lk+1): moments of a product of L Ginibre
         # matrices (Penson & Zyczkowski 2011, eq. 3; L = 2: 1, 3, 12).
         want = binom((depth + 1) * k, k) / (depth * k + 1)
-        per_draw = (lam ** k).mean(axis=1)
+        per_draw = (lam**k).mean(axis=1)
         se = per_draw.std(ddof=1) / math.sqrt(draws)
         # finite-N correction is O(k^2 L / N) relative (L = 1, k = 2: exactly 2 + 1/N for real
         # Wishart matrices, Muirhead 1982 Thm 3.3.15, from memory), plus 4 standard errors
@@ -77,8 +83,14 @@ def test_linear_gaussian_moments_are_fuss_catalan(depth):
 def test_single_gaussian_layer_follows_marchenko_pastur():
     lam = np.sort(_linear_gaussian_lambdas(400, 1, 10).ravel())
     # Marchenko-Pastur, ratio 1: rho(x) = sqrt((4 - x) x) / (2 pi x) on [0, 4] (Marchenko & Pastur 1967)
-    cdf = np.array([integrate.quad(lambda t: math.sqrt(max((4 - t) * t, 0)) / (2 * math.pi * t), 0, min(x, 4))[0]
-                    for x in lam[::20]])
+    cdf = np.array(
+        [
+            integrate.quad(
+                lambda t: math.sqrt(max((4 - t) * t, 0)) / (2 * math.pi * t), 0, min(x, 4)
+            )[0]
+            for x in lam[::20]
+        ]
+    )
     emp = (np.arange(lam.size)[::20] + 0.5) / lam.size
     assert np.max(np.abs(cdf - emp)) < 0.02  # finite-N edge effects are O(N^-2/3) ~ 0.02 at most
 
@@ -98,8 +110,10 @@ def test_qr_accumulation_matches_newman_lyapunov_exponents():
 
 def test_no_recompilation_for_new_parameters_or_sigmas():
     x = _x(32)
-    nets = [plain_stack(32, 12, "tanh", weights=w, sigma_w=s, sigma_b=b)
-            for w, s, b in (("orthogonal", 1.0, 0.0), ("gaussian", 1.5, 0.1), ("uniform", 0.7, 0.3))]
+    nets = [
+        plain_stack(32, 12, "tanh", weights=w, sigma_w=s, sigma_b=b)
+        for w, s, b in (("orthogonal", 1.0, 0.0), ("gaussian", 1.5, 0.1), ("uniform", 0.7, 0.3))
+    ]
     jac.dense_jacobian(nets[0], nets[0].init(jax.random.PRNGKey(0)), x)
     before = jac.trace_count()
     for k, net in enumerate(nets):
@@ -140,16 +154,19 @@ def test_profiled_pass_equals_jacfwd_jacrev_and_finite_differences(family, act, 
         assert np.abs(j - np.asarray(other, dtype=np.float64)).max() <= 100 * eps * scale
     if dtype == jnp.float64:
         h = 1e-6  # central differences: truncation O(h^2), rounding O(1e-16/h)
-        fd = np.stack([(net.apply(p, x + h * e) - net.apply(p, x - h * e)) / (2 * h)
-                       for e in np.eye(24)], axis=1)
+        fd = np.stack(
+            [(net.apply(p, x + h * e) - net.apply(p, x - h * e)) / (2 * h) for e in np.eye(24)],
+            axis=1,
+        )
         np.testing.assert_allclose(j, fd, rtol=1e-6, atol=1e-8)
     # kept partial products: against numpy's SVD of the Jacobian of the first l layers alone
     part = jac.partial_spectra(pj)
     for row, d in enumerate(part.depths):
         short = build(24, int(d), act, weights="orthogonal", sigma_w=1.3, sigma_b=0.2)
         pd = {"W": p["W"][:d], "b": p["b"][:d], "alpha": p["alpha"]}
-        want = np.linalg.svd(np.asarray(jac.dense_jacobian(short, pd, x), dtype=np.float64),
-                             compute_uv=False)
+        want = np.linalg.svd(
+            np.asarray(jac.dense_jacobian(short, pd, x), dtype=np.float64), compute_uv=False
+        )
         got = np.exp(part.log_s[row])
         assert np.abs(got - want).max() <= 100 * eps * want[0], (d, np.abs(got - want).max())
     np.testing.assert_array_equal(part.singular_values(-1).dtype, np.dtype(dtype))

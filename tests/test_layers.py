@@ -24,18 +24,44 @@ from isoscope.theory.predict import predict
 def _mean_sech4(q):
     """``E[tanh'(sqrt(q) z)^2] = E[sech^4(sqrt(q) z)]`` by scipy quad over |z| <= 12 (the normal
     weight beyond is below 1e-31)."""
-    return integrate.quad(lambda z: math.exp(-z * z / 2 - 4 * math.log(math.cosh(math.sqrt(q) * z)))
-                          / math.sqrt(2 * math.pi), -12.0, 12.0, epsabs=1e-14, limit=200)[0]
+    return integrate.quad(
+        lambda z: (
+            math.exp(-z * z / 2 - 4 * math.log(math.cosh(math.sqrt(q) * z)))
+            / math.sqrt(2 * math.pi)
+        ),
+        -12.0,
+        12.0,
+        epsabs=1e-14,
+        limit=200,
+    )[0]
 
 
-def _profile(width, depth, act, weights, sigma_w, sigma_b=0.0, *, family="plain", alpha=None,
-             inputs=4, seed=0, **analysis):
+def _profile(
+    width,
+    depth,
+    act,
+    weights,
+    sigma_w,
+    sigma_b=0.0,
+    *,
+    family="plain",
+    alpha=None,
+    inputs=4,
+    seed=0,
+    **analysis,
+):
     net = {"width": width, "depth": depth, "activation": act, "family": family}
     if alpha is not None:
         net["alpha"] = alpha
-    a = analyze(parse_spec({"network": net,
-                            "init": {"weights": weights, "sigma_w": sigma_w, "sigma_b": sigma_b},
-                            "analysis": {"inputs": inputs, "seed": seed, **analysis}}))
+    a = analyze(
+        parse_spec(
+            {
+                "network": net,
+                "init": {"weights": weights, "sigma_w": sigma_w, "sigma_b": sigma_b},
+                "analysis": {"inputs": inputs, "seed": seed, **analysis},
+            }
+        )
+    )
     assert a.profile is not None
     return a, a.profile
 
@@ -46,9 +72,11 @@ def test_layer_statistics_equal_the_frobenius_norm_of_each_layers_jacobian():
     # layer's own pre-activation: the closed forms D W and I + alpha D W are exact (to rounding)
     import jax
     import jax.numpy as jnp
-    for net in (plain_stack(24, 4, "tanh", weights="gaussian", sigma_w=1.4, sigma_b=0.3),
-                residual_stack(24, 4, "gelu", weights="orthogonal", sigma_w=0.8, sigma_b=0.2,
-                               alpha=0.6)):
+
+    for net in (
+        plain_stack(24, 4, "tanh", weights="gaussian", sigma_w=1.4, sigma_b=0.3),
+        residual_stack(24, 4, "gelu", weights="orthogonal", sigma_w=0.8, sigma_b=0.2, alpha=0.6),
+    ):
         params = net.init(jax.random.PRNGKey(3))
         x = jax.random.normal(jax.random.PRNGKey(4), (24,))
         got = jac.layer_statistics(net, params, x)
@@ -75,9 +103,9 @@ def test_gaussian_linear_layers_have_gain_sigma_w_squared_in_expectation():
     # (exact).  Mean over L layers and D draws: 4 standard errors.
     n, depth, draws, sw = 96, 20, 3, 1.3
     a, pr = _profile(n, depth, "linear", "gaussian", sw, inputs=draws)
-    se = math.sqrt(2.0) * sw ** 2 / n / math.sqrt(depth * draws)
-    assert abs(pr.measured_layer_gain.mean() - sw ** 2) < 4 * se
-    assert np.max(np.abs(pr.predicted_layer_gain - sw ** 2)) < 1e-12
+    se = math.sqrt(2.0) * sw**2 / n / math.sqrt(depth * draws)
+    assert abs(pr.measured_layer_gain.mean() - sw**2) < 4 * se
+    assert np.max(np.abs(pr.predicted_layer_gain - sw**2)) < 1e-12
 
 
 def test_relu_at_sigma_w_squared_two_has_unit_gain_per_layer():
@@ -98,15 +126,16 @@ def test_residual_linear_branch_gain_and_q_growth():
     # q^l: E|x + alpha W x|^2 = (1 + alpha^2 sigma_w^2)|x|^2, so q^l = sigma_w^2 q0 (1 +
     # alpha^2 sigma_w^2)^(l-1) with q0 = input_variance = 1 (derived in-house, exact).
     n, depth, draws, sw, alpha = 128, 24, 3, 1.0, 0.4
-    a, pr = _profile(n, depth, "linear", "gaussian", sw, family="residual", alpha=alpha,
-                     inputs=draws)
-    c = alpha ** 2 * sw ** 2
+    a, pr = _profile(
+        n, depth, "linear", "gaussian", sw, family="residual", alpha=alpha, inputs=draws
+    )
+    c = alpha**2 * sw**2
     se = math.sqrt(4 * c + 2 * c * c) / n / math.sqrt(depth * draws)
     assert abs(pr.measured_layer_gain.mean() - (1 + c)) < 4 * se
     assert np.max(np.abs(pr.predicted_layer_gain - (1 + c))) < 1e-12
     # the branch strengths s_l = gain - 1 sum to the residual law's tau (Tarnowski et al. 2019)
     assert np.sum(pr.predicted_layer_gain - 1.0) == pytest.approx(a.predicted.tau, rel=1e-12)
-    want_q = sw ** 2 * (1 + c) ** np.arange(depth)
+    want_q = sw**2 * (1 + c) ** np.arange(depth)
     assert np.max(np.abs(pr.predicted_q / want_q - 1)) < 1e-12
 
 
@@ -123,7 +152,7 @@ def test_measured_q_follows_the_mean_field_trajectory_at_width_512(case):
     if case.startswith("plain"):
         # Gaussian inputs of variance 1: q^1 = 1.5^2 + 0.3^2 = 2.34 relaxes to q* = 0.96
         a, pr = _profile(n, 16, "tanh", "gaussian", 1.5, 0.3, input="gaussian")
-        assert pr.predicted_q[0] == pytest.approx(1.5 ** 2 + 0.3 ** 2, rel=1e-12)
+        assert pr.predicted_q[0] == pytest.approx(1.5**2 + 0.3**2, rel=1e-12)
         assert pr.predicted_q[-1] == pytest.approx(a.predicted.mean_field.q_star, rel=1e-3)
     else:
         a, pr = _profile(n, 24, "tanh", "gaussian", 1.0, family="residual", alpha=0.25)
@@ -140,7 +169,7 @@ def test_chaotic_tanh_layer_gain_is_chi_1_at_the_fixed_point():
     want = 4.0 * _mean_sech4(q)
     assert np.max(np.abs(pr.predicted_layer_gain / want - 1)) < 1e-9
     assert np.max(np.abs(pr.predicted_q / q - 1)) < 1e-9
-    assert want > 1.2   # chaotic: every layer stretches
+    assert want > 1.2  # chaotic: every layer stretches
 
 
 def test_derivative_means_match_quadrature_and_the_limit_at_zero():
@@ -159,10 +188,12 @@ def test_predicted_isometry_of_marchenko_pastur_and_of_an_atom():
     # rho(lambda) = sqrt(lambda (4 - lambda)) / (2 pi lambda) on [0, 4] (Marchenko & Pastur 1967);
     # E[min(lambda, 1/lambda)] by scipy quad
     rho = lambda x: math.sqrt(x * (4 - x)) / (2 * math.pi * x)
-    want = (integrate.quad(lambda x: x * rho(x), 0, 1, epsabs=1e-13)[0]
-            + integrate.quad(lambda x: rho(x) / x, 1, 4, epsabs=1e-13)[0])
+    want = (
+        integrate.quad(lambda x: x * rho(x), 0, 1, epsabs=1e-13)[0]
+        + integrate.quad(lambda x: rho(x) / x, 1, 4, epsabs=1e-13)[0]
+    )
     got = predicted_isometry(predict("linear", "gaussian", 1.0, 0.0, 1).density)
-    assert got == pytest.approx(want, abs=2e-3)     # the density's grid (400 points)
+    assert got == pytest.approx(want, abs=2e-3)  # the density's grid (400 points)
     # an orthogonal linear stack: the point mass at lambda = sigma_w^(2L) = 1
     assert predicted_isometry(predict("linear", "orthogonal", 1.0, 0.0, 7).density) == 1.0
 
@@ -170,7 +201,7 @@ def test_predicted_isometry_of_marchenko_pastur_and_of_an_atom():
 def test_isometric_until_is_the_last_depth_of_the_leading_isometric_run():
     d = np.array([1, 2, 4, 8])
     assert isometric_until(d, [0.9, 0.85, 0.8, 0.95]) == 8
-    assert isometric_until(d, [0.9, 0.79, 0.95, 0.95]) == 1   # the run stops at the first failure
+    assert isometric_until(d, [0.9, 0.79, 0.95, 0.95]) == 1  # the run stops at the first failure
     assert isometric_until(d, [0.7, 0.9, 0.9, 0.9]) is None
     assert isometric_until(d, [0.9, math.nan, 0.9, 0.9]) == 1  # no finite score is not isometric
     assert ISOMETRIC_SCORE == 0.8
@@ -207,11 +238,24 @@ def test_measured_isometry_of_one_gaussian_layer_is_the_marchenko_pastur_value()
 def test_result_json_profile_carries_the_per_layer_arrays():
     a, pr = _profile(32, 12, "tanh", "orthogonal", 1.05, 0.02, inputs=2)
     prof = report.result_dict(a)["profile"]
-    for key in ("depths", "measured_log_s_std", "predicted_log_s_std", "measured_log_m1",
-                "predicted_log_m1", "measured_isometry", "predicted_isometry"):
+    for key in (
+        "depths",
+        "measured_log_s_std",
+        "predicted_log_s_std",
+        "measured_log_m1",
+        "predicted_log_m1",
+        "measured_isometry",
+        "predicted_isometry",
+    ):
         assert len(prof[key]) == len(pr.depths), key
-    for key in ("layers", "measured_q", "measured_q_draw_std", "predicted_q",
-                "measured_layer_gain", "predicted_layer_gain"):
+    for key in (
+        "layers",
+        "measured_q",
+        "measured_q_draw_std",
+        "predicted_q",
+        "measured_layer_gain",
+        "predicted_layer_gain",
+    ):
         assert len(prof[key]) == 12, key
     assert prof["layers"] == list(range(1, 13))
     for key in ("isometric_until", "predicted_isometric_until"):

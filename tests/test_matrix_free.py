@@ -16,7 +16,9 @@ import jax.numpy as jnp
 import numpy as np
 import pytest
 
-from isoscope import cli, jacobian as jac, matrix_free, network as nw
+from isoscope import cli, matrix_free
+from isoscope import jacobian as jac
+from isoscope import network as nw
 
 
 def _draw(net, seed=0, scale=0.4):
@@ -36,7 +38,7 @@ def test_lanczos_rule_is_exact_per_probe_for_low_moments():
     nodes, weights = np.asarray(rule.nodes), np.asarray(rule.weights)
     for p in range(3):
         q = z[p] / np.linalg.norm(z[p])
-        for k in range(1, 8):         # degree <= 2 * 12 - 1
+        for k in range(1, 8):  # degree <= 2 * 12 - 1
             exact = q @ np.linalg.matrix_power(a, k) @ q
             assert np.sum(weights[p] * nodes[p] ** k) == pytest.approx(exact, rel=1e-9)
 
@@ -46,8 +48,9 @@ def test_full_krylov_space_gives_the_extreme_eigenvalues_with_residuals():
     params, x = _draw(net, seed=2)
     j = np.asarray(jac.dense_jacobian(net, params, x))
     lam = np.linalg.eigvalsh(j.T @ j)
-    rule = matrix_free.lanczos_quadrature(net, params, x, jax.random.PRNGKey(1), probes=64,
-                                          steps=30)
+    rule = matrix_free.lanczos_quadrature(
+        net, params, x, jax.random.PRNGKey(1), probes=64, steps=30
+    )
     summary = matrix_free.quadrature_summary(rule)
     assert summary["lambda_max"] == pytest.approx(lam[-1], rel=1e-9)
     assert summary["lambda_min"] == pytest.approx(lam[0], rel=1e-6)
@@ -60,12 +63,13 @@ def test_full_krylov_space_gives_the_extreme_eigenvalues_with_residuals():
 def test_few_steps_still_bound_the_top_eigenvalue_from_below():
     # Ritz values interlace: the largest is at most lambda_max (Parlett 1998, ch. 10), and
     # its residual bound says how far it can be from an eigenvalue
-    net = nw.plain_stack(200, 4, "relu", weights="gaussian", sigma_w=2 ** 0.5)
+    net = nw.plain_stack(200, 4, "relu", weights="gaussian", sigma_w=2**0.5)
     params, x = _draw(net, seed=5)
     j = np.asarray(jac.dense_jacobian(net, params, x))
     top = np.linalg.eigvalsh(j.T @ j)[-1]
     s = matrix_free.quadrature_summary(
-        matrix_free.lanczos_quadrature(net, params, x, jax.random.PRNGKey(3), probes=4, steps=40))
+        matrix_free.lanczos_quadrature(net, params, x, jax.random.PRNGKey(3), probes=4, steps=40)
+    )
     assert s["lambda_max"] <= top * (1 + 1e-10)
     assert top - s["lambda_max"] <= s["lambda_max_residual"] + 1e-9 * top
 
@@ -103,10 +107,13 @@ dtype = "float64"
     return path
 
 
-@pytest.mark.parametrize("act,weights,sigma_w,sigma_b,depth", [
-    ("tanh", "orthogonal", 1.05, 0.05, 8), ("relu", "gaussian", 1.4142135623730951, 0.0, 4)])
+@pytest.mark.parametrize(
+    "act,weights,sigma_w,sigma_b,depth",
+    [("tanh", "orthogonal", 1.05, 0.05, 8), ("relu", "gaussian", 1.4142135623730951, 0.0, 4)],
+)
 def test_wide_matrix_free_matches_dense_moments_and_the_predicted_density(
-        act, weights, sigma_w, sigma_b, depth, tmp_path, capsys):
+    act, weights, sigma_w, sigma_b, depth, tmp_path, capsys
+):
     out = {}
     for route in ("dense", "matrix-free"):
         spec = _spec(tmp_path / f"{route}.toml", route, act, weights, sigma_w, sigma_b, depth)

@@ -33,6 +33,7 @@ CS = (-0.6, 0.0, 0.3, 0.9, 0.999, 0.99999)
 # Closed forms (docs/theory-mean-field.md unless noted)
 # ---------------------------------------------------------------------------------------------
 
+
 def relu_kernel(q: float, c: float) -> tuple[float, float]:
     """E[phi phi], E[phi' phi'] at equal variances q (Cho & Saul 2009, arc-cosine degree 1, halved)."""
     t = math.acos(c)
@@ -59,8 +60,10 @@ def test_length_map_and_chi1_closed_forms(q):
         # activation: (V(q), chi_1) -- docs/theory-mean-field.md
         "linear": (sw2 * q + sb2, sw2),
         "relu": (sw2 * q / 2 + sb2, sw2 / 2),
-        "erf": (sw2 * (2 / PI) * math.asin(2 * q / (1 + 2 * q)) + sb2,
-                (4 * sw2 / PI) / math.sqrt(1 + 4 * q)),
+        "erf": (
+            sw2 * (2 / PI) * math.asin(2 * q / (1 + 2 * q)) + sb2,
+            (4 * sw2 / PI) / math.sqrt(1 + 4 * q),
+        ),
         "hard-tanh": (sw2 * hard_tanh_second(q) + sb2, sw2 * math.erf(1 / math.sqrt(2 * q))),
     }
     for name, (v, x1) in cases.items():
@@ -78,10 +81,13 @@ def test_length_map_slope_against_derivative_of_closed_forms(q):
     # relu: V = sigma_w^2 q / 2 (docs/theory-mean-field.md)
     assert mf.length_map_slope("relu", sw, q) == pytest.approx(sw * sw / 2, rel=1e-10)
     # hard-tanh: mpmath.diff of the closed form of E[phi^2] (docs/theory-mean-field.md), 30 digits
-    ht = lambda t: t * (mp.erf(1 / mp.sqrt(2 * t)) - mp.sqrt(2 / (mp.pi * t)) * mp.exp(-1 / (2 * t))) \
-        + mp.erfc(1 / mp.sqrt(2 * t))  # noqa: E731
+    ht = lambda t: (
+        t * (mp.erf(1 / mp.sqrt(2 * t)) - mp.sqrt(2 / (mp.pi * t)) * mp.exp(-1 / (2 * t)))
+        + mp.erfc(1 / mp.sqrt(2 * t))
+    )  # noqa: E731
     assert mf.length_map_slope("hard-tanh", sw, q) == pytest.approx(
-        sw * sw * float(mp.diff(ht, q)), rel=1e-10)
+        sw * sw * float(mp.diff(ht, q)), rel=1e-10
+    )
 
 
 def test_length_map_slope_limits_at_zero():
@@ -99,12 +105,20 @@ def test_length_map_slope_limits_at_zero():
 def test_bivariate_moments_closed_forms(q):
     # with sigma_w = 1, sigma_b = 0: q C(c) = E[phi(u1) phi(u2)], C'(c) = E[phi'(u1) phi'(u2)]
     for c in CS:
-        for name, kernel in (("relu", relu_kernel), ("erf", erf_kernel),
-                             ("linear", lambda q_, c_: (q_ * c_, 1.0))):
+        for name, kernel in (
+            ("relu", relu_kernel),
+            ("erf", erf_kernel),
+            ("linear", lambda q_, c_: (q_ * c_, 1.0)),
+        ):
             e_pp, e_dd = kernel(q, c)
-            assert q * mf.correlation_map(name, 1.0, 0.0, q, c) == pytest.approx(e_pp, abs=1e-10), \
-                (name, c)
-            assert mf.correlation_slope(name, 1.0, q, c) == pytest.approx(e_dd, abs=1e-10), (name, c)
+            assert q * mf.correlation_map(name, 1.0, 0.0, q, c) == pytest.approx(e_pp, abs=1e-10), (
+                name,
+                c,
+            )
+            assert mf.correlation_slope(name, 1.0, q, c) == pytest.approx(e_dd, abs=1e-10), (
+                name,
+                c,
+            )
 
 
 def _mp_bivariate_hard_tanh(q: float, c: float) -> tuple[float, float]:
@@ -116,8 +130,12 @@ def _mp_bivariate_hard_tanh(q: float, c: float) -> tuple[float, float]:
 
     def clip_mean(m):  # E[clip(Y, -1, 1)], Y ~ N(m, s^2)
         a, b = (-1 - m) / s, (1 - m) / s
-        return (-mp.ncdf(a) + (1 - mp.ncdf(b)) + m * (mp.ncdf(b) - mp.ncdf(a))
-                + s * (mp.npdf(a) - mp.npdf(b)))
+        return (
+            -mp.ncdf(a)
+            + (1 - mp.ncdf(b))
+            + m * (mp.ncdf(b) - mp.ncdf(a))
+            + s * (mp.npdf(a) - mp.npdf(b))
+        )
 
     def inside(m):  # P(|Y| < 1)
         return mp.ncdf((1 - m) / s) - mp.ncdf((-1 - m) / s)
@@ -151,12 +169,14 @@ def test_derivative_moments_closed_forms():
     ks = np.arange(1, 6)
     # relu: phi'^2 in {0, 1} with P = 1/2; hard-tanh: P(|h| < 1) = erf(1/sqrt(2q)) (docs/theory-free-probability.md)
     np.testing.assert_allclose(mf.derivative_moments("relu", q, 5), 0.5, atol=1e-12)
-    np.testing.assert_allclose(mf.derivative_moments("hard-tanh", q, 5),
-                               math.erf(1 / math.sqrt(2 * q)), atol=1e-12)
+    np.testing.assert_allclose(
+        mf.derivative_moments("hard-tanh", q, 5), math.erf(1 / math.sqrt(2 * q)), atol=1e-12
+    )
     np.testing.assert_allclose(mf.derivative_moments("linear", q, 5), 1.0, atol=1e-12)
     # erf: phi'^(2k) = (4/pi)^k exp(-2k h^2), E = (4/pi)^k / sqrt(1 + 4kq) (Gaussian integral, derived)
-    np.testing.assert_allclose(mf.derivative_moments("erf", q, 5),
-                               (4 / PI) ** ks / np.sqrt(1 + 4 * ks * q), rtol=1e-11)
+    np.testing.assert_allclose(
+        mf.derivative_moments("erf", q, 5), (4 / PI) ** ks / np.sqrt(1 + 4 * ks * q), rtol=1e-11
+    )
     # q -> 0+ limit: ReLU keeps 1/2 (not phi'(0)^2 = 0), tanh gives phi'(0)^(2k) = 1
     np.testing.assert_allclose(mf.derivative_moments("relu", 0.0, 3), 0.5, atol=1e-15)
     np.testing.assert_allclose(mf.derivative_moments("tanh", 0.0, 3), 1.0, atol=1e-15)
@@ -168,8 +188,11 @@ def test_derivative_moments_closed_forms():
 # ---------------------------------------------------------------------------------------------
 
 # docs/theory-mean-field.md check values (two independent in-house solvers, agree to 1e-12)
-TANH_CRITICAL = [(0.01, 1.424205290489, 0.273300913458), (0.05, 1.760954639607, 0.570047881641),
-                 (0.1, 1.986072641136, 0.805799181913)]
+TANH_CRITICAL = [
+    (0.01, 1.424205290489, 0.273300913458),
+    (0.05, 1.760954639607, 0.570047881641),
+    (0.1, 1.986072641136, 0.805799181913),
+]
 
 
 @pytest.mark.parametrize("sb2,sw2,q_star", TANH_CRITICAL)
@@ -206,7 +229,8 @@ def test_tanh_depth_scales_check_values():
     # c* is a fixed point of the literal map (sigma_w^2 E[phi phi] + sigma_b^2)/q*, which the solver
     # (working on the fixed-point form) does not evaluate
     assert mf.correlation_map("tanh", math.sqrt(3.0), sb, r.q_star, r.c_star) == pytest.approx(
-        r.c_star, abs=1e-10)
+        r.c_star, abs=1e-10
+    )
 
 
 def test_erf_closed_form_critical_line():
@@ -223,7 +247,8 @@ def test_erf_closed_form_critical_line():
     np.testing.assert_allclose(
         line.sigma_b2,
         line.q_star - line.sigma_w2 * (2 / PI) * np.arcsin(2 * line.q_star / (1 + 2 * line.q_star)),
-        atol=1e-11)
+        atol=1e-11,
+    )
     assert line.sigma_w2[0] == pytest.approx(PI / 4, rel=1e-12)  # q* = 0 end: sigma_w^2 >= pi/4
     cp0 = mf.critical_point("erf", 0.0)
     assert cp0.q_star == 0.0 and cp0.sigma_w2 == pytest.approx(PI / 4, rel=1e-12)
@@ -235,8 +260,9 @@ def test_default_critical_line_spans_sigma_b2_up_to_one():
     assert np.all(np.diff(line.sigma_w2) > 0) and np.all(line.sigma_b2 >= 0)
     # every point is critical: chi_1 = 1 at its own fixed point
     for i in (0, 57, 199):
-        assert mf.chi1("tanh", math.sqrt(line.sigma_w2[i]), line.q_star[i]) == pytest.approx(1.0,
-                                                                                            abs=1e-12)
+        assert mf.chi1("tanh", math.sqrt(line.sigma_w2[i]), line.q_star[i]) == pytest.approx(
+            1.0, abs=1e-12
+        )
 
 
 def test_centred_sigmoid_identities():
@@ -299,7 +325,8 @@ def test_relu_fixed_point_exact_below_criticality():
     assert r0.q_star == 0.0 and r0.chi1 == pytest.approx(sw * sw / 2, rel=1e-12)
     # C'(c) at q -> 0+ is ReLU's q-independent kernel
     assert mf.correlation_slope("relu", sw, 0.0, 0.3) == pytest.approx(
-        sw * sw * relu_kernel(1.0, 0.3)[1], abs=1e-12)
+        sw * sw * relu_kernel(1.0, 0.3)[1], abs=1e-12
+    )
 
 
 def test_zero_fixed_point_is_exact():
@@ -329,8 +356,13 @@ def test_selu_self_normalising_fixed_point():
 
 
 def test_fixed_point_properties_against_length_map():
-    for name, sw, sb in (("tanh", 1.7, 0.3), ("hard-tanh", 1.4, 0.2), ("selu", 1.0, 0.1),
-                         ("sigmoid", 2.0, 0.5), ("erf", 2.5, 0.05)):
+    for name, sw, sb in (
+        ("tanh", 1.7, 0.3),
+        ("hard-tanh", 1.4, 0.2),
+        ("selu", 1.0, 0.1),
+        ("sigmoid", 2.0, 0.5),
+        ("erf", 2.5, 0.05),
+    ):
         q = mf.fixed_point(name, sw, sb)
         assert mf.length_map(name, sw, sb, q) == pytest.approx(q, rel=1e-13), name
         assert mf.length_map_slope(name, sw, q) < 1.0, name
@@ -352,8 +384,9 @@ def test_correlation_fixed_point_and_input_checks():
     with pytest.raises(InputError):
         mf.derivative_moments("tanh", 1.0, kmax=0)
     # q = 0 fixed point (sigma_b = 0): the limit map of smooth odd phi is linear, chi_1 c + 1 - chi_1
-    assert mf.correlation_map("tanh", 0.9, 0.0, 0.0, 0.4) == pytest.approx(0.81 * 0.4 + 0.19,
-                                                                            abs=1e-12)
+    assert mf.correlation_map("tanh", 0.9, 0.0, 0.0, 0.4) == pytest.approx(
+        0.81 * 0.4 + 0.19, abs=1e-12
+    )
 
 
 # ---------------------------------------------------------------------------------------------
@@ -361,8 +394,8 @@ def test_correlation_fixed_point_and_input_checks():
 # ---------------------------------------------------------------------------------------------
 
 WIDTH = 2000
-REPLICAS = 6   # independent networks per configuration; the test statistic is a t-score with 5 dof
-Z_MAX = 5.0    # P(|t_5| > 5) = 0.004 per layer
+REPLICAS = 6  # independent networks per configuration; the test statistic is a t-score with 5 dof
+Z_MAX = 5.0  # P(|t_5| > 5) = 0.004 per layer
 
 
 def _simulate(name, sw, sb, q0, depth, family, alpha, seed):
@@ -383,10 +416,11 @@ def _simulate(name, sw, sb, q0, depth, family, alpha, seed):
     return out
 
 
-@functools.lru_cache(maxsize=None)
+@functools.cache
 def _compare(name, sw, sb, q0, depth, family, alpha):
-    runs = np.array([_simulate(name, sw, sb, q0, depth, family, alpha, 1000 + r)
-                     for r in range(REPLICAS)])
+    runs = np.array(
+        [_simulate(name, sw, sb, q0, depth, family, alpha, 1000 + r) for r in range(REPLICAS)]
+    )
     mean = runs.mean(axis=0)
     pred = mf.q_trajectory(name, sw, sb, q0, depth, family=family, alpha=alpha)
     # Sampling error of the mean over replicas.  Given x^{l-1}, h^l is exactly Gaussian, so
@@ -400,11 +434,14 @@ def _compare(name, sw, sb, q0, depth, family, alpha):
 RELU_RESIDUAL = ("relu", 0.4, 0.1, 1.0, 8, "residual", 1.0)
 
 
-@pytest.mark.parametrize("config", [
-    ("tanh", 1.5, 0.3, 1.0, 6, "plain", 1.0),
-    ("tanh", 0.6, 0.2, 0.5, 8, "residual", 1.0),
-    RELU_RESIDUAL,
-])
+@pytest.mark.parametrize(
+    "config",
+    [
+        ("tanh", 1.5, 0.3, 1.0, 6, "plain", 1.0),
+        ("tanh", 0.6, 0.2, 0.5, 8, "residual", 1.0),
+        RELU_RESIDUAL,
+    ],
+)
 def test_q_trajectory_matches_wide_network(config):
     name, sw, sb, q0, depth, family, alpha = config
     mean, se, pred = _compare(*config)
@@ -435,7 +472,8 @@ def test_plain_trajectory_is_length_map_iteration():
         assert b == pytest.approx(mf.length_map("tanh", 1.3, 0.2, a), rel=1e-14)
     # converges to q*
     assert mf.q_trajectory("tanh", 1.3, 0.2, 2.0, 60)[-1] == pytest.approx(
-        mf.fixed_point("tanh", 1.3, 0.2), rel=1e-10)
+        mf.fixed_point("tanh", 1.3, 0.2), rel=1e-10
+    )
 
 
 def test_residual_linear_trajectory_closed_form():
@@ -449,6 +487,7 @@ def test_residual_linear_trajectory_closed_form():
 # Registry-wide contract
 # ---------------------------------------------------------------------------------------------
 
+
 @pytest.mark.parametrize("name", activation_names())
 def test_every_activation_has_a_mean_field(name):
     sw, sb = 0.9, 0.1
@@ -457,8 +496,13 @@ def test_every_activation_has_a_mean_field(name):
     assert math.isfinite(r.chi1) and r.chi1 > 0
     assert mf.length_map(name, sw, sb, r.q_star) == pytest.approx(r.q_star, rel=1e-12)
     assert r.chi1 == pytest.approx(sw * sw * mf.derivative_moments(name, r.q_star, 1)[0], rel=1e-14)
-    assert r.phase == ("ordered" if r.chi1 < 1 - mf.CRITICAL_TOL else
-                       "chaotic" if r.chi1 > 1 + mf.CRITICAL_TOL else "critical")
+    assert r.phase == (
+        "ordered"
+        if r.chi1 < 1 - mf.CRITICAL_TOL
+        else "chaotic"
+        if r.chi1 > 1 + mf.CRITICAL_TOL
+        else "critical"
+    )
     assert r.sigma_w2 == pytest.approx(sw * sw) and r.sigma_b2 == pytest.approx(sb * sb)
     assert r.xi_q > 0 and r.xi_c > 0
 
@@ -473,8 +517,9 @@ def test_every_activation_critical_point_or_reason(name):
         assert name in text and "sigma_b" in text and len(text) > 60
         return
     assert mf.chi1(name, cp.sigma_w, cp.q_star) == pytest.approx(1.0, abs=1e-10)
-    assert mf.fixed_point(name, cp.sigma_w, cp.sigma_b) == pytest.approx(cp.q_star, rel=1e-9,
-                                                                         abs=1e-14)
+    assert mf.fixed_point(name, cp.sigma_w, cp.sigma_b) == pytest.approx(
+        cp.q_star, rel=1e-9, abs=1e-14
+    )
 
 
 def test_relu_trajectory_without_bias_is_geometric():

@@ -43,8 +43,12 @@ def _writer(target, tag, pause=None):
     env.pop(folders._PAUSE_ENV, None)
     if pause:
         env[folders._PAUSE_ENV] = pause
-    return subprocess.Popen([sys.executable, "-c", WRITER, str(target), tag], env=env,
-                            stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+    return subprocess.Popen(
+        [sys.executable, "-c", WRITER, str(target), tag],
+        env=env,
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
+    )
 
 
 def _complete_tag(target: Path):
@@ -161,8 +165,24 @@ def test_legacy_isoscope_folder_is_replaced_and_a_users_folder_is_not(tmp_path):
         folders.reserve(tmp_path / "link")
 
 
-@pytest.mark.parametrize("label", ["../../x", "/etc/passwd", "a/b", "<b>bold</b>", "line\nbreak",
-                                   "nul\x00byte", "x" * 300, "é" * 200, "..", ".", "-rf", "  ", "a\\b"])
+@pytest.mark.parametrize(
+    "label",
+    [
+        "../../x",
+        "/etc/passwd",
+        "a/b",
+        "<b>bold</b>",
+        "line\nbreak",
+        "nul\x00byte",
+        "x" * 300,
+        "é" * 200,
+        "..",
+        ".",
+        "-rf",
+        "  ",
+        "a\\b",
+    ],
+)
 def test_safe_folder_name_is_one_harmless_component(label):
     name = folders.safe_folder_name(label)
     assert name and "/" not in name and "\\" not in name and "\x00" not in name and "\n" not in name
@@ -193,6 +213,7 @@ inputs = 1
 
 def test_spec_name_cannot_escape_the_default_folder(tmp_path):
     from isoscope import cli
+
     work = tmp_path / "work"
     work.mkdir()
     earlier = tmp_path / "earlier"
@@ -222,16 +243,35 @@ def test_interrupt_through_the_command_keeps_the_previous_folder(tmp_path):
     out = tmp_path / "outs" / "res"
     env = {**os.environ, "PYTHONPATH": str(SRC)}
     env.pop(folders._PAUSE_ENV, None)
-    first = subprocess.run([sys.executable, "-m", "isoscope", "analyze", str(spec), "--out", str(out)],
-                           env=env, capture_output=True, text=True)
+    first = subprocess.run(
+        [sys.executable, "-m", "isoscope", "analyze", str(spec), "--out", str(out)],
+        env=env,
+        capture_output=True,
+        text=True,
+    )
     assert first.returncode == 0, first.stderr
     before = (out / "result.json").read_text()
     for delay, pause in ((0.3, None), (2.5, None), (None, "commit:30")):
         e = dict(env)
         if pause:
             e[folders._PAUSE_ENV] = pause
-        p = subprocess.Popen([sys.executable, "-m", "isoscope", "analyze", str(spec), "--out", str(out),
-                              "--seed", "5"], env=e, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+        p = subprocess.Popen(
+            [
+                sys.executable,
+                "-m",
+                "isoscope",
+                "analyze",
+                str(spec),
+                "--out",
+                str(out),
+                "--seed",
+                "5",
+            ],
+            env=e,
+            stdout=subprocess.PIPE,
+            stderr=subprocess.PIPE,
+            text=True,
+        )
         if pause:  # wait until the run sits in the pause just before its switch
             deadline = time.time() + 120
             while time.time() < deadline and not list(out.parent.glob(".res.v-*/result.json")):
@@ -243,7 +283,9 @@ def test_interrupt_through_the_command_keeps_the_previous_folder(tmp_path):
         _, err = p.communicate(timeout=120)
         # during the import Python's own handler is still in place: it dies of SIGINT (-2,
         # which a shell reports as 130) without writing anything
-        assert p.returncode in (130, -signal.SIGINT) or (p.returncode == 0 and delay and delay > 2), err
+        assert p.returncode in (130, -signal.SIGINT) or (
+            p.returncode == 0 and delay and delay > 2
+        ), err
         if p.returncode == 130:
             assert "interrupted" in err
         if p.returncode != 0:

@@ -18,10 +18,14 @@ from isoscope.spectrum import from_singular_values
 
 
 def _spec(name, width, depth, activation, weights, sigma_w, sigma_b=0.0, inputs=2, route="auto"):
-    return parse_spec({"name": name,
-                       "network": {"width": width, "depth": depth, "activation": activation},
-                       "init": {"weights": weights, "sigma_w": sigma_w, "sigma_b": sigma_b},
-                       "analysis": {"inputs": inputs, "seed": 5, "route": route}})
+    return parse_spec(
+        {
+            "name": name,
+            "network": {"width": width, "depth": depth, "activation": activation},
+            "init": {"weights": weights, "sigma_w": sigma_w, "sigma_b": sigma_b},
+            "analysis": {"inputs": inputs, "seed": 5, "route": route},
+        }
+    )
 
 
 # Spread: tanh, Gaussian weights, sigma_w = 3 (chaotic, chi_1 > 1) at depth 64: the singular
@@ -49,6 +53,7 @@ def drawn():
 
     import pathlib
     import tempfile
+
     plot.save = keep
     try:
         for spec in (SPREAD, RELU, LINEAR):
@@ -183,16 +188,20 @@ def test_comparison_has_one_visible_panel_per_design_on_a_shared_axis():
             assert "numerically zero" in ax.get_title(loc="right")
         _legend_outside(fig, ax)
     import matplotlib.pyplot as plt
+
     plt.close(fig)
 
 
 def test_comparison_panel_of_an_all_zero_design_says_so():
-    spectra = {"dead": from_singular_values(np.zeros((2, 16)), "float64"),
-               "alive": from_singular_values(np.ones((2, 16)), "float64")}
+    spectra = {
+        "dead": from_singular_values(np.zeros((2, 16)), "float64"),
+        "alive": from_singular_values(np.ones((2, 16)), "float64"),
+    }
     fig = plot.comparison_figure(spectra, "two designs")
     texts = [t.get_text() for ax in fig.axes for t in ax.texts]
     assert any("every singular value is numerically zero" in t for t in texts)
     import matplotlib.pyplot as plt
+
     plt.close(fig)
 
 
@@ -202,6 +211,7 @@ def test_log_s_figure_with_every_value_zero_is_not_empty():
     texts = [t.get_text() for t in fig.axes[0].texts]
     assert any("every singular value is numerically zero" in t for t in texts)
     import matplotlib.pyplot as plt
+
     plt.close(fig)
 
 
@@ -218,11 +228,25 @@ def test_predicted_law_masses_outside_a_range():
 def _hand_profile(measured_std, isometric_until, draws_std=np.nan):
     """A DepthProfile of a 16-layer stack with hand-set numbers (no analysis behind it)."""
     from isoscope.analysis import DepthProfile
+
     depths, layers = np.array([1, 4, 16]), np.arange(1, 17)
-    return DepthProfile(depths, measured_std, np.array([0.1, 0.2, 0.4]), np.full(3, -0.1),
-                        np.full(3, -0.1), np.array([0.9, 0.85, 0.5]), np.array([0.9, 0.7, 0.5]),
-                        isometric_until, 1, layers, np.full(16, 0.5), np.full(16, draws_std),
-                        np.full(16, 0.5), np.full(16, 0.98), np.full(16, 0.97))
+    return DepthProfile(
+        depths,
+        measured_std,
+        np.array([0.1, 0.2, 0.4]),
+        np.full(3, -0.1),
+        np.full(3, -0.1),
+        np.array([0.9, 0.85, 0.5]),
+        np.array([0.9, 0.7, 0.5]),
+        isometric_until,
+        1,
+        layers,
+        np.full(16, 0.5),
+        np.full(16, draws_std),
+        np.full(16, 0.5),
+        np.full(16, 0.98),
+        np.full(16, 0.97),
+    )
 
 
 def test_depth_figure_with_no_measured_spread_says_so_without_warnings():
@@ -251,7 +275,7 @@ def test_depth_figure_marks_where_the_stack_stops_being_isometric():
     assert "measured isometry score < 0.8 from l = 16" in labels, labels
     assert "predicted score < 0.8 from l = 4" in labels, labels
     for ax in fig.axes:
-        shaded = [p for p in ax.patches if p.get_x() == 16]     # axvspan from l = 16
+        shaded = [p for p in ax.patches if p.get_x() == 16]  # axvspan from l = 16
         assert shaded, "the non-isometric depths are not shaded"
         assert ax.get_xscale() == "log" and ax.get_xlim()[0] < 1 and ax.get_xlim()[1] > 16
         _legend_outside(fig, ax)
@@ -270,14 +294,20 @@ def test_depth_figure_of_real_designs_shows_the_per_layer_numbers(drawn):
         got = lines["measured |h^l|^2 / N, mean of draws"].get_ydata()
         assert np.array_equal(got, pr.measured_q)
         lines = {ln.get_label(): ln for ln in fig.axes[1].get_lines()}
-        assert np.array_equal(lines["mean field (N -> infinity)"].get_ydata(), pr.predicted_layer_gain)
+        assert np.array_equal(
+            lines["mean field (N -> infinity)"].get_ydata(), pr.predicted_layer_gain
+        )
         ticks = [int(t) for t in fig.axes[2].get_xticks()]
         assert ticks == [int(d) for d in pr.depths]
     # tanh at sigma_w = 3 (chaotic): the per-layer gain chi_1 is far above 1, no depth is isometric
     a, figs = drawn["tanh-gaussian-3"]
-    labels = " ".join(t.get_text() for t in figs["spread-by-depth"].axes[2].get_legend().get_texts())
+    labels = " ".join(
+        t.get_text() for t in figs["spread-by-depth"].axes[2].get_legend().get_texts()
+    )
     assert "not isometric even at l = 1" in labels
     # an orthogonal linear stack is isometric at every depth (every s = 1)
     a, figs = drawn["linear-orthogonal"]
-    labels = " ".join(t.get_text() for t in figs["spread-by-depth"].axes[2].get_legend().get_texts())
+    labels = " ".join(
+        t.get_text() for t in figs["spread-by-depth"].axes[2].get_legend().get_texts()
+    )
     assert "measured: isometric (score >= 0.8) at every profiled depth" in labels

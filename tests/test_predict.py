@@ -24,8 +24,17 @@ def _law(ell, rho_log, atoms=()):
     """A Density built by hand from a known law (density of ln lambda on a grid, atoms)."""
     x = np.exp(ell)
     hull = (x[0], x[-1]) if x.size else (0.0, 0.0)
-    return fp.Density(x, rho_log / x, ell, rho_log, sum(w for a, w in atoms if a == 0.0),
-                      tuple(atoms), hull, (hull,) if x.size else (), "test law")
+    return fp.Density(
+        x,
+        rho_log / x,
+        ell,
+        rho_log,
+        sum(w for a, w in atoms if a == 0.0),
+        tuple(atoms),
+        hull,
+        (hull,) if x.size else (),
+        "test law",
+    )
 
 
 def _exponential(weight=1.0, atoms=()):
@@ -54,7 +63,7 @@ def test_ks_distance_with_an_atom_at_zero_matches_the_definition():
     grid = np.unique(np.concatenate([s, s * (1 - 1e-12), s * (1 + 1e-12), [0.0]]))
     f_emp = np.searchsorted(s, grid, side="right") / n
     f_law = 0.4 + 0.6 * (1.0 - np.exp(-grid))
-    left = np.searchsorted(s, grid, side="left") / n          # F_n just below each grid point
+    left = np.searchsorted(s, grid, side="left") / n  # F_n just below each grid point
     f_law_left = np.where(grid > 0, f_law, 0.0)
     want = max(np.max(np.abs(f_emp - f_law)), np.max(np.abs(left - f_law_left)))
     assert got == pytest.approx(want, abs=1e-6)
@@ -65,7 +74,7 @@ def test_plain_prediction_m1_is_chi1_to_the_depth():
     # docs/theory-free-probability.md: m1 = chi_1^L; chi_1 from mean field at the same point
     p = predict("tanh", "orthogonal", 1.2, 0.1, 20)
     x1 = mf.chi1("tanh", 1.2, p.mean_field.q_star)
-    assert p.moments.m1 == pytest.approx(x1 ** 20, rel=1e-10)
+    assert p.moments.m1 == pytest.approx(x1**20, rel=1e-10)
     assert p.q_law == p.mean_field.q_star
     assert not p.notes
 
@@ -96,16 +105,16 @@ def test_residual_relu_tau_is_exact():
     # docs/theory-free-probability.md sec. 7: ReLU, sigma_b = 0: tau = L alpha^2 sigma_w^2 / 2 whatever q^l does;
     # m1 = e^tau, m2/m1^2 = 1 + 2 tau; the mean mode is flagged (E[relu(h)] > 0)
     p = predict("relu", "gaussian", math.sqrt(2.0), 0.0, 64, family="residual", alpha=0.125)
-    assert p.tau == pytest.approx(64 * 0.125 ** 2 * 2.0 / 2.0, rel=1e-12)
+    assert p.tau == pytest.approx(64 * 0.125**2 * 2.0 / 2.0, rel=1e-12)
     assert p.moments.m1 == pytest.approx(math.e, rel=1e-12)
-    assert p.moments.m2 / p.moments.m1 ** 2 == pytest.approx(3.0, rel=1e-12)
+    assert p.moments.m2 / p.moments.m1**2 == pytest.approx(3.0, rel=1e-12)
     assert p.mean_mode and p.mean_field is None
 
 
 def test_residual_tanh_has_no_mean_mode():
     p = predict("tanh", "orthogonal", math.sqrt(2.0 / 32), 0.0, 32, family="residual")
     assert not p.mean_mode
-    assert 0 < p.tau < 2.0        # tanh: E[phi'^2] < 1, so tau < L sigma_w^2 = 2
+    assert 0 < p.tau < 2.0  # tanh: E[phi'^2] < 1, so tau < L sigma_w^2 = 2
 
 
 def test_log_lambda_stats_of_a_point_law():
@@ -115,10 +124,13 @@ def test_log_lambda_stats_of_a_point_law():
     assert mean == pytest.approx(math.log(4.0)) and std == pytest.approx(0.0, abs=1e-12)
 
 
-@pytest.mark.parametrize("kwargs, match", [
-    (dict(weights="delta"), "weights"),
-    (dict(family="conv2d"), "family"),
-])
+@pytest.mark.parametrize(
+    "kwargs, match",
+    [
+        (dict(weights="delta"), "weights"),
+        (dict(family="conv2d"), "family"),
+    ],
+)
 def test_prediction_refuses_what_theory_does_not_cover(kwargs, match):
     base = dict(activation="tanh", weights="orthogonal", sigma_w=1.1, sigma_b=0.1, depth=4)
     base.update(kwargs)
@@ -131,9 +143,15 @@ def test_agreement_excludes_the_mean_mode_and_warns():
     p = predict("relu", "gaussian", math.sqrt(2.0), 0.0, 64, family="residual", alpha=0.125)
     rng = np.random.default_rng(0)
     u = rng.random((3, 500))
-    cum = np.concatenate([[0.0], np.cumsum(0.5 * (p.density.rho_log[1:] + p.density.rho_log[:-1])
-                                           * np.diff(p.density.log_x))])
-    ell = np.interp(u * cum[-1], cum, p.density.log_x)          # inverse-CDF sampling
+    cum = np.concatenate(
+        [
+            [0.0],
+            np.cumsum(
+                0.5 * (p.density.rho_log[1:] + p.density.rho_log[:-1]) * np.diff(p.density.log_x)
+            ),
+        ]
+    )
+    ell = np.interp(u * cum[-1], cum, p.density.log_x)  # inverse-CDF sampling
     s = np.concatenate([np.full((3, 1), 70.0), np.exp(ell / 2.0)], axis=1)
     spec = from_singular_values(s, np.float64)
     g = agreement(spec, p)
@@ -142,7 +160,7 @@ def test_agreement_excludes_the_mean_mode_and_warns():
     assert g.ks < 0.04
     assert any("mean mode" in w for w in g.warnings)
     g_all = agreement(spec, dataclasses.replace(p, mean_mode=False))
-    assert g_all.m1_rel_error > 1.0                 # the outlier dominates m1 when kept
+    assert g_all.m1_rel_error > 1.0  # the outlier dominates m1 when kept
 
 
 def test_unbounded_variance_with_a_q_free_law_is_still_predicted():
@@ -151,8 +169,8 @@ def test_unbounded_variance_with_a_q_free_law_is_still_predicted():
     # Zyczkowski 2011, Phys. Rev. E 83, 061118): m1 = sigma_w^{2L}, m2/m1^2 = L + 1
     p = predict("linear", "gaussian", 1.2, 0.1, 4)
     assert p.mean_field is None and p.family == "plain"
-    assert p.moments.m1 == pytest.approx(1.44 ** 4, rel=1e-12)
-    assert p.moments.m2 / p.moments.m1 ** 2 == pytest.approx(5.0, rel=1e-12)
+    assert p.moments.m1 == pytest.approx(1.44**4, rel=1e-12)
+    assert p.moments.m2 / p.moments.m1**2 == pytest.approx(5.0, rel=1e-12)
     assert p.q_layers[-1] > p.q_layers[0]
     assert any("no finite fixed point" in n and "prediction stands" in n for n in p.notes)
 
@@ -166,6 +184,7 @@ def test_unbounded_variance_with_a_q_dependent_law_is_refused():
 # ---------------------------------------------------------------------------------------------
 # Issue 8: homogeneous stacks at q* = 0, logs, tails, labels, near-isometric laws, leaky slope
 # ---------------------------------------------------------------------------------------------
+
 
 def _spec(**network):
     from isoscope.spec import parse_spec
@@ -182,10 +201,10 @@ def test_relu_at_q_star_zero_is_predicted_with_the_length_decay():
 
     spec = _spec(activation="relu", depth=10, init={"weights": "gaussian", "sigma_w": 1.0})
     plan, _ = plan_inputs(spec)
-    assert plan.variance == 1.0 and "homogeneous" in plan.detail   # not the zero input
+    assert plan.variance == 1.0 and "homogeneous" in plan.detail  # not the zero input
     p = predict_spec(spec)
     assert p.mean_field.q_star == 0.0
-    assert p.moments.m1 == pytest.approx(2.0 ** -10, rel=1e-12)
+    assert p.moments.m1 == pytest.approx(2.0**-10, rel=1e-12)
     assert p.moments.log_m1 == pytest.approx(-10 * math.log(2.0), rel=1e-12)
     assert p.length_factor == pytest.approx(0.5, rel=1e-12)
     assert any("q* = 0" in n and "0.5 per layer" in n for n in p.notes)
@@ -201,13 +220,14 @@ def test_log_moments_where_the_moments_underflow():
     mfp = p.mean_field
     mu1, mu2 = mf.derivative_moments("tanh", mfp.q_star, 2)
     assert p.moments.log_m1 == pytest.approx(L * math.log(mfp.chi1), rel=1e-12)
-    assert p.moments.log_m2 == pytest.approx(2 * p.moments.log_m1 + math.log1p(L * mu2 / mu1 ** 2),
-                                             rel=1e-12)
+    assert p.moments.log_m2 == pytest.approx(
+        2 * p.moments.log_m1 + math.log1p(L * mu2 / mu1**2), rel=1e-12
+    )
     assert p.moments.m1 is None and p.moments.unrepresentable() == ("m1", "m2", "m3", "m4")
     assert all(math.isfinite(v) for v in p.moments.logs)
     lo, hi = p.density.log_support
     assert math.isfinite(lo) and math.isfinite(hi) and hi < -708
-    assert all(math.isnan(v) for v in p.density.support)           # never a silent 0.0
+    assert all(math.isnan(v) for v in p.density.support)  # never a silent 0.0
     assert not p.density.in_float_range
     assert any("outside the float64 range" in n for n in p.notes)
 
@@ -230,8 +250,13 @@ def test_saturated_tanh_has_no_spurious_zero_atom_and_m1_is_chi1_to_the_depth():
     assert law.zero_weight == 0.0
     mpmath.mp.dps = 30
     s = mpmath.sqrt(m.q_star)
-    want = sw * sw * mpmath.quad(lambda z: mpmath.sech(s * z) ** 4 * mpmath.npdf(z),
-                                 [-mpmath.inf, -2, 0, 2, mpmath.inf])
+    want = (
+        sw
+        * sw
+        * mpmath.quad(
+            lambda z: mpmath.sech(s * z) ** 4 * mpmath.npdf(z), [-mpmath.inf, -2, 0, 2, mpmath.inf]
+        )
+    )
     assert m.chi1 == pytest.approx(float(want), rel=1e-12)
     assert sw * sw * law.moment(1) == pytest.approx(float(want), rel=1e-12)
     p = predict("tanh", "orthogonal", sw, 0.0, L)
@@ -242,7 +267,7 @@ def test_saturated_tanh_has_no_spurious_zero_atom_and_m1_is_chi1_to_the_depth():
 def test_chi1_within_the_critical_band_is_critical():
     cp = mf.critical_point("tanh", 0.05)
     near = mf.mean_field("tanh", cp.sigma_w * (1 + 1e-7), 0.05)
-    assert 1e-9 < near.chi1 - 1.0 < mf.CRITICAL_TOL        # once labelled "chaotic"
+    assert 1e-9 < near.chi1 - 1.0 < mf.CRITICAL_TOL  # once labelled "chaotic"
     assert near.phase == "critical" and near.xi_c == math.inf
     assert mf.mean_field("tanh", cp.sigma_w * (1 + 1e-4), 0.05).phase == "chaotic"
 
@@ -253,7 +278,9 @@ def test_uniform_weights_are_named_as_asked():
     p = predict("tanh", "uniform", 1.2, 0.05, 4)
     assert p.weights == "uniform" and p.ensemble == "gaussian"
     text = _prediction_text(p)
-    assert "uniform weights (predicted as Gaussian: same variance, same infinite-width limit)" in text
+    assert (
+        "uniform weights (predicted as Gaussian: same variance, same infinite-width limit)" in text
+    )
     assert "gaussian weights" not in text
 
 
@@ -290,11 +317,11 @@ def test_narrow_law_matches_the_large_depth_edges(sb):
     cp = mf.critical_point("tanh", sb)
     law = fp.derivative_law("tanh", cp.q_star)
     c = 1000 * law.relative_variance()
-    assert c < fp.NARROW_SPREAD ** 2
+    assert c < fp.NARROW_SPREAD**2
     d = fp.plain_density(law, "orthogonal", cp.sigma_w, 1000)
     lo, hi = (math.log(v) for v in fp.plain_limit_edges(c))
     width = hi - lo
-    shift = 1000 * math.log(cp.sigma_w ** 2 * law.moment(1))   # ln m1 (chi_1 = 1 to 1e-12)
+    shift = 1000 * math.log(cp.sigma_w**2 * law.moment(1))  # ln m1 (chi_1 = 1 to 1e-12)
     np.testing.assert_allclose(np.array(d.log_support) - shift, (lo, hi), atol=1e-3 * width)
 
 
@@ -307,8 +334,10 @@ def test_relative_variance_is_accurate_below_rounding():
     law = fp.derivative_law("tanh", q)
     mpmath.mp.dps = 60
     s = mpmath.sqrt(q)
-    f = lambda k: mpmath.quad(lambda z: mpmath.sech(s * z) ** (4 * k) * mpmath.npdf(z),  # noqa: E731
-                              [-mpmath.inf, 0, mpmath.inf])
+    f = lambda k: mpmath.quad(
+        lambda z: mpmath.sech(s * z) ** (4 * k) * mpmath.npdf(z),  # noqa: E731
+        [-mpmath.inf, 0, mpmath.inf],
+    )
     want = float(f(2) / f(1) ** 2 - 1)
     assert law.relative_variance() == pytest.approx(want, rel=1e-6)
 
@@ -342,8 +371,14 @@ def test_leaky_slope_reaches_network_mean_field_and_theory():
     a, L = 0.2, 8
     m = mf.mean_field(get_leaky(a), 1.0, 0.0)
     assert m.chi1 == pytest.approx((1 + a * a) / 2, rel=1e-13)
-    spec = _spec(activation="leaky-relu", leaky_slope=a, width=256, depth=L,
-                 init={"weights": "gaussian", "sigma_w": 1.0}, analysis={"inputs": 3})
+    spec = _spec(
+        activation="leaky-relu",
+        leaky_slope=a,
+        width=256,
+        depth=L,
+        init={"weights": "gaussian", "sigma_w": 1.0},
+        analysis={"inputs": 3},
+    )
     assert spec.to_dict()["network"]["leaky_slope"] == a
     p = predict_spec(spec)
     assert p.slope == a and p.moments.m1 == pytest.approx(((1 + a * a) / 2) ** L, rel=1e-12)

@@ -13,11 +13,23 @@ from isoscope.spec import parse_spec
 from isoscope.theory import mean_field as mf
 
 
-def _spec(activation="tanh", weights="orthogonal", sigma_w=1.0, sigma_b=0.0, depth=10,
-          family="plain", **network):
+def _spec(
+    activation="tanh",
+    weights="orthogonal",
+    sigma_w=1.0,
+    sigma_b=0.0,
+    depth=10,
+    family="plain",
+    **network,
+):
     net = {"activation": activation, "depth": depth, "family": family, "width": 32, **network}
-    return parse_spec({"name": "t", "network": net,
-                       "init": {"weights": weights, "sigma_w": sigma_w, "sigma_b": sigma_b}})
+    return parse_spec(
+        {
+            "name": "t",
+            "network": net,
+            "init": {"weights": weights, "sigma_w": sigma_w, "sigma_b": sigma_b},
+        }
+    )
 
 
 # ----------------------------------------------------------------------------- trainable depth
@@ -39,9 +51,13 @@ def test_signal_bound_of_erf_matches_the_closed_form_depth_scale():
     # chi_1 = (4 sigma_w^2/pi)/sqrt(1 + 4 q*); q* by scipy brentq on the closed form; ordered
     # phase: xi_c = -1/ln chi_1 (Schoenholz et al. 2017, sec. 3).
     sw, sb = 1.0, 0.3
-    q = brentq(lambda q: sw ** 2 * (2 / math.pi) * math.asin(2 * q / (1 + 2 * q)) + sb ** 2 - q,
-               1e-9, 10.0, xtol=1e-15)
-    chi = (4 * sw ** 2 / math.pi) / math.sqrt(1 + 4 * q)
+    q = brentq(
+        lambda q: sw**2 * (2 / math.pi) * math.asin(2 * q / (1 + 2 * q)) + sb**2 - q,
+        1e-9,
+        10.0,
+        xtol=1e-15,
+    )
+    chi = (4 * sw**2 / math.pi) / math.sqrt(1 + 4 * q)
     assert chi < 1
     d = rec.trainable_depth(_spec("erf", sigma_w=sw, sigma_b=sb))
     assert d.signal_depth == pytest.approx(-6.0 / math.log(chi), rel=1e-7)
@@ -77,7 +93,7 @@ def test_residual_relu_depth_follows_tau_linear_in_depth():
     d = rec.trainable_depth(_spec("relu", sigma_w=1.0, family="residual", alpha=alpha))
     tau = rec.residual_tau_for_spread(rec.TRAINABLE_SPREAD)
     assert d.signal_depth == math.inf and math.isnan(d.xi_c)
-    assert abs(d.depth - 2 * tau / alpha ** 2) <= 1.0
+    assert abs(d.depth - 2 * tau / alpha**2) <= 1.0
 
 
 def test_an_isometric_stack_has_no_depth_limit():
@@ -87,6 +103,7 @@ def test_an_isometric_stack_has_no_depth_limit():
 
 def test_bad_spread_limit_is_refused():
     from isoscope.errors import InputError
+
     with pytest.raises(InputError, match="spread limit"):
         rec.trainable_depth(_spec(), limit=0.0)
 
@@ -96,7 +113,7 @@ def test_relu_type_plain_stacks_cannot_be_isometric():
     # ReLU: phi'^2 is 0 or 1 with probability 1/2 each, mu_2/mu_1^2 = 2 at every q* (exact)
     assert not rec.plain_can_be_isometric("relu")
     assert not rec.plain_can_be_isometric("leaky-relu")
-    assert rec.plain_can_be_isometric("linear")      # phi' = 1: a point mass
+    assert rec.plain_can_be_isometric("linear")  # phi' = 1: a point mass
     assert rec.plain_can_be_isometric("tanh")
 
 
@@ -119,7 +136,10 @@ def test_tanh_proposal_sits_on_the_critical_line_at_the_target_spread():
     assert ok and best.spec.init.weights == "orthogonal"
     assert abs(best.spec.init.sigma_w - mf.critical_point("tanh", sb).sigma_w) <= 1e-8
     assert best.predicted_spread == pytest.approx(rec.TARGET_SPREAD, rel=2e-3)
-    assert cands[1].spec.init.weights == "gaussian" and cands[1].predicted_spread > 10 * rec.TARGET_SPREAD
+    assert (
+        cands[1].spec.init.weights == "gaussian"
+        and cands[1].predicted_spread > 10 * rec.TARGET_SPREAD
+    )
     # q* is small: the spread grows with q*, and the target keeps it near the linear regime
     assert mf.critical_point("tanh", sb).q_star < 0.05
 
@@ -127,9 +147,12 @@ def test_tanh_proposal_sits_on_the_critical_line_at_the_target_spread():
 # ----------------------------------------------------------------------------- ranking
 def test_rank_orders_by_isometry_and_names_winners():
     from isoscope.analysis import analyze
-    specs = [_spec(weights="gaussian", sigma_w=1.2, sigma_b=0.3, depth=8),
-             _spec(weights="orthogonal", sigma_w=1.2, sigma_b=0.3, depth=8),
-             _spec("linear", weights="orthogonal", sigma_w=1.0, depth=8)]
+
+    specs = [
+        _spec(weights="gaussian", sigma_w=1.2, sigma_b=0.3, depth=8),
+        _spec(weights="orthogonal", sigma_w=1.2, sigma_b=0.3, depth=8),
+        _spec("linear", weights="orthogonal", sigma_w=1.0, depth=8),
+    ]
     specs = [s.replace(analysis={"inputs": 1}) for s in specs]
     specs = [parse_spec({**s.to_dict(), "name": n}) for s, n in zip(specs, ["g", "o", "lin"])]
     analyses = [analyze(s) for s in specs]
@@ -137,7 +160,7 @@ def test_rank_orders_by_isometry_and_names_winners():
     names = [analyses[i].spec.name for i in r.order]
     scores = [analyses[i].score.isometry for i in r.order]
     assert scores == sorted(scores, reverse=True)
-    assert names[0] == "lin"             # an orthogonal linear stack is an exact isometry
+    assert names[0] == "lin"  # an orthogonal linear stack is an exact isometry
     assert r.winners["isometry"] == ["lin"] and r.winners["spread"] == ["lin"]
 
 
@@ -149,14 +172,27 @@ def _run(capsys, *argv):
 
 
 def test_recommend_tanh_plain_orthogonal_wins_by_measurement(capsys, tmp_path):
-    code, out, err = _run(capsys, "recommend", "--activation", "tanh", "--depth", "200",
-                          "--width", "256", "--json", "--out", str(tmp_path / "rec"))
+    code, out, err = _run(
+        capsys,
+        "recommend",
+        "--activation",
+        "tanh",
+        "--depth",
+        "200",
+        "--width",
+        "256",
+        "--json",
+        "--out",
+        str(tmp_path / "rec"),
+    )
     assert code == 0, err
     r = json.loads(out)
     assert r["schema"] == "isoscope.recommendation/1"
     best = r["recommended"]
     assert best["weights"] == "orthogonal" and best["alpha"] is None
-    code, out, _ = _run(capsys, "critical", "--activation", "tanh", "--sigma-b", repr(best["sigma_b"]), "--json")
+    code, out, _ = _run(
+        capsys, "critical", "--activation", "tanh", "--sigma-b", repr(best["sigma_b"]), "--json"
+    )
     assert abs(json.loads(out)["sigma_w"] - best["sigma_w"]) <= 1e-8
     gauss = next(a for a in r["alternatives"] if a["weights"] == "gaussian")
     assert best["measured"]["log_s_std"] * 10 < gauss["measured"]["log_s_std"]
@@ -166,6 +202,7 @@ def test_recommend_tanh_plain_orthogonal_wins_by_measurement(capsys, tmp_path):
     # the recommended spec is a full spec that analyze accepts, also as the file written
     assert parse_spec(best["spec"]).init.sigma_w == best["sigma_w"]
     from isoscope.spec import load_spec
+
     written = tmp_path / "rec"
     assert load_spec(written / "recommended.toml").to_dict() == parse_spec(best["spec"]).to_dict()
     assert json.loads((written / "recommendation.json").read_text()) == r
@@ -174,12 +211,14 @@ def test_recommend_tanh_plain_orthogonal_wins_by_measurement(capsys, tmp_path):
 
 
 def test_recommend_relu_says_no_plain_setting_and_goes_residual(capsys):
-    code, out, err = _run(capsys, "recommend", "--activation", "relu", "--depth", "100",
-                          "--width", "128")
+    code, out, err = _run(
+        capsys, "recommend", "--activation", "relu", "--depth", "100", "--width", "128"
+    )
     assert code == 0, err
     assert "No plain setting of relu is isometric" in out and "initialization only" in out
-    code, out, _ = _run(capsys, "recommend", "--activation", "relu", "--depth", "100",
-                        "--width", "128", "--json")
+    code, out, _ = _run(
+        capsys, "recommend", "--activation", "relu", "--depth", "100", "--width", "128", "--json"
+    )
     r = json.loads(out)
     assert r["plain_isometric"] is False
     assert r["recommended"]["spec"]["network"]["family"] == "residual"
@@ -188,14 +227,26 @@ def test_recommend_relu_says_no_plain_setting_and_goes_residual(capsys):
     assert plain and all(r["measured"]["log_s_std"] < a["measured"]["log_s_std"] for a in plain)
 
 
-@pytest.mark.parametrize("argv, words", [
-    (["--activation", "swishy", "--depth", "10", "--width", "8"], ["swishy"]),
-    (["--activation", "tanh", "--depth", "0", "--width", "8"], ["--depth", "0"]),
-    (["--activation", "tanh", "--depth", "10", "--width", "0"], ["--width"]),
-    (["--activation", "tanh", "--depth", "10", "--width", "8", "--family", "conv"], ["--family", "conv"]),
-    (["--activation", "tanh", "--depth", "10", "--width", "8", "--target-spread", "-1"], ["--target-spread"]),
-    (["--activation", "tanh", "--depth", "10", "--width", "8", "--sigma-b", "nan"], ["--sigma-b"]),
-])
+@pytest.mark.parametrize(
+    "argv, words",
+    [
+        (["--activation", "swishy", "--depth", "10", "--width", "8"], ["swishy"]),
+        (["--activation", "tanh", "--depth", "0", "--width", "8"], ["--depth", "0"]),
+        (["--activation", "tanh", "--depth", "10", "--width", "0"], ["--width"]),
+        (
+            ["--activation", "tanh", "--depth", "10", "--width", "8", "--family", "conv"],
+            ["--family", "conv"],
+        ),
+        (
+            ["--activation", "tanh", "--depth", "10", "--width", "8", "--target-spread", "-1"],
+            ["--target-spread"],
+        ),
+        (
+            ["--activation", "tanh", "--depth", "10", "--width", "8", "--sigma-b", "nan"],
+            ["--sigma-b"],
+        ),
+    ],
+)
 def test_recommend_bad_input_exits_2(capsys, tmp_path, argv, words):
     out = tmp_path / "rec"
     code, _, err = _run(capsys, "recommend", *argv, "--out", str(out))

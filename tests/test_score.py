@@ -22,7 +22,7 @@ def test_score_formula_and_zeros():
     # I = E[min(lambda, 1/lambda)] = (0 + 0.25 + 1 + 0.25)/4 (score.py definition)
     assert math.isclose(sc.isometry, (0 + 0.25 + 1 + 0.25) / 4)
     assert math.isclose(sc.gain, lam.mean())
-    assert math.isclose(sc.normalised_variance, (lam ** 2).mean() / lam.mean() ** 2 - 1)
+    assert math.isclose(sc.normalised_variance, (lam**2).mean() / lam.mean() ** 2 - 1)
     assert math.isclose(sp.log_s_mean, np.mean(np.log([0.5, 1.0, 2.0])))
 
 
@@ -33,7 +33,7 @@ def test_gain_and_shape_are_separated():
     assert math.isclose(a.shape_score, b.shape_score, rel_tol=1e-12)
     assert math.isclose(a.normalised_variance, b.normalised_variance, rel_tol=1e-9)
     assert b.verdict == "vanishing" and a.verdict == "isometric"
-    assert math.isclose(b.gain_per_layer, a.gain_per_layer * 0.01 ** 0.25, rel_tol=1e-12)
+    assert math.isclose(b.gain_per_layer, a.gain_per_layer * 0.01**0.25, rel_tol=1e-12)
 
 
 def test_zero_threshold_is_matrix_rank_tolerance():

@@ -37,10 +37,15 @@ DEPTHS = [4, 8]
 def store(tmp_path_factory):
     """``(path, grid, points)`` of a swept store."""
     path = tmp_path_factory.mktemp("show") / "phase.sqlite"
-    grid = parse_grid({"name": "orchard-drone", "network": {"width": 12, "depth": 4, "activation": "tanh"},
-                       "analysis": {"inputs": 1, "seed": 11},
-                       "grid": {"init.sigma_w": SIGMA_W, "init.sigma_b": SIGMA_B,
-                                "network.depth": DEPTHS}}, source="<test grid>")
+    grid = parse_grid(
+        {
+            "name": "orchard-drone",
+            "network": {"width": 12, "depth": 4, "activation": "tanh"},
+            "analysis": {"inputs": 1, "seed": 11},
+            "grid": {"init.sigma_w": SIGMA_W, "init.sigma_b": SIGMA_B, "network.depth": DEPTHS},
+        },
+        source="<test grid>",
+    )
     summary = run_sweep(grid, path, workers=1)
     assert summary.computed == 12 and summary.failed == 0
     with Store.reader(path) as s:
@@ -55,8 +60,13 @@ def _run(args, capsys):
 
 
 def _point(points, sw, sb, depth):
-    (p,) = [p for p in points if p.settings["init.sigma_w"] == sw and p.settings["init.sigma_b"] == sb
-            and p.settings["network.depth"] == depth]
+    (p,) = [
+        p
+        for p in points
+        if p.settings["init.sigma_w"] == sw
+        and p.settings["init.sigma_b"] == sb
+        and p.settings["network.depth"] == depth
+    ]
     return p
 
 
@@ -70,12 +80,21 @@ def test_varied_keys_and_default_axes(store):
 
 def test_stored_numbers_are_those_of_analyze(store):
     _, grid, points = store
-    target = next(p for p in grid.points if p.values == {"init.sigma_w": 1.2, "init.sigma_b": 0.2,
-                                                         "network.depth": 8})
+    target = next(
+        p
+        for p in grid.points
+        if p.values == {"init.sigma_w": 1.2, "init.sigma_b": 0.2, "network.depth": 8}
+    )
     direct = flat_numbers(result_dict(analyze(target.spec)))
     stored = _point(points, 1.2, 0.2, 8).numbers
-    for name in ("score.isometry", "score.log10_gain", "score.log_s_std", "measured.log_s.mean",
-                 "predicted.q_star", "agreement.ks"):
+    for name in (
+        "score.isometry",
+        "score.log10_gain",
+        "score.log_s_std",
+        "measured.log_s.mean",
+        "predicted.q_star",
+        "agreement.ks",
+    ):
         assert stored[name] == pytest.approx(direct[name], rel=1e-12, abs=1e-300), name
 
 
@@ -96,8 +115,9 @@ def test_matrix_entries_are_the_stored_numbers(store):
 def test_missing_point_leaves_its_cell_empty_and_hatched(store):
     _, _, points = store
     gone = _point(points, 1.0, 0.2, 4)
-    m = v.metric_matrix([p for p in points if p is not gone], "init.sigma_w", "init.sigma_b",
-                        "score.isometry")
+    m = v.metric_matrix(
+        [p for p in points if p is not gone], "init.sigma_w", "init.sigma_b", "score.isometry"
+    )
     values = m.facets[0].values
     assert math.isnan(values[1, 1]) and np.isfinite(values).sum() == values.size - 1
     with warnings.catch_warnings():
@@ -114,12 +134,18 @@ def test_depth_curves_are_the_stored_numbers(store):
     assert len(curves) == len(SIGMA_W) * len(SIGMA_B)
     for c in curves:
         assert c.x.tolist() == DEPTHS
-        expect = [_point(points, c.fixed["init.sigma_w"], c.fixed["init.sigma_b"], d)
-                  .numbers["score.log_s_std"] for d in DEPTHS]
+        expect = [
+            _point(points, c.fixed["init.sigma_w"], c.fixed["init.sigma_b"], d).numbers[
+                "score.log_s_std"
+            ]
+            for d in DEPTHS
+        ]
         assert c.values.tolist() == expect
 
 
-@pytest.mark.parametrize("x,y", [("init.sigma_w", "init.sigma_b"), ("init.sigma_b", "init.sigma_w")])
+@pytest.mark.parametrize(
+    "x,y", [("init.sigma_w", "init.sigma_b"), ("init.sigma_b", "init.sigma_w")]
+)
 def test_critical_line_drawn_is_critical_point(store, x, y):
     _, _, points = store
     view = v.build_view(points, "s", (), x, y)
@@ -146,8 +172,12 @@ def test_critical_line_drawn_is_critical_point(store, x, y):
 def test_no_critical_line_for_other_axes_or_mixed_activations(store):
     _, _, points = store
     assert v.critical_curve(points, "init.sigma_w", "network.depth") is None
-    mixed = [dataclasses.replace(p, settings={**p.settings, "network.activation": "erf"})
-             if i == 0 else p for i, p in enumerate(points)]
+    mixed = [
+        dataclasses.replace(p, settings={**p.settings, "network.activation": "erf"})
+        if i == 0
+        else p
+        for i, p in enumerate(points)
+    ]
     assert v.critical_curve(mixed, "init.sigma_w", "init.sigma_b") is None
 
 
@@ -156,11 +186,14 @@ def test_ridge_rows_are_the_best_cells(store):
     view = v.build_view(points, "s", (), "init.sigma_w", "init.sigma_b")
     assert len(view.ridge) == len(SIGMA_B) * len(DEPTHS)
     for r in view.ridge:
-        row = {sw: _point(points, sw, r.sigma_b, r.fixed["network.depth"]).numbers["score.isometry"]
-               for sw in SIGMA_W}
+        row = {
+            sw: _point(points, sw, r.sigma_b, r.fixed["network.depth"]).numbers["score.isometry"]
+            for sw in SIGMA_W
+        }
         assert r.best_sigma_w == max(row, key=row.get)
         assert r.critical_sigma_w == pytest.approx(
-            critical_point("tanh", r.sigma_b).sigma_w, rel=1e-9)
+            critical_point("tanh", r.sigma_b).sigma_w, rel=1e-9
+        )
         assert r.nearest_sigma_w == min(SIGMA_W, key=lambda s: abs(s - r.critical_sigma_w))
 
 
@@ -169,29 +202,40 @@ def test_json_matrix_and_where(store, capsys):
     code, out, _ = _run(["show", path, "--json"], capsys)
     assert code == 0
     d = json.loads(out)
-    assert d["schema"] == "isoscope.show/1" and d["axes"] == {"x": "init.sigma_w", "y": "init.sigma_b"}
+    assert d["schema"] == "isoscope.show/1" and d["axes"] == {
+        "x": "init.sigma_w",
+        "y": "init.sigma_b",
+    }
     assert len(d["points"]) == 12 and d["metric"] == "score.isometry"
     for f in d["matrix"]["facets"]:
         for i, sb in enumerate(d["matrix"]["y"]):
             for j, sw in enumerate(d["matrix"]["x"]):
-                assert f["values"][i][j] == _point(points, sw, sb, f["fixed"]["network.depth"]) \
-                    .numbers["score.isometry"]
+                assert (
+                    f["values"][i][j]
+                    == _point(points, sw, sb, f["fixed"]["network.depth"]).numbers["score.isometry"]
+                )
     best = max((p for p in points), key=lambda p: p.numbers["score.isometry"])
     assert d["best"]["name"] == best.name
-    code, out, _ = _run(["show", path, "--json", "--where", "network.depth=8", "--metric",
-                         "measured.log_s.std"], capsys)
+    code, out, _ = _run(
+        ["show", path, "--json", "--where", "network.depth=8", "--metric", "measured.log_s.std"],
+        capsys,
+    )
     d = json.loads(out)
     assert code == 0 and len(d["points"]) == 6
     assert all(p["numbers"]["measured.log_s.std"] is not None for p in d["points"])
-    assert {_point(points, p["settings"]["init.sigma_w"], p["settings"]["init.sigma_b"], 8).key
-            for p in d["points"]} == {p["key"] for p in d["points"]}
+    assert {
+        _point(points, p["settings"]["init.sigma_w"], p["settings"]["init.sigma_b"], 8).key
+        for p in d["points"]
+    } == {p["key"] for p in d["points"]}
     assert [f["fixed"] for f in d["matrix"]["facets"]] == [{}]
 
 
 def test_terminal_matrix_rows_are_y(store, capsys):
     path, _, points = store
-    code, out, _ = _run(["show", path, "--x", "init.sigma_w", "--y", "init.sigma_b",
-                         "--where", "network.depth=4"], capsys)
+    code, out, _ = _run(
+        ["show", path, "--x", "init.sigma_w", "--y", "init.sigma_b", "--where", "network.depth=4"],
+        capsys,
+    )
     assert code == 0
     lines = [ln.split() for ln in out.splitlines()]
     rows = [ln for ln in lines if ln and ln[0] in ("0", "0.2")]
@@ -199,7 +243,8 @@ def test_terminal_matrix_rows_are_y(store, capsys):
     for r in rows:
         sb = float(r[0])
         assert [float(c) for c in r[1:]] == pytest.approx(
-            [_point(points, sw, sb, 4).numbers["score.isometry"] for sw in SIGMA_W], rel=1e-3)
+            [_point(points, sw, sb, 4).numbers["score.isometry"] for sw in SIGMA_W], rel=1e-3
+        )
 
 
 def test_csv_has_one_row_per_point_and_every_number(store, tmp_path, capsys):
@@ -217,7 +262,7 @@ def test_csv_has_one_row_per_point_and_every_number(store, tmp_path, capsys):
         p = by_name[r["name"]]
         assert float(r["score.isometry"]) == p.numbers["score.isometry"]
         assert float(r["init.sigma_w"]) == p.settings["init.sigma_w"]
-    assert not [f for f in tmp_path.iterdir() if f.name != "pts.csv"]   # no temporary left
+    assert not [f for f in tmp_path.iterdir() if f.name != "pts.csv"]  # no temporary left
 
 
 def test_report_folder_holds_the_figures(store, tmp_path, capsys):
@@ -237,16 +282,19 @@ def test_report_folder_holds_the_figures(store, tmp_path, capsys):
         assert len(list(csv.DictReader(f))) == 12
 
 
-@pytest.mark.parametrize("args,needle", [
-    (["--metric", "score.isometri"], "score.isometry"),
-    (["--x", "init.sigmaw", "--y", "init.sigma_b"], "init.sigma_w"),
-    (["--where", "network.dept=4"], "network.depth"),
-    (["--where", "network.depth=5"], "4, 8"),
-    (["--where", "network.depth"], "KEY=VALUE"),
-    (["--y", "init.sigma_b"], "--x"),
-    (["--x", "init.sigma_w", "--y", "init.sigma_w"], "two different keys"),
-    (["--x", "init.sigma_w", "--y", "init.sigma_b", "--metric", "score.verdict"], "is text"),
-])
+@pytest.mark.parametrize(
+    "args,needle",
+    [
+        (["--metric", "score.isometri"], "score.isometry"),
+        (["--x", "init.sigmaw", "--y", "init.sigma_b"], "init.sigma_w"),
+        (["--where", "network.dept=4"], "network.depth"),
+        (["--where", "network.depth=5"], "4, 8"),
+        (["--where", "network.depth"], "KEY=VALUE"),
+        (["--y", "init.sigma_b"], "--x"),
+        (["--x", "init.sigma_w", "--y", "init.sigma_w"], "two different keys"),
+        (["--x", "init.sigma_w", "--y", "init.sigma_b", "--metric", "score.verdict"], "is text"),
+    ],
+)
 def test_bad_requests_exit_2_naming_the_nearest(store, capsys, args, needle):
     path, _, _ = store
     code, out, err = _run(["show", path, *args], capsys)
@@ -273,5 +321,7 @@ def test_missing_store_or_foreign_file_exit_2(tmp_path, capsys):
 def test_csv_path_refused_before_the_store_is_read(tmp_path, capsys):
     code, _, err = _run(["show", tmp_path / "none.sqlite", "--csv", tmp_path], capsys)
     assert code == 2 and "--csv" in err and "is a folder" in err
-    code, _, err = _run(["show", tmp_path / "none.sqlite", "--csv", tmp_path / "no" / "x.csv"], capsys)
+    code, _, err = _run(
+        ["show", tmp_path / "none.sqlite", "--csv", tmp_path / "no" / "x.csv"], capsys
+    )
     assert code == 2 and "does not exist" in err and "--csv" in err

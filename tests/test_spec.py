@@ -5,10 +5,15 @@ import pytest
 from isoscope.errors import InputError
 from isoscope.spec import parse_spec
 
-PLAIN = {"name": "p", "network": {"width": 16, "depth": 3, "activation": "tanh"},
-         "init": {"weights": "gaussian", "sigma_w": 1.1, "sigma_b": 0.05}}
-RESIDUAL = {"name": "r", "network": {"family": "residual", "width": 16, "depth": 3,
-                                     "activation": "relu", "alpha": 0.25}}
+PLAIN = {
+    "name": "p",
+    "network": {"width": 16, "depth": 3, "activation": "tanh"},
+    "init": {"weights": "gaussian", "sigma_w": 1.1, "sigma_b": 0.05},
+}
+RESIDUAL = {
+    "name": "r",
+    "network": {"family": "residual", "width": 16, "depth": 3, "activation": "relu", "alpha": 0.25},
+}
 
 
 @pytest.mark.parametrize("data", [PLAIN, RESIDUAL])
@@ -32,9 +37,9 @@ def test_replace_is_validated():
 
 def test_seed_range_is_uint64():
     # JAX threefry keys hold two uint32 words: seeds 0 .. 2^64 - 1
-    assert parse_spec({**PLAIN, "analysis": {"seed": 2 ** 64 - 1}}).analysis.seed == 2 ** 64 - 1
+    assert parse_spec({**PLAIN, "analysis": {"seed": 2**64 - 1}}).analysis.seed == 2**64 - 1
     with pytest.raises(InputError, match=r"analysis.seed.*2\^64 - 1"):
-        parse_spec({**PLAIN, "analysis": {"seed": 2 ** 64}})
+        parse_spec({**PLAIN, "analysis": {"seed": 2**64}})
 
 
 def test_input_file_path_survives_a_round_trip(tmp_path, monkeypatch):
@@ -46,13 +51,14 @@ def test_input_file_path_survives_a_round_trip(tmp_path, monkeypatch):
     assert again.analysis.input_file == spec.analysis.input_file == str(tmp_path / "d" / "x.npy")
 
 
-@pytest.mark.parametrize("seed", [0, 5, 2 ** 32 + 7, 2 ** 62 + 3, 2 ** 63 - 1])
+@pytest.mark.parametrize("seed", [0, 5, 2**32 + 7, 2**62 + 3, 2**63 - 1])
 def test_seed_key_is_prngkey_below_2_63(seed):
     # the same seed keeps its numbers: jax.random.PRNGKey(seed) is the reference
     import jax
     import numpy as np
 
     from isoscope.analysis import seed_key
+
     assert np.array_equal(np.asarray(seed_key(seed)), np.asarray(jax.random.PRNGKey(seed)))
 
 
@@ -60,19 +66,36 @@ def test_seed_keys_beyond_2_63_are_distinct_words():
     import numpy as np
 
     from isoscope.analysis import seed_key
-    assert np.asarray(seed_key(2 ** 64 - 1)).tolist() == [2 ** 32 - 1, 2 ** 32 - 1]
-    assert np.asarray(seed_key(2 ** 63)).tolist() == [2 ** 31, 0]
+
+    assert np.asarray(seed_key(2**64 - 1)).tolist() == [2**32 - 1, 2**32 - 1]
+    assert np.asarray(seed_key(2**63)).tolist() == [2**31, 0]
 
 
-@pytest.mark.parametrize("name", ["plain", 'quote " and \\ backslash', "line\nbreak\ttab",
-                                  "unicode: σ_w ≈ 1 · 深度", "<script>alert(1)</script>", "bell\x07"])
+@pytest.mark.parametrize(
+    "name",
+    [
+        "plain",
+        'quote " and \\ backslash',
+        "line\nbreak\ttab",
+        "unicode: σ_w ≈ 1 · 深度",
+        "<script>alert(1)</script>",
+        "bell\x07",
+    ],
+)
 def test_spec_toml_reads_back_to_the_same_spec(name):
     import tomllib
+
     from isoscope.spec import spec_toml
-    spec = parse_spec({"name": name, "description": name + " (described)",
-                       "network": {"family": "residual", "alpha": 0.125, "depth": 7},
-                       "init": {"weights": "gaussian", "sigma_w": 1e-05, "sigma_b": 0.1},
-                       "analysis": {"seed": 2 ** 64 - 1}})
+
+    spec = parse_spec(
+        {
+            "name": name,
+            "description": name + " (described)",
+            "network": {"family": "residual", "alpha": 0.125, "depth": 7},
+            "init": {"weights": "gaussian", "sigma_w": 1e-05, "sigma_b": 0.1},
+            "analysis": {"seed": 2**64 - 1},
+        }
+    )
     back = parse_spec(tomllib.loads(spec_toml(spec)))
     assert back.to_dict() == spec.to_dict()
 
@@ -80,9 +103,13 @@ def test_spec_toml_reads_back_to_the_same_spec(name):
 def test_spec_toml_round_trips_every_example():
     import pathlib
     import tomllib
+
     from isoscope.spec import load_spec, spec_toml
+
     root = pathlib.Path(__file__).resolve().parent.parent
-    paths = sorted((root / "examples").glob("*.toml")) + sorted((root / "src/isoscope/scenarios").glob("*.toml"))
+    paths = sorted((root / "examples").glob("*.toml")) + sorted(
+        (root / "src/isoscope/scenarios").glob("*.toml")
+    )
     assert paths
     for path in paths:
         spec = load_spec(path)

@@ -30,11 +30,14 @@ def _with(section, key, value):
     return data
 
 
-@pytest.mark.parametrize("received, allowed", [
-    ("tahn", ["linear", "tanh", "relu"]),
-    ("ortogonal", ["gaussian", "orthogonal", "uniform"]),
-    ("Residul", ["plain", "residual", "conv1d"]),
-])
+@pytest.mark.parametrize(
+    "received, allowed",
+    [
+        ("tahn", ["linear", "tanh", "relu"]),
+        ("ortogonal", ["gaussian", "orthogonal", "uniform"]),
+        ("Residul", ["plain", "residual", "conv1d"]),
+    ],
+)
 def test_suggestion_is_difflibs_nearest_name(received, allowed):
     # reference: difflib.get_close_matches(received.lower(), allowed, n=1)
     expected = difflib.get_close_matches(received.lower(), allowed, n=1)[0]
@@ -46,16 +49,19 @@ def test_nothing_close_gets_no_suggestion():
     assert did_you_mean("zzzz", ["tanh", "relu"]) is None
 
 
-@pytest.mark.parametrize("data, key, nearest", [
-    (_with("network", "activaton", "tanh"), "network.activaton", "activation"),
-    (_with("init", "sigmaw", 1.0), "init.sigmaw", "sigma_w"),
-    (_with("analysis", "rout", "dense"), "analysis.rout", "route"),
-    ({**BASE, "netwrk": {}}, "netwrk", "network"),
-    (_with("network", "family", "residul"), "network.family", "residual"),
-    (_with("init", "weights", "orthogonl"), "init.weights", "orthogonal"),
-    (_with("analysis", "route", "matrixfree"), "analysis.route", "matrix-free"),
-    (_with("analysis", "dtype", "float23"), "analysis.dtype", "float32"),
-])
+@pytest.mark.parametrize(
+    "data, key, nearest",
+    [
+        (_with("network", "activaton", "tanh"), "network.activaton", "activation"),
+        (_with("init", "sigmaw", 1.0), "init.sigmaw", "sigma_w"),
+        (_with("analysis", "rout", "dense"), "analysis.rout", "route"),
+        ({**BASE, "netwrk": {}}, "netwrk", "network"),
+        (_with("network", "family", "residul"), "network.family", "residual"),
+        (_with("init", "weights", "orthogonl"), "init.weights", "orthogonal"),
+        (_with("analysis", "route", "matrixfree"), "analysis.route", "matrix-free"),
+        (_with("analysis", "dtype", "float23"), "analysis.dtype", "float32"),
+    ],
+)
 def test_spec_typos_name_the_key_and_the_nearest_valid_name(data, key, nearest):
     err = _spec_error(data)
     assert err.key == key
@@ -76,14 +82,16 @@ def test_misspelled_command_and_flag_value(capsys):
         cli.main(["analyse", "x.toml"])
     assert e.value.code == 2
     assert "did you mean 'analyze'?" in capsys.readouterr().err
-    code = cli.main(["recommend", "--activation", "tanh", "--family", "residul",
-                     "--depth", "4", "--width", "8"])
+    code = cli.main(
+        ["recommend", "--activation", "tanh", "--family", "residul", "--depth", "4", "--width", "8"]
+    )
     assert code == 2
     assert "did you mean 'residual'?" in capsys.readouterr().err.lower()
 
 
 def _subparsers(parser):
     import argparse
+
     (action,) = [a for a in parser._actions if isinstance(a, argparse._SubParsersAction)]
     return action.choices
 
@@ -101,7 +109,7 @@ def test_every_commands_help_ends_with_two_or_three_examples_that_parse():
         examples = cli.EXAMPLES[name]
         assert 2 <= len(examples) <= 3, name
         assert text[-len(examples) - 1] == "examples:", name
-        assert [t.strip() for t in text[-len(examples):]] == examples, name
+        assert [t.strip() for t in text[-len(examples) :]] == examples, name
         for line in examples:
             words = shlex.split(line)
             assert words[0] == "isoscope"
@@ -109,5 +117,5 @@ def test_every_commands_help_ends_with_two_or_three_examples_that_parse():
                 if w.startswith("examples/"):
                     assert (root / w).is_file(), f"{line}: {w} is not in the repository"
             if "--help" not in words:
-                args = parser.parse_args(words[1:])   # exits 2 on an unknown flag
+                args = parser.parse_args(words[1:])  # exits 2 on an unknown flag
                 assert args.command == (words[1] if name == "isoscope" else name)

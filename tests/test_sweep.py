@@ -11,7 +11,6 @@ from __future__ import annotations
 import hashlib
 import itertools
 import json
-import os
 import signal
 import sqlite3
 import subprocess
@@ -55,8 +54,10 @@ def _numbers(store_path: Path) -> dict[str, dict]:
     """``{point_key: numbers}`` without the wall-clock seconds (the only numbers allowed to
     differ between runs)."""
     with Store.reader(store_path) as store:
-        return {p.key: {k: v for k, v in p.numbers.items() if not k.startswith("seconds.")}
-                for p in store.points()}
+        return {
+            p.key: {k: v for k, v in p.numbers.items() if not k.startswith("seconds.")}
+            for p in store.points()
+        }
 
 
 def _sha(path: Path) -> str:
@@ -64,8 +65,13 @@ def _sha(path: Path) -> str:
 
 
 def _cli(*args, env=None, **kw):
-    return subprocess.run([sys.executable, "-m", "isoscope", *map(str, args)], capture_output=True,
-                          text=True, env=env, **kw)
+    return subprocess.run(
+        [sys.executable, "-m", "isoscope", *map(str, args)],
+        capture_output=True,
+        text=True,
+        env=env,
+        **kw,
+    )
 
 
 # ----------------------------------------------------------------------------- grids
@@ -77,9 +83,17 @@ def test_grid_is_the_product_of_its_lists_with_zipped_keys_together(tmp_path):
         """)
     grid = load_grid(_write(tmp_path, text))
     lists = [[1.0, 1.3], [2, 3, 4], ["orthogonal", "gaussian"], [(0.0, 3), (0.1, 4)]]
-    expected = [(a, b, c, *z) for a, b, c, z in itertools.product(*lists)]   # itertools.product
-    got = [(p.values["init.sigma_w"], p.values["network.depth"], p.values["init.weights"],
-            p.values["init.sigma_b"], p.values["analysis.seed"]) for p in grid.points]
+    expected = [(a, b, c, *z) for a, b, c, z in itertools.product(*lists)]  # itertools.product
+    got = [
+        (
+            p.values["init.sigma_w"],
+            p.values["network.depth"],
+            p.values["init.weights"],
+            p.values["init.sigma_b"],
+            p.values["analysis.seed"],
+        )
+        for p in grid.points
+    ]
     assert got == expected
     assert len({p.key for p in grid.points}) == 24
     p = grid.points[5]
@@ -93,16 +107,19 @@ def test_unquoted_dotted_keys_mean_the_same(tmp_path):
     assert [p.key for p in a.points] == [p.key for p in b.points]
 
 
-@pytest.mark.parametrize("grid_lines, key, words", [
-    ('"init.sigma_ww" = [1.0]', "grid.init.sigma_ww", "did you mean 'init.sigma_w'"),
-    ('"init.sigma_w" = []', "grid.init.sigma_w", "empty"),
-    ('"init.sigma_w" = 1.2', "grid.init.sigma_w", "not a list"),
-    ('"init.sigma_w" = [1.0, -1.0]', "grid.init.sigma_w", "negative"),
-    ('"init.sigma_w" = [1.0, 1.0]', "grid.init.sigma_w", "twice"),
-    ('"network.activation" = ["tanh", "tahn"]', "grid.network.activation", "tahn"),
-    ('"name" = ["a", "b"]', "grid.name", "labels"),
-    ('"network.depth" = [2, 0]', "grid.network.depth", "too small"),
-])
+@pytest.mark.parametrize(
+    "grid_lines, key, words",
+    [
+        ('"init.sigma_ww" = [1.0]', "grid.init.sigma_ww", "did you mean 'init.sigma_w'"),
+        ('"init.sigma_w" = []', "grid.init.sigma_w", "empty"),
+        ('"init.sigma_w" = 1.2', "grid.init.sigma_w", "not a list"),
+        ('"init.sigma_w" = [1.0, -1.0]', "grid.init.sigma_w", "negative"),
+        ('"init.sigma_w" = [1.0, 1.0]', "grid.init.sigma_w", "twice"),
+        ('"network.activation" = ["tanh", "tahn"]', "grid.network.activation", "tahn"),
+        ('"name" = ["a", "b"]', "grid.name", "labels"),
+        ('"network.depth" = [2, 0]', "grid.network.depth", "too small"),
+    ],
+)
 def test_bad_grids_are_refused_naming_the_key(tmp_path, grid_lines, key, words):
     text = GRID.split("[grid]")[0] + "[grid]\n" + grid_lines + "\n"
     with pytest.raises(InputError) as e:
@@ -134,8 +151,12 @@ def test_values_that_resolve_to_one_design_are_refused():
 # ----------------------------------------------------------------------------- bad input, exit 2
 def test_bad_grid_exits_2_and_leaves_the_store_untouched(tmp_path):
     store = tmp_path / "s.sqlite"
-    good = _write(tmp_path, GRID.replace('"network.depth" = [2, 3, 4]', '"network.depth" = [2]')
-                  .replace('["orthogonal", "gaussian"]', '["orthogonal"]'))
+    good = _write(
+        tmp_path,
+        GRID.replace('"network.depth" = [2, 3, 4]', '"network.depth" = [2]').replace(
+            '["orthogonal", "gaussian"]', '["orthogonal"]'
+        ),
+    )
     run_sweep(load_grid(good), store, workers=1)
     before = _sha(store)
     bad = _write(tmp_path, GRID.replace("[1.0, 1.3]", "[1.0, -2.0]"), "bad.toml")
@@ -180,7 +201,8 @@ def test_a_grid_too_large_for_the_memory_exits_2_before_anything_runs(tmp_path):
 def test_a_scheduler_that_does_not_answer_exits_2_and_writes_nothing(tmp_path):
     pytest.importorskip("distributed")
     import socket
-    with socket.socket() as s:        # a port on loopback that nothing listens on
+
+    with socket.socket() as s:  # a port on loopback that nothing listens on
         s.bind(("127.0.0.1", 0))
         port = s.getsockname()[1]
     grid = _write(tmp_path)
@@ -224,10 +246,15 @@ def test_store_layout(reference):
     con = sqlite3.connect(store)
     assert con.execute("PRAGMA journal_mode").fetchone()[0] == "wal"
     assert con.execute("SELECT value FROM meta WHERE key = 'schema'").fetchone()[0] == SCHEMA
-    assert con.execute("SELECT COUNT(*), COUNT(DISTINCT point_key) FROM points").fetchone() == (12, 12)
-    row = con.execute("SELECT n.value FROM points p JOIN numbers n ON n.point_id = p.id "
-                      "WHERE p.point_key = ? AND n.name = 'score.isometry'",
-                      (grid.points[0].key,)).fetchone()
+    assert con.execute("SELECT COUNT(*), COUNT(DISTINCT point_key) FROM points").fetchone() == (
+        12,
+        12,
+    )
+    row = con.execute(
+        "SELECT n.value FROM points p JOIN numbers n ON n.point_id = p.id "
+        "WHERE p.point_key = ? AND n.name = 'score.isometry'",
+        (grid.points[0].key,),
+    ).fetchone()
     assert 0.0 <= row[0] <= 1.0
     keys = {k for (k,) in con.execute("SELECT DISTINCT key FROM settings")}
     assert {"init.sigma_w", "network.depth", "init.weights", "analysis.seed"} <= keys
@@ -254,7 +281,9 @@ def test_a_local_dask_cluster_stores_the_same_numbers(reference, tmp_path):
     assert _numbers(dask) == _numbers(store)
 
 
-def test_the_same_grid_again_adds_nothing_and_a_wider_grid_adds_only_the_new_points(reference, tmp_path):
+def test_the_same_grid_again_adds_nothing_and_a_wider_grid_adds_only_the_new_points(
+    reference, tmp_path
+):
     grid, store = reference
     copy = tmp_path / "copy.sqlite"
     copy.write_bytes(store.read_bytes())
@@ -290,7 +319,7 @@ def test_a_failed_point_is_stored_with_its_error_and_retried_on_request(tmp_path
         failed = [p for p in st.points() if p.status == "failed"]
     assert len(failed) == 1 and failed[0].numbers == {} and "gust.npy" in failed[0].error
     np.save(tmp_path / "gust.npy", 2 * x)
-    assert run_sweep(grid, store, workers=1).skipped == 2          # not retried by default
+    assert run_sweep(grid, store, workers=1).skipped == 2  # not retried by default
     retried = run_sweep(grid, store, workers=1, retry_failed=True)
     assert (retried.computed, retried.failed, retried.stored) == (1, 0, 2)
     with Store.reader(store) as st:
@@ -323,16 +352,31 @@ def test_a_killed_sweep_resumes_to_the_same_store(reference, tmp_path):
     grid_text, store = (tmp_path / "grid.toml"), tmp_path / "killed.sqlite"
     grid_text.write_text(GRID, encoding="utf-8")
     ref_grid, ref_store = reference
-    command = [sys.executable, "-m", "isoscope", "sweep", str(grid_text), "--store", str(store),
-               "--workers", "2"]
-    for stop_after, sig in ((None, signal.SIGKILL), (3, signal.SIGKILL), (7, signal.SIGKILL),
-                            (9, signal.SIGINT)):
+    command = [
+        sys.executable,
+        "-m",
+        "isoscope",
+        "sweep",
+        str(grid_text),
+        "--store",
+        str(store),
+        "--workers",
+        "2",
+    ]
+    for stop_after, sig in (
+        (None, signal.SIGKILL),
+        (3, signal.SIGKILL),
+        (7, signal.SIGKILL),
+        (9, signal.SIGINT),
+    ):
         proc = subprocess.Popen(command, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
         deadline = time.monotonic() + 240
         if stop_after is None:
-            time.sleep(1.5)                                # while the workers start
+            time.sleep(1.5)  # while the workers start
         else:
-            while _stored(store) < stop_after and time.monotonic() < deadline and proc.poll() is None:
+            while (
+                _stored(store) < stop_after and time.monotonic() < deadline and proc.poll() is None
+            ):
                 time.sleep(0.05)
         kids = _children(proc.pid)
         proc.send_signal(sig)
@@ -343,12 +387,18 @@ def test_a_killed_sweep_resumes_to_the_same_store(reference, tmp_path):
         else:
             assert proc.returncode == -signal.SIGKILL
         time.sleep(0.5)
-        alive = [k for k in kids if Path(f"/proc/{k}").exists()
-                 and "Z" not in Path(f"/proc/{k}/stat").read_text().split()[2]]
+        alive = [
+            k
+            for k in kids
+            if Path(f"/proc/{k}").exists()
+            and "Z" not in Path(f"/proc/{k}/stat").read_text().split()[2]
+        ]
         assert alive == [], "workers outlived their coordinator"
         con = sqlite3.connect(store) if store.exists() else None
         if con is not None:
-            n, distinct = con.execute("SELECT COUNT(*), COUNT(DISTINCT point_key) FROM points").fetchone()
+            n, distinct = con.execute(
+                "SELECT COUNT(*), COUNT(DISTINCT point_key) FROM points"
+            ).fetchone()
             assert n == distinct
             con.close()
     final = subprocess.run(command, capture_output=True, text=True, timeout=600)
@@ -362,13 +412,28 @@ def test_a_killed_sweep_resumes_to_the_same_store(reference, tmp_path):
     assert "running" not in statuses
 
 
-def test_a_second_sweep_on_a_busy_store_is_refused_and_another_store_is_unaffected(reference, tmp_path):
+def test_a_second_sweep_on_a_busy_store_is_refused_and_another_store_is_unaffected(
+    reference, tmp_path
+):
     grid, ref_store = reference
     path = _write(tmp_path)
     busy, other = tmp_path / "busy.sqlite", tmp_path / "other.sqlite"
-    first = subprocess.Popen([sys.executable, "-m", "isoscope", "sweep", str(path), "--store",
-                              str(busy), "--workers", "1"], stdout=subprocess.PIPE,
-                             stderr=subprocess.PIPE, text=True)
+    first = subprocess.Popen(
+        [
+            sys.executable,
+            "-m",
+            "isoscope",
+            "sweep",
+            str(path),
+            "--store",
+            str(busy),
+            "--workers",
+            "1",
+        ],
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
+        text=True,
+    )
     try:
         deadline = time.monotonic() + 120
         while not Path(f"{busy}.lock").exists() and time.monotonic() < deadline:
@@ -403,8 +468,9 @@ def test_the_isometry_ridge_follows_the_critical_line(tmp_path):
     sb = sorted({p.settings["init.sigma_b"] for p in points})
     score = np.full((len(sb), len(sw)), np.nan)
     for p in points:
-        score[sb.index(p.settings["init.sigma_b"]), sw.index(p.settings["init.sigma_w"])] = \
+        score[sb.index(p.settings["init.sigma_b"]), sw.index(p.settings["init.sigma_w"])] = (
             p.numbers["score.isometry"]
+        )
     assert np.all(np.isfinite(score))
     tanh = get_activation("tanh")
     ridge = []

@@ -11,12 +11,16 @@ from isoscope.spec import parse_spec
 def test_defaults_and_overrides():
     assert threads.thread_policy({}) == threads.ThreadPolicy(1, None, "default")
     p = threads.thread_policy({threads.BLAS_ENV: "2", threads.XLA_ENV: " 3 "})
-    assert (p.blas, p.xla) == (2, 3) and threads.BLAS_ENV in p.source and threads.XLA_ENV in p.source
+    assert (
+        (p.blas, p.xla) == (2, 3) and threads.BLAS_ENV in p.source and threads.XLA_ENV in p.source
+    )
 
 
 @pytest.mark.parametrize("raw", ["0", "-1", "two", "1.5"])
 def test_bad_thread_counts_are_input_errors(raw):
-    with pytest.raises(InputError, match=f"{threads.BLAS_ENV} = '{raw}' is not a thread count.*>= 1"):
+    with pytest.raises(
+        InputError, match=f"{threads.BLAS_ENV} = '{raw}' is not a thread count.*>= 1"
+    ):
         threads.thread_policy({threads.BLAS_ENV: raw})
 
 

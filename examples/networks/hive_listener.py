@@ -26,8 +26,12 @@ def build(width):
         layers = []
         for k in jax.random.split(key, DEPTH):
             kw, kb = jax.random.split(k)
-            layers.append({"w": orthogonal(kw, (width, width), dtype),
-                           "b": SIGMA_B * jax.random.normal(kb, (width,), dtype)})
+            layers.append(
+                {
+                    "w": orthogonal(kw, (width, width), dtype),
+                    "b": SIGMA_B * jax.random.normal(kb, (width,), dtype),
+                }
+            )
         return layers
 
     def apply(layers, x):
@@ -35,6 +39,8 @@ def build(width):
             x = jnp.tanh(layer["w"] @ x + layer["b"])
         return x
 
-    equivalent = {"network": {"family": "plain", "depth": DEPTH, "activation": "tanh"},
-                  "init": {"weights": "orthogonal", "sigma_w": SIGMA_W, "sigma_b": SIGMA_B}}
+    equivalent = {
+        "network": {"family": "plain", "depth": DEPTH, "activation": "tanh"},
+        "init": {"weights": "orthogonal", "sigma_w": SIGMA_W, "sigma_b": SIGMA_B},
+    }
     return init, apply, equivalent

@@ -20,12 +20,13 @@ DEPTH = 6
 
 def build(width):
     """``(init, apply)`` for an Equinox MLP mapping ``width`` features to ``width`` outputs."""
-    def make(key, dtype):
-        return eqx.nn.MLP(width, width, width, DEPTH, activation=jnp.tanh, key=key,
-                          dtype=dtype)
 
-    static = eqx.partition(eqx.filter_eval_shape(make, jax.random.PRNGKey(0), jnp.float32),
-                           eqx.is_array)[1]
+    def make(key, dtype):
+        return eqx.nn.MLP(width, width, width, DEPTH, activation=jnp.tanh, key=key, dtype=dtype)
+
+    static = eqx.partition(
+        eqx.filter_eval_shape(make, jax.random.PRNGKey(0), jnp.float32), eqx.is_array
+    )[1]
 
     def init(key, dtype):
         return eqx.partition(make(key, dtype), eqx.is_array)[0]

@@ -22,6 +22,7 @@ def _import_jax():
     """
     if _threading.current_thread() is not _threading.main_thread():
         import jax
+
         return jax
     pending = []
     previous = _signal.signal(_signal.SIGINT, lambda signum, frame: pending.append(signum))
@@ -39,12 +40,23 @@ _jax.config.update("jax_enable_x64", True)
 
 from isoscope.activations import Activation, activation_names, get_activation  # noqa: E402
 from isoscope.errors import (  # noqa: E402
-    FiniteWidthWarning, InputError, IsoscopeWarning, NumericalFaultWarning, TheoryError)
+    FiniteWidthWarning,
+    InputError,
+    IsoscopeWarning,
+    NumericalFaultWarning,
+    TheoryError,
+)
 
 __version__ = "0.1.0"
 
 __all__ = [
-    "Activation", "activation_names", "get_activation",
-    "InputError", "TheoryError", "IsoscopeWarning", "FiniteWidthWarning", "NumericalFaultWarning",
+    "Activation",
+    "activation_names",
+    "get_activation",
+    "InputError",
+    "TheoryError",
+    "IsoscopeWarning",
+    "FiniteWidthWarning",
+    "NumericalFaultWarning",
     "__version__",
 ]

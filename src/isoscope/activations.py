@@ -32,8 +32,14 @@ import numpy as np
 
 from isoscope.errors import InputError, did_you_mean, hints
 
-__all__ = ["Activation", "get_activation", "activation_names", "SELU_ALPHA", "SELU_LAMBDA",
-           "LEAKY_SLOPE"]
+__all__ = [
+    "Activation",
+    "get_activation",
+    "activation_names",
+    "SELU_ALPHA",
+    "SELU_LAMBDA",
+    "LEAKY_SLOPE",
+]
 
 # Klambauer, Unterthiner, Mayr, Hochreiter 2017, "Self-normalizing neural networks", eq. (14).
 SELU_ALPHA = 1.6732632423543772848170429917
@@ -76,25 +82,29 @@ class Activation:
         """The name, with the slope for leaky ReLU (``"leaky-relu (slope 0.2)"``)."""
         return self.name if self.slope is None else f"{self.name} (slope {self.slope:g})"
 
-    def with_slope(self, slope: float) -> "Activation":
+    def with_slope(self, slope: float) -> Activation:
         """The leaky ReLU ``max(h, a h)`` with slope ``a = slope`` (one cached object per slope).
 
         Raises:
           InputError: for an activation other than leaky ReLU, or a slope that is not finite.
         """
         if self.name != "leaky-relu":
-            raise InputError(f"a slope was given for activation {self.name!r}",
-                             expected="a slope only with activation 'leaky-relu'",
-                             hint="remove the slope, or use activation = \"leaky-relu\"",
-                             key="network.leaky_slope")
+            raise InputError(
+                f"a slope was given for activation {self.name!r}",
+                expected="a slope only with activation 'leaky-relu'",
+                hint='remove the slope, or use activation = "leaky-relu"',
+                key="network.leaky_slope",
+            )
         try:
             a = float(slope)
         except (TypeError, ValueError):
             a = math.nan
         if isinstance(slope, bool) or not math.isfinite(a):
-            raise InputError(f"leaky-ReLU slope {slope!r} is not a finite number",
-                             expected=f"a finite real slope a of max(h, a h) (default {LEAKY_SLOPE})",
-                             key="network.leaky_slope")
+            raise InputError(
+                f"leaky-ReLU slope {slope!r} is not a finite number",
+                expected=f"a finite real slope a of max(h, a h) (default {LEAKY_SLOPE})",
+                key="network.leaky_slope",
+            )
         return _leaky_row(a)
 
     def log_dphi_sq(self, h: jax.Array) -> jax.Array:
@@ -125,7 +135,9 @@ class Activation:
         """phi'(h) elementwise, by ``jax.grad`` of the scalar function."""
         return _elementwise_grad(self.fn)(h)
 
-    def numpy_pair(self) -> tuple[Callable[[np.ndarray], np.ndarray], Callable[[np.ndarray], np.ndarray]]:
+    def numpy_pair(
+        self,
+    ) -> tuple[Callable[[np.ndarray], np.ndarray], Callable[[np.ndarray], np.ndarray]]:
         """float64 NumPy callables ``(phi, phi')`` for quadrature (jit-compiled once per activation)."""
         return _numpy_callables(self)[:2]
 
@@ -235,21 +247,33 @@ _ROWS = (
     Activation("tanh", jnp.tanh, (), None, True, "hyperbolic tangent", _log_tanh_dsq),
     Activation("hard-tanh", _hard_tanh, (-1.0, 1.0), (0.0, 1.0), True, "clip(h, -1, 1)"),
     Activation("relu", _relu, (0.0,), (0.0, 1.0), False, "max(h, 0)"),
-    None,   # leaky-relu: _leaky_row(LEAKY_SLOPE), filled in below
+    None,  # leaky-relu: _leaky_row(LEAKY_SLOPE), filled in below
     Activation("erf", jsp.erf, (), None, True, "error function", _log_erf_dsq),
-    Activation("sigmoid", jax.nn.sigmoid, (), None, False, "logistic 1/(1 + exp(-h))",
-               lambda h: 2.0 * _log_sigmoid_d(h)),
-    Activation("centred-sigmoid", lambda h: 4.0 * jax.nn.sigmoid(h) - 2.0, (), None, True,
-               "4 sigmoid(h) - 2 = 2 tanh(h/2)", _log_centred_sigmoid_dsq),
-    Activation("selu", _selu, (0.0,), None, False, "scaled exponential linear unit",
-               _log_selu_dsq),
+    Activation(
+        "sigmoid",
+        jax.nn.sigmoid,
+        (),
+        None,
+        False,
+        "logistic 1/(1 + exp(-h))",
+        lambda h: 2.0 * _log_sigmoid_d(h),
+    ),
+    Activation(
+        "centred-sigmoid",
+        lambda h: 4.0 * jax.nn.sigmoid(h) - 2.0,
+        (),
+        None,
+        True,
+        "4 sigmoid(h) - 2 = 2 tanh(h/2)",
+        _log_centred_sigmoid_dsq,
+    ),
+    Activation("selu", _selu, (0.0,), None, False, "scaled exponential linear unit", _log_selu_dsq),
     Activation("gelu", _gelu, (), None, False, "h Phi(h), Phi the normal CDF", _log_gelu_dsq),
-    Activation("silu", _silu, (), None, False, "h sigmoid(h) (also called swish)",
-               _log_silu_dsq),
+    Activation("silu", _silu, (), None, False, "h sigmoid(h) (also called swish)", _log_silu_dsq),
 )
 
 
-@functools.lru_cache(maxsize=None)
+@functools.cache
 def _leaky_row(slope: float) -> Activation:
     """The leaky-ReLU row ``max(h, a h)`` for one slope a (cached: one object per slope)."""
     a = float(slope)
@@ -258,14 +282,27 @@ def _leaky_row(slope: float) -> Activation:
         return jnp.where(h > 0, h, a * h)
 
     values = tuple(sorted({a, 1.0}))
-    return Activation("leaky-relu", leaky, (0.0,), values, a == 1.0,
-                      f"max(h, {a:g} h) for h > 0 and h < 0 (slope a = {a:g})", None, a)
+    return Activation(
+        "leaky-relu",
+        leaky,
+        (0.0,),
+        values,
+        a == 1.0,
+        f"max(h, {a:g} h) for h > 0 and h < 0 (slope a = {a:g})",
+        None,
+        a,
+    )
 
 
 _ROWS = tuple(_leaky_row(LEAKY_SLOPE) if a is None else a for a in _ROWS)
 _REGISTRY: dict[str, Activation] = {a.name: a for a in _ROWS}
-_ALIASES = {"swish": "silu", "hardtanh": "hard-tanh", "leaky_relu": "leaky-relu",
-            "hard_tanh": "hard-tanh", "identity": "linear"}
+_ALIASES = {
+    "swish": "silu",
+    "hardtanh": "hard-tanh",
+    "leaky_relu": "leaky-relu",
+    "hard_tanh": "hard-tanh",
+    "identity": "linear",
+}
 
 
 def activation_names() -> tuple[str, ...]:
@@ -294,14 +331,16 @@ def get_activation(name: str | Activation, slope: float | None = None) -> Activa
             raise InputError(
                 f"unknown activation {name!r}",
                 expected=f"one of {', '.join(_REGISTRY)}",
-                hint=hints(did_you_mean(name, [*_REGISTRY, *_ALIASES]),
-                           "check the spelling, or register a new Activation row in isoscope/activations.py"),
+                hint=hints(
+                    did_you_mean(name, [*_REGISTRY, *_ALIASES]),
+                    "check the spelling, or register a new Activation row in isoscope/activations.py",
+                ),
             )
         act = _REGISTRY[key]
     return act if slope is None else act.with_slope(slope)
 
 
-@functools.lru_cache(maxsize=None)
+@functools.cache
 def _numpy_callables(act: Activation):
     """``(phi, phi', ln phi'^2)`` as float64 NumPy callables, compiled once per activation
     object (so once per leaky slope)."""

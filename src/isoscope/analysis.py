@@ -10,7 +10,6 @@ other, this module joins them.
 from __future__ import annotations
 
 import dataclasses
-import functools
 import math
 import time
 from collections.abc import Callable
@@ -27,20 +26,44 @@ from isoscope import routes
 from isoscope.activations import Activation, get_activation
 from isoscope.errors import InputError, TheoryError
 from isoscope.network import Network, conv_stack, plain_stack, residual_stack
-from isoscope.score import (ISOMETRIC_SCORE, Agreement, Score, agreement, censored_log_stats,
-                            isometry_of_logs, judged_gain, non_finite_score, outlier_counts,
-                            predicted_isometry, score_spectrum, split_outliers)
+from isoscope.score import (
+    ISOMETRIC_SCORE,
+    Agreement,
+    Score,
+    agreement,
+    censored_log_stats,
+    isometry_of_logs,
+    judged_gain,
+    non_finite_score,
+    outlier_counts,
+    predicted_isometry,
+    score_spectrum,
+    split_outliers,
+)
 from isoscope.spec import CONV_FAMILIES, Spec, parse_spec
 from isoscope.spectrum import Spectrum, from_log_singular_values, zero_threshold
 from isoscope.theory import free_probability, mean_field
-from isoscope.threads import limited_blas
 from isoscope.theory.predict import Prediction, predict
+from isoscope.threads import limited_blas
 
-__all__ = ["Analysis", "DepthProfile", "InputPlan", "analyze", "build_network", "depth_profile",
-           "profile_predictions", "layer_predictions", "isometric_until",
-           "plan_inputs", "theory_design", "predict_spec", "prediction_for", "profile_depths", "seed_key",
-           "spec_activation"]
-
+__all__ = [
+    "Analysis",
+    "DepthProfile",
+    "InputPlan",
+    "analyze",
+    "build_network",
+    "depth_profile",
+    "profile_predictions",
+    "layer_predictions",
+    "isometric_until",
+    "plan_inputs",
+    "theory_design",
+    "predict_spec",
+    "prediction_for",
+    "profile_depths",
+    "seed_key",
+    "spec_activation",
+]
 
 
 @dataclasses.dataclass(frozen=True)
@@ -148,8 +171,9 @@ class Analysis:
 def spec_activation(spec: Spec) -> Activation:
     """The spec's activation as one registry object (leaky ReLU with ``network.leaky_slope``)."""
     n = spec.network
-    return get_activation(n.activation, slope=n.leaky_slope if n.activation == "leaky-relu"
-                          else None)
+    return get_activation(
+        n.activation, slope=n.leaky_slope if n.activation == "leaky-relu" else None
+    )
 
 
 def build_network(spec: Spec) -> Network:
@@ -160,17 +184,35 @@ def build_network(spec: Spec) -> Network:
         return _factory(spec).network
     act = spec_activation(spec)
     if n.family == "residual":
-        return residual_stack(n.width, n.depth, act, weights=i.weights,
-                              sigma_w=i.sigma_w, sigma_b=i.sigma_b, alpha=n.alpha)
+        return residual_stack(
+            n.width,
+            n.depth,
+            act,
+            weights=i.weights,
+            sigma_w=i.sigma_w,
+            sigma_b=i.sigma_b,
+            alpha=n.alpha,
+        )
     if n.family in CONV_FAMILIES:
-        return conv_stack(1 if n.family == "conv1d" else 2, n.channels, n.size, n.kernel, n.depth,
-                          act, weights=i.weights, sigma_w=i.sigma_w, sigma_b=i.sigma_b)
-    return plain_stack(n.width, n.depth, act, weights=i.weights,
-                       sigma_w=i.sigma_w, sigma_b=i.sigma_b)
+        return conv_stack(
+            1 if n.family == "conv1d" else 2,
+            n.channels,
+            n.size,
+            n.kernel,
+            n.depth,
+            act,
+            weights=i.weights,
+            sigma_w=i.sigma_w,
+            sigma_b=i.sigma_b,
+        )
+    return plain_stack(
+        n.width, n.depth, act, weights=i.weights, sigma_w=i.sigma_w, sigma_b=i.sigma_b
+    )
 
 
 def _factory(spec: Spec):
     from isoscope.factory import load_factory
+
     base = Path(spec.source).parent if spec.source else Path.cwd()
     try:
         return load_factory(spec.network.factory, base, spec.network.width)
@@ -204,40 +246,71 @@ def theory_design(spec: Spec) -> tuple[Spec | None, str]:
     analysis["route"] = "auto"
     if n.family in CONV_FAMILIES:
         w = spec.init.weights
-        network = {"family": "plain", "width": n.channels, "depth": n.depth,
-                   "activation": n.activation}
+        network = {
+            "family": "plain",
+            "width": n.channels,
+            "depth": n.depth,
+            "activation": n.activation,
+        }
         if n.activation == "leaky-relu":
             network["leaky_slope"] = n.leaky_slope
-        plain = parse_spec({"name": spec.name, "network": network,
-                            "init": {"weights": "orthogonal" if w == "delta-orthogonal" else w,
-                                     "sigma_w": spec.init.sigma_w, "sigma_b": spec.init.sigma_b},
-                            "analysis": analysis}, source=spec.source)
+        plain = parse_spec(
+            {
+                "name": spec.name,
+                "network": network,
+                "init": {
+                    "weights": "orthogonal" if w == "delta-orthogonal" else w,
+                    "sigma_w": spec.init.sigma_w,
+                    "sigma_b": spec.init.sigma_b,
+                },
+                "analysis": analysis,
+            },
+            source=spec.source,
+        )
         if w == "delta-orthogonal":
-            return plain, (f"plain orthogonal stack of width {n.channels} (delta-orthogonal "
-                           "kernels follow the orthogonal law, Xiao et al. 2018)")
-        return plain, (f"plain {w} stack of width {n.channels} (a hypothesis for {w} kernels: "
-                       "asymptotic freeness of the Fourier-diagonal convolution and the "
-                       "position-diagonal derivatives)")
+            return plain, (
+                f"plain orthogonal stack of width {n.channels} (delta-orthogonal "
+                "kernels follow the orthogonal law, Xiao et al. 2018)"
+            )
+        return plain, (
+            f"plain {w} stack of width {n.channels} (a hypothesis for {w} kernels: "
+            "asymptotic freeness of the Fourier-diagonal convolution and the "
+            "position-diagonal derivatives)"
+        )
     equivalent = _factory(spec).equivalent
     if equivalent is None:
         return None, ""
     network = dict(equivalent.get("network", {}), width=n.width)
     try:
-        design = parse_spec({"name": spec.name, "network": network,
-                             "init": dict(equivalent.get("init", {})), "analysis": analysis},
-                            source=spec.source)
+        design = parse_spec(
+            {
+                "name": spec.name,
+                "network": network,
+                "init": dict(equivalent.get("init", {})),
+                "analysis": analysis,
+            },
+            source=spec.source,
+        )
     except InputError as e:
-        raise InputError(f"the factory's equivalent design is not a valid spec: {e.message}",
-                         expected="network and init tables of a plain or residual stack",
-                         hint="fix the mapping the factory returns as its third value",
-                         file=spec.source, key="network.factory") from None
+        raise InputError(
+            f"the factory's equivalent design is not a valid spec: {e.message}",
+            expected="network and init tables of a plain or residual stack",
+            hint="fix the mapping the factory returns as its third value",
+            file=spec.source,
+            key="network.factory",
+        ) from None
     if design.network.family not in ("plain", "residual"):
-        raise InputError(f"the factory's equivalent design has family {design.network.family!r}",
-                         expected="a plain or residual stack", file=spec.source,
-                         key="network.factory")
+        raise InputError(
+            f"the factory's equivalent design has family {design.network.family!r}",
+            expected="a plain or residual stack",
+            file=spec.source,
+            key="network.factory",
+        )
     i, d = design.init, design.network
-    return design, (f"equivalent built-in design named by the factory: {d.family} {d.activation} "
-                    f"{i.weights}, depth {d.depth}, sigma_w {i.sigma_w:g}, sigma_b {i.sigma_b:g}")
+    return design, (
+        f"equivalent built-in design named by the factory: {d.family} {d.activation} "
+        f"{i.weights}, depth {d.depth}, sigma_w {i.sigma_w:g}, sigma_b {i.sigma_b:g}"
+    )
 
 
 def plan_inputs(spec: Spec) -> tuple[InputPlan, tuple[str, ...]]:
@@ -265,44 +338,77 @@ def plan_inputs(spec: Spec) -> tuple[InputPlan, tuple[str, ...]]:
     if a.input == "file":
         return InputPlan("file", math.nan, f"inputs read from {a.input_file}"), ()
     if a.input == "gaussian":
-        return InputPlan("gaussian", a.input_variance,
-                         f"x ~ N(0, {a.input_variance:g}) in every coordinate"), ()
+        return InputPlan(
+            "gaussian", a.input_variance, f"x ~ N(0, {a.input_variance:g}) in every coordinate"
+        ), ()
     spec, _ = theory_design(spec)
     if spec is None:
-        return (InputPlan("gaussian", a.input_variance,
-                          f"x ~ N(0, {a.input_variance:g}): a user's network without an "
-                          "equivalent design has no steady state known here"), ())
+        return (
+            InputPlan(
+                "gaussian",
+                a.input_variance,
+                f"x ~ N(0, {a.input_variance:g}): a user's network without an "
+                "equivalent design has no steady state known here",
+            ),
+            (),
+        )
     if spec.network.family == "residual":
-        return (InputPlan("gaussian", a.input_variance,
-                          f"x ~ N(0, {a.input_variance:g}): a residual stack has no steady state"),
-                ())
+        return (
+            InputPlan(
+                "gaussian",
+                a.input_variance,
+                f"x ~ N(0, {a.input_variance:g}): a residual stack has no steady state",
+            ),
+            (),
+        )
     act = spec_activation(spec)
     try:
         q = mean_field.fixed_point(act, spec.init.sigma_w, spec.init.sigma_b)
     except TheoryError as e:
-        msg = (f"no steady state for these settings ({e}); inputs fall back to "
-               f"x ~ N(0, {a.input_variance:g})")
+        msg = (
+            f"no steady state for these settings ({e}); inputs fall back to "
+            f"x ~ N(0, {a.input_variance:g})"
+        )
         return InputPlan("gaussian", a.input_variance, msg), (msg,)
     v = a.input_variance
     if q == 0.0 and v > 0 and act.law_free_of_q:
         return _homogeneous_plan(spec, act, v)
-    if q == 0.0 and v > 0 and abs(mean_field.length_map(act, spec.init.sigma_w,
-                                                       spec.init.sigma_b, v) - v) <= 1e-12 * v:
+    if (
+        q == 0.0
+        and v > 0
+        and abs(mean_field.length_map(act, spec.init.sigma_w, spec.init.sigma_b, v) - v)
+        <= 1e-12 * v
+    ):
         # a marginal length map: every variance is a fixed point, and q* = 0 would feed the
         # constant input phi(0)
-        return (InputPlan("steady-state", v, f"x = phi(h), h ~ N(0, {v:g}): every variance is a "
-                          "fixed point of the length map here, input_variance sets it"), ())
-    return (InputPlan("steady-state", q, f"x = phi(h), h ~ N(0, q*) with q* = {q:.6g} "
-                      "(fixed point of the length map)"), ())
+        return (
+            InputPlan(
+                "steady-state",
+                v,
+                f"x = phi(h), h ~ N(0, {v:g}): every variance is a "
+                "fixed point of the length map here, input_variance sets it",
+            ),
+            (),
+        )
+    return (
+        InputPlan(
+            "steady-state",
+            q,
+            f"x = phi(h), h ~ N(0, q*) with q* = {q:.6g} (fixed point of the length map)",
+        ),
+        (),
+    )
 
 
 def _homogeneous_plan(spec: Spec, act: Activation, v: float) -> tuple[InputPlan, tuple[str, ...]]:
     """Inputs at ``input_variance`` for a homogeneous phi whose fixed point is q* = 0."""
     sw = spec.init.sigma_w
-    factor = mean_field.length_map(act, sw, 0.0, v) / v     # sigma_w^2 E[phi(h)^2]/q, q-free
-    detail = (f"x = phi(h), h ~ N(0, {v:g}) (input_variance): the length map's fixed point is "
-              f"q* = 0, which would feed the zero input; {act.label} is positively homogeneous, "
-              "so its Jacobian does not depend on the input's scale")
+    factor = mean_field.length_map(act, sw, 0.0, v) / v  # sigma_w^2 E[phi(h)^2]/q, q-free
+    detail = (
+        f"x = phi(h), h ~ N(0, {v:g}) (input_variance): the length map's fixed point is "
+        f"q* = 0, which would feed the zero input; {act.label} is positively homogeneous, "
+        "so its Jacobian does not depend on the input's scale"
+    )
     warnings: tuple[str, ...] = ()
     if abs(factor - 1.0) > 1e-12:
         detail += f"; the variance changes by {factor:.6g} per layer"
@@ -311,11 +417,13 @@ def _homogeneous_plan(spec: Spec, act: Activation, v: float) -> tuple[InputPlan,
         if 0.0 < factor < 1.0 and q1 > 0:
             layer = 1 + math.log(tiny / q1) / math.log(factor)
             if layer < spec.network.depth:
-                warnings = (f"the pre-activation variance falls by {factor:.6g} per layer and "
-                            f"leaves the {spec.analysis.dtype} range after about {layer:.0f} of "
-                            f"{spec.network.depth} layers: the measured Jacobian is unreliable "
-                            "beyond (use float64, a smaller depth, or sigma_w closer to the "
-                            "critical value)",)
+                warnings = (
+                    f"the pre-activation variance falls by {factor:.6g} per layer and "
+                    f"leaves the {spec.analysis.dtype} range after about {layer:.0f} of "
+                    f"{spec.network.depth} layers: the measured Jacobian is unreliable "
+                    "beyond (use float64, a smaller depth, or sigma_w closer to the "
+                    "critical value)",
+                )
     return InputPlan("steady-state", v, detail), warnings
 
 
@@ -330,8 +438,9 @@ def _load_inputs(spec: Spec, dtype) -> np.ndarray:
     a, n = spec.analysis, spec.network.width
 
     def refuse(message, expected, hint=None):
-        return InputError(message, expected=expected, hint=hint, file=spec.source,
-                          key="analysis.input_file")
+        return InputError(
+            message, expected=expected, hint=hint, file=spec.source, key="analysis.input_file"
+        )
 
     path = Path(a.input_file)
     try:
@@ -341,26 +450,38 @@ def _load_inputs(spec: Spec, dtype) -> np.ndarray:
     except IsADirectoryError:
         raise refuse(f"input file {str(path)!r} is a folder", "a .npy file") from None
     except PermissionError:
-        raise refuse(f"input file {str(path)!r} cannot be read (permission denied)", "a readable .npy file",
-                     "check its permissions") from None
+        raise refuse(
+            f"input file {str(path)!r} cannot be read (permission denied)",
+            "a readable .npy file",
+            "check its permissions",
+        ) from None
     except (ValueError, OSError, EOFError) as e:
-        raise refuse(f"input file {str(path)!r} is not a readable .npy array ({e})",
-                     "a file written by numpy.save") from None
+        raise refuse(
+            f"input file {str(path)!r} is not a readable .npy array ({e})",
+            "a file written by numpy.save",
+        ) from None
     if isinstance(x, np.lib.npyio.NpzFile):
         names = list(x.files)
         x.close()
-        raise refuse(f"input file {str(path)!r} is an .npz archive (arrays {names})", "one .npy array",
-                     "save the array you mean with numpy.save(\"x.npy\", array)")
+        raise refuse(
+            f"input file {str(path)!r} is an .npz archive (arrays {names})",
+            "one .npy array",
+            'save the array you mean with numpy.save("x.npy", array)',
+        )
     if np.iscomplexobj(x):
-        raise refuse(f"input file {str(path)!r} holds a complex array (dtype {x.dtype})",
-                     "real numbers (a network input is real)",
-                     "save the real part, or the real and imaginary parts as separate coordinates")
+        raise refuse(
+            f"input file {str(path)!r} holds a complex array (dtype {x.dtype})",
+            "real numbers (a network input is real)",
+            "save the real part, or the real and imaginary parts as separate coordinates",
+        )
     if x.shape == (n,):
         x = np.broadcast_to(x, (a.inputs, n))
     if x.shape != (a.inputs, n) or not (np.issubdtype(x.dtype, np.number) or x.dtype == np.bool_):
-        raise refuse(f"input file {str(path)!r} holds an array of shape {x.shape} and dtype {x.dtype}",
-                     f"a numeric array of shape ({n},) or ({a.inputs}, {n}) (width, or inputs x width)",
-                     "save one row per draw, or set analysis.inputs to the number of rows")
+        raise refuse(
+            f"input file {str(path)!r} holds an array of shape {x.shape} and dtype {x.dtype}",
+            f"a numeric array of shape ({n},) or ({a.inputs}, {n}) (width, or inputs x width)",
+            "save one row per draw, or set analysis.inputs to the number of rows",
+        )
     if not np.all(np.isfinite(x)):
         raise refuse(f"input file {str(path)!r} contains inf or NaN", "finite values")
     return np.asarray(x, dtype=dtype)
@@ -371,13 +492,18 @@ def seed_key(seed: int) -> jax.Array:
     (two uint32 words, Salmon et al. 2011), equal to ``jax.random.PRNGKey(seed)`` for every seed
     below 2^63, which ``PRNGKey`` cannot take beyond."""
     seed = int(seed)
-    if not 0 <= seed < 2 ** 64:
-        raise InputError(f"seed {seed} is out of range", expected="an integer from 0 to 2^64 - 1",
-                         key="analysis.seed")
+    if not 0 <= seed < 2**64:
+        raise InputError(
+            f"seed {seed} is out of range",
+            expected="an integer from 0 to 2^64 - 1",
+            key="analysis.seed",
+        )
     return jnp.asarray([seed >> 32, seed & 0xFFFFFFFF], dtype=jnp.uint32)
 
 
-def _draw_input(plan: InputPlan, activation: Activation | None, width: int, key, dtype) -> jax.Array:
+def _draw_input(
+    plan: InputPlan, activation: Activation | None, width: int, key, dtype
+) -> jax.Array:
     z = jax.random.normal(key, (width,), dtype)
     if plan.kind == "steady-state":
         return activation.fn(jnp.sqrt(jnp.asarray(plan.variance, dtype)) * z)
@@ -385,14 +511,20 @@ def _draw_input(plan: InputPlan, activation: Activation | None, width: int, key,
 
 
 def _precision_warnings(spectrum: Spectrum) -> tuple[str, ...]:
-    if spectrum.method == "udt":     # the stabilised product resolves every ln s
+    if spectrum.method == "udt":  # the stabilised product resolves every ln s
         return ()
     digits = routes.RELIABLE_DIGITS.get(spectrum.dtype, 13.0)
     if spectrum.log10_condition > digits:
-        return (f"singular values span {spectrum.log10_condition:.1f} decades, more than the "
-                f"{digits:.0f} that an SVD in {spectrum.dtype} resolves: the smallest ones are "
-                "rounding noise" + (" (use dtype = \"float64\")" if spectrum.dtype == "float32" else
-                                   "; their count is reported as numerically zero"),)
+        return (
+            f"singular values span {spectrum.log10_condition:.1f} decades, more than the "
+            f"{digits:.0f} that an SVD in {spectrum.dtype} resolves: the smallest ones are "
+            "rounding noise"
+            + (
+                ' (use dtype = "float64")'
+                if spectrum.dtype == "float32"
+                else "; their count is reported as numerically zero"
+            ),
+        )
     return ()
 
 
@@ -425,15 +557,25 @@ def predict_spec(spec: Spec, plan: InputPlan | None = None, points: int = 400) -
     plan = plan_inputs(spec)[0] if plan is None else plan
     if plan.kind == "file" and not math.isfinite(plan.variance):
         x = _load_inputs(spec, np.float64)
-        plan = dataclasses.replace(plan, variance=float(np.mean(x ** 2)))
+        plan = dataclasses.replace(plan, variance=float(np.mean(x**2)))
     design, _ = theory_design(spec)
     if design is None:
-        raise TheoryError("a user's network has no infinite-width law unless its factory names "
-                          "an equivalent built-in design (a third return value)")
+        raise TheoryError(
+            "a user's network has no infinite-width law unless its factory names "
+            "an equivalent built-in design (a third return value)"
+        )
     n, i = design.network, design.init
-    return predict(spec_activation(design), i.weights, i.sigma_w, i.sigma_b, n.depth,
-                   family=n.family, alpha=n.alpha,
-                   input_variance=_input_mean_square(design, plan), points=points)
+    return predict(
+        spec_activation(design),
+        i.weights,
+        i.sigma_w,
+        i.sigma_b,
+        n.depth,
+        family=n.family,
+        alpha=n.alpha,
+        input_variance=_input_mean_square(design, plan),
+        points=points,
+    )
 
 
 def prediction_for(spec: Spec, plan: InputPlan) -> tuple[Prediction | None, tuple[str, ...]]:
@@ -461,12 +603,15 @@ def _measured_row(log_s: np.ndarray, dtype) -> tuple[float, float, float]:
     floor = math.log(zero_threshold(log_s.size, dtype)) + float(log_s[0])
     above = log_s[log_s > floor]
     std = float(above.std()) if above.size > 1 else math.nan
-    log_m1 = float(logsumexp(2.0 * log_s) - math.log(log_s.size)) if np.isfinite(log_s[0]) else math.nan
+    log_m1 = (
+        float(logsumexp(2.0 * log_s) - math.log(log_s.size)) if np.isfinite(log_s[0]) else math.nan
+    )
     return floor, std, log_m1
 
 
-def profile_predictions(spec: Spec, plan: InputPlan, depths: np.ndarray,
-                        predicted: Prediction) -> dict[int, Prediction]:
+def profile_predictions(
+    spec: Spec, plan: InputPlan, depths: np.ndarray, predicted: Prediction
+) -> dict[int, Prediction]:
     """The predictions the depth profile compares with: ``predicted`` at the full depth and
     :func:`~isoscope.theory.predict.predict` at each shallower depth l (a coarser 120-point
     density).  Pure (it depends on the design and the depths only), so :func:`analyze` runs it
@@ -474,9 +619,21 @@ def profile_predictions(spec: Spec, plan: InputPlan, depths: np.ndarray,
     n, i = spec.network, spec.init
     out = {}
     for d in (int(v) for v in depths):
-        out[d] = predicted if d == n.depth else predict(
-            spec_activation(spec), i.weights, i.sigma_w, i.sigma_b, d, family=n.family,
-            alpha=n.alpha, input_variance=_input_mean_square(spec, plan), points=120)
+        out[d] = (
+            predicted
+            if d == n.depth
+            else predict(
+                spec_activation(spec),
+                i.weights,
+                i.sigma_w,
+                i.sigma_b,
+                d,
+                family=n.family,
+                alpha=n.alpha,
+                input_variance=_input_mean_square(spec, plan),
+                points=120,
+            )
+        )
     return out
 
 
@@ -507,9 +664,13 @@ def isometric_until(depths: np.ndarray, scores: np.ndarray) -> int | None:
     return int(depths[count - 1]) if count > 0 else None
 
 
-def depth_profile(spec: Spec, partial: jac.PartialSpectra, predictions: dict[int, Prediction],
-                  layers: list[jac.LayerStatistics],
-                  predicted_layers: tuple[np.ndarray, np.ndarray]) -> DepthProfile:
+def depth_profile(
+    spec: Spec,
+    partial: jac.PartialSpectra,
+    predictions: dict[int, Prediction],
+    layers: list[jac.LayerStatistics],
+    predicted_layers: tuple[np.ndarray, np.ndarray],
+) -> DepthProfile:
     """The per-layer view and the spread at the depths of ``partial`` (:func:`profile_depths`).
 
     Partial products, measured: singular values of ``J_l ... J_1`` for one draw, kept by the
@@ -532,7 +693,7 @@ def depth_profile(spec: Spec, partial: jac.PartialSpectra, predictions: dict[int
     for d, row in zip(partial.depths, partial.log_s):
         p = predictions[int(d)]
         top, bottom = outlier_counts(p)
-        bulk = row[top:row.size - bottom]
+        bulk = row[top : row.size - bottom]
         floor, std, log_m1 = _measured_row(bulk, spec.analysis.dtype)
         m_std.append(std)
         m_m1.append(log_m1)
@@ -543,13 +704,25 @@ def depth_profile(spec: Spec, partial: jac.PartialSpectra, predictions: dict[int
     depths = np.asarray(partial.depths)
     q = np.stack([s.q for s in layers])
     gain = np.stack([s.gain for s in layers])
-    with np.errstate(invalid="ignore"):     # an overflowed layer gives NaN, not a warning
+    with np.errstate(invalid="ignore"):  # an overflowed layer gives NaN, not a warning
         q_std = q.std(axis=0) if q.shape[0] > 1 else np.full(q.shape[1], math.nan)
-    return DepthProfile(depths, np.array(m_std), np.array(p_std), np.array(m_m1), np.array(p_m1),
-                        np.array(m_iso), np.array(p_iso), isometric_until(depths, m_iso),
-                        isometric_until(depths, p_iso), np.arange(1, q.shape[1] + 1),
-                        q.mean(axis=0), q_std, predicted_layers[0], gain.mean(axis=0),
-                        predicted_layers[1])
+    return DepthProfile(
+        depths,
+        np.array(m_std),
+        np.array(p_std),
+        np.array(m_m1),
+        np.array(p_m1),
+        np.array(m_iso),
+        np.array(p_iso),
+        isometric_until(depths, m_iso),
+        isometric_until(depths, p_iso),
+        np.arange(1, q.shape[1] + 1),
+        q.mean(axis=0),
+        q_std,
+        predicted_layers[0],
+        gain.mean(axis=0),
+        predicted_layers[1],
+    )
 
 
 def _profile_theory(spec: Spec, plan: InputPlan, depths: np.ndarray, predicted: Prediction):
@@ -595,26 +768,38 @@ def _analyze(spec: Spec, progress: Callable[[int, int], None] | None) -> Analysi
     plan, warnings = plan_inputs(spec)
     file_inputs = _load_inputs(spec, dtype) if plan.kind == "file" else None
     if file_inputs is not None:
-        plan = dataclasses.replace(plan, variance=float(np.mean(file_inputs.astype(np.float64) ** 2)))
+        plan = dataclasses.replace(
+            plan, variance=float(np.mean(file_inputs.astype(np.float64) ** 2))
+        )
     route, reason = routes.choose_route(spec, network.layer is not None)
-    depths = (profile_depths(spec.network.depth)
-              if network.layer is not None and route != "matrix-free" else None)
+    depths = (
+        profile_depths(spec.network.depth)
+        if network.layer is not None and route != "matrix-free"
+        else None
+    )
     # theory depends on the design only: the prediction, then the profile's shallower
     # predictions, are solved on a worker thread while the draws run (the solver is NumPy;
     # XLA and LAPACK release the GIL)
     pool = futures.ThreadPoolExecutor(max_workers=1, thread_name_prefix="isoscope-theory")
     prediction = pool.submit(_timed_prediction, spec, plan)
-    pending = (pool.submit(_profile_after, prediction, design, plan, depths)
-               if depths is not None and design is not None else None)
+    pending = (
+        pool.submit(_profile_after, prediction, design, plan, depths)
+        if depths is not None and design is not None
+        else None
+    )
     try:
         draws = _draws(spec, network, design, dtype, plan, file_inputs, route, depths, progress)
-        why = routes.needs_deep(draws.spectrum, draws.fault) if (
-            spec.analysis.route == "auto" and route == "dense" and network.layer is not None) else None
+        why = (
+            routes.needs_deep(draws.spectrum, draws.fault)
+            if (spec.analysis.route == "auto" and route == "dense" and network.layer is not None)
+            else None
+        )
         if why is not None:
             route, reason = "deep", f"auto: {why}; measured again on the deep route"
             draws = _draws(spec, network, design, dtype, plan, file_inputs, route, depths, progress)
-        return _finish(spec, design, label, plan, warnings, prediction, pending, draws,
-                       route, reason, t0)
+        return _finish(
+            spec, design, label, plan, warnings, prediction, pending, draws, route, reason, t0
+        )
     finally:
         pool.shutdown(wait=False, cancel_futures=True)
 
@@ -658,16 +843,26 @@ def _draws(spec, network, design, dtype, plan, file_inputs, route, depths, progr
         k_draw = jax.random.fold_in(root, i)
         k_params, k_input = jax.random.split(k_draw)
         params = network.init(k_params, dtype)
-        x = (jnp.asarray(file_inputs[i]) if file_inputs is not None
-             else _draw_input(plan, activation, network.width, k_input, dtype))
+        x = (
+            jnp.asarray(file_inputs[i])
+            if file_inputs is not None
+            else _draw_input(plan, activation, network.width, k_input, dtype)
+        )
         jax.block_until_ready((params, x))
         seconds["sampling"] += time.perf_counter() - t
         if depths is not None:
             t = time.perf_counter()
             layers.append(jac.layer_statistics(network, params, x))
             seconds["profile"] += time.perf_counter() - t
-        draw = routes.measure_draw(route, network, params, x, depths if i == 0 else None, spec,
-                                   jax.random.fold_in(k_draw, 2 ** 31 - 1))
+        draw = routes.measure_draw(
+            route,
+            network,
+            params,
+            x,
+            depths if i == 0 else None,
+            spec,
+            jax.random.fold_in(k_draw, 2**31 - 1),
+        )
         for stage, v in draw.seconds.items():
             seconds[stage] += v
         if progress is not None:
@@ -685,15 +880,20 @@ def _draws(spec, network, design, dtype, plan, file_inputs, route, depths, progr
     # resolution of m Lanczos steps, whose degree-m polynomials resolve lambda near the lower
     # end of [0, lambda_max] only to about lambda_max / m^2, i.e. s to s_max / m (the
     # Chebyshev extremal property; Lin, Saad & Yang 2016, SIAM Rev. 58, sec. 3)
-    threshold = {"dense": None, "deep": 0.0,
-                 "matrix-free": 1.0 / spec.analysis.lanczos_steps}[route]
-    spectrum = (None if fault is not None
-                else from_log_singular_values(np.stack(rows), dtype, method, threshold))
+    threshold = {"dense": None, "deep": 0.0, "matrix-free": 1.0 / spec.analysis.lanczos_steps}[
+        route
+    ]
+    spectrum = (
+        None
+        if fault is not None
+        else from_log_singular_values(np.stack(rows), dtype, method, threshold)
+    )
     return _Draws(spectrum, fault, i, partial, layers, tuple(quadrature) or None, seconds)
 
 
-def _finish(spec, design, label, plan, warnings, prediction, pending, draws: _Draws, route,
-            reason, t0) -> Analysis:
+def _finish(
+    spec, design, label, plan, warnings, prediction, pending, draws: _Draws, route, reason, t0
+) -> Analysis:
     """The score, the agreement and the profile (the second half of analyze)."""
     seconds = draws.seconds
     predicted, notes, seconds["theory"] = prediction.result()
@@ -702,17 +902,21 @@ def _finish(spec, design, label, plan, warnings, prediction, pending, draws: _Dr
     spectrum, fault = draws.spectrum, draws.fault
     if fault is not None:
         score = non_finite_score(f"draw {draws.fault_draw}: {fault.detail}")
-        warnings += (f"measurement stopped: {fault.detail} (draw {draws.fault_draw}); lower "
-                     "sigma_w or the depth, or use float64",)
+        warnings += (
+            f"measurement stopped: {fault.detail} (draw {draws.fault_draw}); lower "
+            "sigma_w or the depth, or use float64",
+        )
     else:
         score = score_spectrum(spectrum, depth)
         warnings += _precision_warnings(spectrum)
     if route == "matrix-free":
-        warnings += ("matrix-free route: each draw's spectrum is the stochastic Lanczos "
-                     f"quadrature estimate ({spec.analysis.probes} probes x "
-                     f"{spec.analysis.lanczos_steps} steps), shown as its quantiles; s below "
-                     f"s_max / {spec.analysis.lanczos_steps} (the Lanczos resolution) count as "
-                     "zero; there is no depth profile on this route",)
+        warnings += (
+            "matrix-free route: each draw's spectrum is the stochastic Lanczos "
+            f"quadrature estimate ({spec.analysis.probes} probes x "
+            f"{spec.analysis.lanczos_steps} steps), shown as its quantiles; s below "
+            f"s_max / {spec.analysis.lanczos_steps} (the Lanczos resolution) count as "
+            "zero; there is no depth profile on this route",
+        )
     if label and predicted is not None:
         warnings += (f"the prediction is that of the {label}",)
     agree = profile = None
@@ -720,19 +924,33 @@ def _finish(spec, design, label, plan, warnings, prediction, pending, draws: _Dr
         agree = agreement(spectrum, predicted)
         warnings += agree.warnings
         bulk, _ = split_outliers(spectrum, predicted)
-        score = score_spectrum(bulk, depth, judged_gain(agree, predicted, bulk),
-                               scored=agree.compared)
+        score = score_spectrum(
+            bulk, depth, judged_gain(agree, predicted, bulk), scored=agree.compared
+        )
         if draws.partial is not None and pending is not None:
             t = time.perf_counter()
             try:
                 predictions, predicted_layers = pending.result()
-                profile = depth_profile(spec, draws.partial, predictions, draws.layers,
-                                        predicted_layers)
+                profile = depth_profile(
+                    spec, draws.partial, predictions, draws.layers, predicted_layers
+                )
             except TheoryError as e:
                 warnings += (f"no depth profile: {e}",)
             seconds["profile"] += time.perf_counter() - t
     seconds["total"] = time.perf_counter() - t0
-    return Analysis(spec=spec, inputs=plan, spectrum=spectrum, fault=fault, score=score,
-                    predicted=predicted, agreement=agree, profile=profile, warnings=warnings,
-                    seconds=seconds, route=route, route_reason=reason, theory_label=label,
-                    quadrature=draws.quadrature)
+    return Analysis(
+        spec=spec,
+        inputs=plan,
+        spectrum=spectrum,
+        fault=fault,
+        score=score,
+        predicted=predicted,
+        agreement=agree,
+        profile=profile,
+        warnings=warnings,
+        seconds=seconds,
+        route=route,
+        route_reason=reason,
+        theory_label=label,
+        quadrature=draws.quadrature,
+    )

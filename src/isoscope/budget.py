@@ -56,7 +56,7 @@ __all__ = ["Budget", "estimate", "available_memory", "check"]
 
 _BYTES = {"float64": 8, "float32": 4}
 _PROFILE_POINTS = 8
-_RUNTIME_BYTES = 300 * 10 ** 6
+_RUNTIME_BYTES = 300 * 10**6
 
 
 class Budget(NamedTuple):
@@ -82,13 +82,14 @@ class Budget(NamedTuple):
 def _flop_rate() -> float:
     """Floating-point operations per second of one 256 x 256 float64 matrix product (best of 3)."""
     import numpy as np
+
     a = np.ones((256, 256))
     best = float("inf")
     for _ in range(3):
         t = time.perf_counter()
         a @ a
         best = min(best, time.perf_counter() - t)
-    return 2 * 256 ** 3 / max(best, 1e-9)
+    return 2 * 256**3 / max(best, 1e-9)
 
 
 def estimate(spec, rate: float | None = None) -> Budget:
@@ -100,6 +101,7 @@ def estimate(spec, rate: float | None = None) -> Budget:
     """
     from isoscope.routes import choose_route
     from isoscope.spec import CONV_FAMILIES
+
     net, d = spec.network, spec.analysis.inputs
     n, L = net.width, net.depth or 0
     b = _BYTES[spec.analysis.dtype]
@@ -107,28 +109,37 @@ def estimate(spec, rate: float | None = None) -> Budget:
     if net.family == "python":
         params = 0
     elif net.family in CONV_FAMILIES:
-        params = b * (L * net.kernel ** len(net.size) * net.channels ** 2 + L * net.channels + 1)
+        params = b * (L * net.kernel ** len(net.size) * net.channels**2 + L * net.channels + 1)
     else:
         params = b * (L * n * n + L * n + 1)
     dense_weights = net.family in ("plain", "residual")
-    transient = ((3 if spec.init.weights == "orthogonal" else 2) * params if dense_weights
-                 else params)
+    transient = (
+        (3 if spec.init.weights == "orthogonal" else 2) * params if dense_weights else params
+    )
     jacobian = b * n * n
     singular = 8 * d * n
     if route == "matrix-free":
         layer = params // max(L, 1)
         vectors = b * (spec.analysis.lanczos_steps + 2) * n * spec.analysis.probes
         peak = params + 3 * layer + vectors + (3 * 8 + 1) * d * n + _RUNTIME_BYTES
-        per_draw = spec.analysis.probes * spec.analysis.lanczos_steps * (
-            4.0 * L * n * n + 2.0 * spec.analysis.lanczos_steps * n)
+        per_draw = (
+            spec.analysis.probes
+            * spec.analysis.lanczos_steps
+            * (4.0 * L * n * n + 2.0 * spec.analysis.lanczos_steps * n)
+        )
     else:
-        peak = (2 * params + transient + (4 + 2 + _PROFILE_POINTS) * jacobian
-                + (3 * 8 + 1) * d * n + _RUNTIME_BYTES)
-        per_draw = 2.0 * L * n ** 3 + (8 / 3) * n ** 3
+        peak = (
+            2 * params
+            + transient
+            + (4 + 2 + _PROFILE_POINTS) * jacobian
+            + (3 * 8 + 1) * d * n
+            + _RUNTIME_BYTES
+        )
+        per_draw = 2.0 * L * n**3 + (8 / 3) * n**3
         if route == "deep":
-            per_draw += L * (4 / 3) * n ** 3           # a QR of the frame at every layer
+            per_draw += L * (4 / 3) * n**3  # a QR of the frame at every layer
     if dense_weights and spec.init.weights == "orthogonal":
-        per_draw += L * (8 / 3) * n ** 3
+        per_draw += L * (8 / 3) * n**3
     flops = d * per_draw
     rate = _flop_rate() if rate is None else rate
     return Budget(params, jacobian, singular, peak, flops, flops / rate)
@@ -184,6 +195,7 @@ def check(spec, available: int | None = None) -> Budget:
     if avail is not None and bud.peak_bytes > avail:
         n = spec.network
         from isoscope.routes import choose_route
+
         route = choose_route(spec, n.family != "python")[0]
         raise InputError(
             f"width {n.width}, depth {n.depth}, {spec.analysis.inputs} draws in {spec.analysis.dtype} "
@@ -193,6 +205,7 @@ def check(spec, available: int | None = None) -> Budget:
             f"{_size(avail)} is available",
             expected=f"an estimated peak below {_size(avail)}",
             hint="lower network.width or network.depth (the weights take depth x width^2 numbers), "
-                 "analysis.inputs, use dtype = \"float32\", or route = \"matrix-free\" (no N x N "
-                 "matrix)")
+            'analysis.inputs, use dtype = "float32", or route = "matrix-free" (no N x N '
+            "matrix)",
+        )
     return bud

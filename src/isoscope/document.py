@@ -76,46 +76,53 @@ class Document:
         self.title, self.verdict = title, verdict
         self._parts: list[str] = []
 
-    def heading(self, text: str, level: int = 2) -> "Document":
+    def heading(self, text: str, level: int = 2) -> Document:
         """A section heading (``level`` 2 or 3)."""
         level = 3 if level >= 3 else 2
         self._parts.append(f"<h{level}>{_e(text)}</h{level}>")
         return self
 
-    def paragraph(self, text: str, small: bool = False) -> "Document":
+    def paragraph(self, text: str, small: bool = False) -> Document:
         """A paragraph of plain text (escaped)."""
         cls = " class='small'" if small else ""
         self._parts.append(f"<p{cls}>{_e(text)}</p>")
         return self
 
-    def figure(self, png: Path, caption: str) -> "Document":
+    def figure(self, png: Path, caption: str) -> Document:
         """A PNG embedded as a data URI, with ``caption`` as its caption and alt text."""
         data = base64.b64encode(Path(png).read_bytes()).decode("ascii")
-        self._parts.append(f"<figure><img alt=\"{_e(caption)}\" src=\"data:image/png;base64,{data}\">"
-                           f"<figcaption>{_e(caption)}</figcaption></figure>")
+        self._parts.append(
+            f'<figure><img alt="{_e(caption)}" src="data:image/png;base64,{data}">'
+            f"<figcaption>{_e(caption)}</figcaption></figure>"
+        )
         return self
 
-    def table(self, header: Sequence[str], rows: Iterable[Sequence[Any]],
-              caption: str | None = None) -> "Document":
+    def table(
+        self, header: Sequence[str], rows: Iterable[Sequence[Any]], caption: str | None = None
+    ) -> Document:
         """A table; each value through :func:`cell`."""
         cap = f"<caption>{_e(caption)}</caption>" if caption else ""
         head = "".join(f"<th>{_e(h)}</th>" for h in header)
-        body = "".join("<tr>" + "".join(f"<td{_align(v)}>{cell(v)}</td>" for v in row) + "</tr>"
-                       for row in rows)
-        self._parts.append(f"<table>{cap}<thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>")
+        body = "".join(
+            "<tr>" + "".join(f"<td{_align(v)}>{cell(v)}</td>" for v in row) + "</tr>"
+            for row in rows
+        )
+        self._parts.append(
+            f"<table>{cap}<thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>"
+        )
         return self
 
-    def warnings(self, items: Iterable[str]) -> "Document":
+    def warnings(self, items: Iterable[str]) -> Document:
         """Each warning in a highlighted box (nothing when there are none)."""
         self._parts += [f"<p class='warn'>{_e(w)}</p>" for w in items]
         return self
 
-    def code(self, title: str, text: str) -> "Document":
+    def code(self, title: str, text: str) -> Document:
         """A titled block of preformatted text (a spec as TOML)."""
         self._parts.append(f"<h3>{_e(title)}</h3><pre>{_e(text)}</pre>")
         return self
 
-    def facts(self, title: str, mapping: Mapping[str, Any]) -> "Document":
+    def facts(self, title: str, mapping: Mapping[str, Any]) -> Document:
         """A titled list of name/value pairs (software versions, seed, dtype)."""
         items = "".join(f"<dt>{_e(k)}</dt><dd>{cell(v)}</dd>" for k, v in mapping.items())
         self._parts.append(f"<h3>{_e(title)}</h3><dl>{items}</dl>")
@@ -123,8 +130,11 @@ class Document:
 
     def render(self) -> str:
         """The whole page: HTML5, UTF-8, styles inline, no external assets."""
-        return ("<!doctype html>\n<html lang='en'><head><meta charset='utf-8'>"
-                "<meta name='viewport' content='width=device-width, initial-scale=1'>"
-                f"<title>{_e(self.title)}</title><style>{_CSS}</style></head><body>"
-                f"<h1>{_e(self.title)}</h1><p class='verdict'>{_e(self.verdict)}</p>"
-                + "".join(self._parts) + "</body></html>\n")
+        return (
+            "<!doctype html>\n<html lang='en'><head><meta charset='utf-8'>"
+            "<meta name='viewport' content='width=device-width, initial-scale=1'>"
+            f"<title>{_e(self.title)}</title><style>{_CSS}</style></head><body>"
+            f"<h1>{_e(self.title)}</h1><p class='verdict'>{_e(self.verdict)}</p>"
+            + "".join(self._parts)
+            + "</body></html>\n"
+        )

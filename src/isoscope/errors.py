@@ -14,8 +14,16 @@ from __future__ import annotations
 import difflib
 from collections.abc import Iterable
 
-__all__ = ["did_you_mean", "hints", "InputError", "TheoryError", "SolverError", "IsoscopeWarning",
-           "FiniteWidthWarning", "NumericalFaultWarning"]
+__all__ = [
+    "did_you_mean",
+    "hints",
+    "InputError",
+    "TheoryError",
+    "SolverError",
+    "IsoscopeWarning",
+    "FiniteWidthWarning",
+    "NumericalFaultWarning",
+]
 
 
 def did_you_mean(received: object, allowed: Iterable[str]) -> str | None:
@@ -52,8 +60,15 @@ class InputError(ValueError):
       key: the spec key or flag, if any.
     """
 
-    def __init__(self, message: str, *, expected: str | None = None, hint: str | None = None,
-                 file: str | None = None, key: str | None = None):
+    def __init__(
+        self,
+        message: str,
+        *,
+        expected: str | None = None,
+        hint: str | None = None,
+        file: str | None = None,
+        key: str | None = None,
+    ):
         self.message, self.expected, self.hint = message, expected, hint
         self.file, self.key = file, key
         super().__init__(self.__str__())
@@ -67,10 +82,15 @@ class InputError(ValueError):
             text += f". {self.hint[0].upper()}{self.hint[1:]}"
         return text
 
-    def located(self, *, file: str | None = None, key: str | None = None) -> "InputError":
+    def located(self, *, file: str | None = None, key: str | None = None) -> InputError:
         """A copy with the file and/or key filled in (for errors raised below the spec layer)."""
-        return InputError(self.message, expected=self.expected, hint=self.hint,
-                          file=file or self.file, key=key or self.key)
+        return InputError(
+            self.message,
+            expected=self.expected,
+            hint=self.hint,
+            file=file or self.file,
+            key=key or self.key,
+        )
 
 
 class TheoryError(ValueError):

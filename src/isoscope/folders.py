@@ -49,8 +49,16 @@ from pathlib import Path
 
 from isoscope.errors import InputError
 
-__all__ = ["MARKER", "Reservation", "reserve", "safe_folder_name", "interrupted",
-           "install_interrupt_flag", "committed", "glob_escape"]
+__all__ = [
+    "MARKER",
+    "Reservation",
+    "reserve",
+    "safe_folder_name",
+    "interrupted",
+    "install_interrupt_flag",
+    "committed",
+    "glob_escape",
+]
 
 MARKER = ".isoscope-output"
 _MAX_NAME_BYTES = 100  # leaves room for ".NAME.v-<pid>-<start>-<random>" within 255 bytes
@@ -111,7 +119,9 @@ class _sigint_held:
     """Hold SIGINT back (``pthread_sigmask``) inside the block; it is delivered on exit."""
 
     def __enter__(self):
-        self.on = threading.current_thread() is threading.main_thread() and hasattr(signal, "pthread_sigmask")
+        self.on = threading.current_thread() is threading.main_thread() and hasattr(
+            signal, "pthread_sigmask"
+        )
         if self.on:
             signal.pthread_sigmask(signal.SIG_BLOCK, {signal.SIGINT})
 
@@ -180,7 +190,7 @@ def _owner_id() -> str:
 
 def _owner_of(name: str, prefix: str) -> tuple[int, str] | None:
     """(pid, start) encoded in ``prefix + "<pid>-<start>-<random>"``, or None."""
-    parts = name[len(prefix):].split("-")
+    parts = name[len(prefix) :].split("-")
     if len(parts) != 3 or not parts[0].isdigit() or not parts[1].isdigit():
         return None
     return int(parts[0]), parts[1]
@@ -188,32 +198,44 @@ def _owner_of(name: str, prefix: str) -> tuple[int, str] | None:
 
 # ----------------------------------------------------------------------------- the target
 def _state(target: Path) -> str:
-    """"absent" | "link" (ours) | "legacy" (an isoscope directory) | "empty"; else InputError."""
+    """ "absent" | "link" (ours) | "legacy" (an isoscope directory) | "empty"; else InputError."""
     if target.is_symlink():
         dest = os.readlink(target)
         ours = os.sep not in dest and dest.startswith(f".{target.name}.v-")
-        if ours and ((target.parent / dest / MARKER).exists() or not os.path.lexists(target.parent / dest)):
+        if ours and (
+            (target.parent / dest / MARKER).exists() or not os.path.lexists(target.parent / dest)
+        ):
             return "link"  # our link (dangling only if someone removed the version folder by hand)
-        raise InputError(f"output path {str(target)!r} is a link to {dest!r}, which isoscope did not write",
-                         expected="a new folder, an empty one, or one isoscope wrote before",
-                         hint="choose another --out; isoscope never overwrites other files")
+        raise InputError(
+            f"output path {str(target)!r} is a link to {dest!r}, which isoscope did not write",
+            expected="a new folder, an empty one, or one isoscope wrote before",
+            hint="choose another --out; isoscope never overwrites other files",
+        )
     if not target.exists():
         return "absent"
     if not target.is_dir():
-        raise InputError(f"output path {str(target)!r} exists and is not a folder",
-                         expected="a new or isoscope-written folder", hint="choose another --out")
+        raise InputError(
+            f"output path {str(target)!r} exists and is not a folder",
+            expected="a new or isoscope-written folder",
+            hint="choose another --out",
+        )
     try:
         entries = list(target.iterdir())
     except PermissionError:
-        raise InputError(f"output folder {str(target)!r} cannot be read", expected="a folder you may write",
-                         hint="check its permissions or choose another --out") from None
+        raise InputError(
+            f"output folder {str(target)!r} cannot be read",
+            expected="a folder you may write",
+            hint="check its permissions or choose another --out",
+        ) from None
     if not entries:
         return "empty"
     if (target / MARKER).exists():
         return "legacy"
-    raise InputError(f"output folder {str(target)!r} is not empty and was not written by isoscope",
-                     expected="a new folder, an empty one, or one isoscope wrote before",
-                     hint="choose another --out; isoscope never overwrites other files")
+    raise InputError(
+        f"output folder {str(target)!r} is not empty and was not written by isoscope",
+        expected="a new folder, an empty one, or one isoscope wrote before",
+        hint="choose another --out; isoscope never overwrites other files",
+    )
 
 
 def _exchange(a: Path, b: Path) -> bool:
@@ -255,7 +277,9 @@ class Reservation:
         """
         _pause("commit")
         _check_interrupt()
-        (self.folder / MARKER).write_text("written by isoscope; this folder is replaced on the next run\n")
+        (self.folder / MARKER).write_text(
+            "written by isoscope; this folder is replaced on the next run\n"
+        )
         os.chmod(self.folder, 0o755)
         t, parent = self.target, self.target.parent
         with open(parent / f".{t.name}.lock", "a+b") as lock:
@@ -339,19 +363,26 @@ def reserve(target: str | Path) -> Reservation:
         cannot be created or written (read-only, under a file, a virtual file system).
     """
     if str(target) == "":
-        raise InputError("--out is empty", expected="a folder path", hint="give a folder, e.g. --out results")
+        raise InputError(
+            "--out is empty", expected="a folder path", hint="give a folder, e.g. --out results"
+        )
     t = Path(os.path.abspath(os.fspath(target)))
     if t.name in ("", ".", ".."):
-        raise InputError(f"output path {str(target)!r} has no folder name", expected="a folder path",
-                         hint="name a folder to create, e.g. --out results")
+        raise InputError(
+            f"output path {str(target)!r} has no folder name",
+            expected="a folder path",
+            hint="name a folder to create, e.g. --out results",
+        )
     _state(t)
     try:
         t.parent.mkdir(parents=True, exist_ok=True)
         folder = t.parent / f".{t.name}.v-{_owner_id()}-{secrets.token_hex(4)}"
         folder.mkdir()
     except OSError as e:
-        raise InputError(f"cannot create output folder {str(t)!r} ({e.strerror or e})",
-                         expected="a path in a folder you may write",
-                         hint="check the path and its permissions, or choose another --out") from None
+        raise InputError(
+            f"cannot create output folder {str(t)!r} ({e.strerror or e})",
+            expected="a path in a folder you may write",
+            hint="check the path and its permissions, or choose another --out",
+        ) from None
     _IN_FLIGHT.add(folder.name)
     return Reservation(t, folder)

@@ -26,9 +26,18 @@ import numpy as np
 
 from isoscope.errors import InputError, did_you_mean, hints
 
-__all__ = ["Initializer", "gaussian", "orthogonal", "uniform", "gaussian_bias",
-           "delta_orthogonal", "conv_kernel", "get_initializer", "initializer_names",
-           "reused_draws"]
+__all__ = [
+    "Initializer",
+    "gaussian",
+    "orthogonal",
+    "uniform",
+    "gaussian_bias",
+    "delta_orthogonal",
+    "conv_kernel",
+    "get_initializer",
+    "initializer_names",
+    "reused_draws",
+]
 
 
 class Initializer(Protocol):
@@ -39,8 +48,9 @@ class Initializer(Protocol):
 
 def _fans(shape: tuple[int, ...]) -> tuple[int, int]:
     if len(shape) < 2:
-        raise InputError(f"weight shape {shape} has fewer than 2 axes",
-                         expected="(..., fan_out, fan_in)")
+        raise InputError(
+            f"weight shape {shape} has fewer than 2 axes", expected="(..., fan_out, fan_in)"
+        )
     return int(shape[-2]), int(shape[-1])
 
 
@@ -62,8 +72,11 @@ class _DrawCache:
         self.hits = self.misses = 0
 
     def get(self, kind: str, sampler: Callable, key, shape: tuple[int, ...], dtype) -> jax.Array:
-        data = (jax.random.key_data(key) if jax.dtypes.issubdtype(key.dtype, jax.dtypes.prng_key)
-                else key)
+        data = (
+            jax.random.key_data(key)
+            if jax.dtypes.issubdtype(key.dtype, jax.dtypes.prng_key)
+            else key
+        )
         try:
             raw = np.asarray(data).tobytes()
         except jax.errors.TracerArrayConversionError:  # inside a trace: no concrete key
@@ -85,7 +98,7 @@ class _DrawCache:
         return value
 
 
-_CACHE: list[_DrawCache] = []   # the innermost active cache, if any
+_CACHE: list[_DrawCache] = []  # the innermost active cache, if any
 
 
 def _unit(kind: str, sampler: Callable, key, shape: tuple[int, ...], dtype) -> jax.Array:
@@ -96,7 +109,7 @@ def _unit(kind: str, sampler: Callable, key, shape: tuple[int, ...], dtype) -> j
 
 
 @contextlib.contextmanager
-def reused_draws(max_bytes: int = 2 ** 30) -> Iterator[_DrawCache]:
+def reused_draws(max_bytes: int = 2**30) -> Iterator[_DrawCache]:
     """Keep unit draws (Haar matrices, unit normals and uniforms, before scaling) for the block.
 
     Every initializer multiplies a unit draw by its scale outside the sampler, so two designs
@@ -154,10 +167,10 @@ def _unit_haar(key, shape, dtype):
 def _haar_from_normal(z):
     """The Householder construction of :func:`_haar` from the Gaussian matrix z."""
     dtype = z.dtype
-    below = jnp.tril(z, -1)                                 # x_k = z[k+1:, k]
-    alpha = jnp.diagonal(z, axis1=-2, axis2=-1)             # first entry of a_k
+    below = jnp.tril(z, -1)  # x_k = z[k+1:, k]
+    alpha = jnp.diagonal(z, axis1=-2, axis2=-1)  # first entry of a_k
     x_norm = jnp.sqrt(jnp.sum(below * below, axis=-2))
-    nonzero = x_norm > 0                                    # false only for a length-1 a_k
+    nonzero = x_norm > 0  # false only for a length-1 a_k
     positive = alpha >= 0
     beta = jnp.where(positive, -1.0, 1.0).astype(dtype) * jnp.hypot(alpha, x_norm)
     tau = jnp.where(nonzero, (beta - alpha) / beta, 0.0).astype(dtype)
@@ -176,8 +189,9 @@ def gaussian(scale: float = 1.0) -> Initializer:
 
     def init(key, shape, dtype=jnp.float64):
         _, fan_in = _fans(shape)
-        return (_unit("normal", _unit_normal, key, tuple(shape), dtype)
-                * jnp.asarray(scale / fan_in ** 0.5, dtype))
+        return _unit("normal", _unit_normal, key, tuple(shape), dtype) * jnp.asarray(
+            scale / fan_in**0.5, dtype
+        )
 
     return init
 
@@ -247,11 +261,14 @@ def initializer_names() -> tuple[str, ...]:
 # A kernel stack has shape (L, *taps, C_in, C_out) (lax.conv_general_dilated's "WIO"/"HWIO"
 # layout with a leading layer axis): h[p, o] = sum_{t, i} x[p + t - c, i] K[t, i, o].
 
+
 def _kernel_fans(shape: tuple[int, ...]) -> tuple[int, int, int]:
     """``(fan_in, fan_out, taps)`` of a kernel stack ``(L, *taps, C_in, C_out)``."""
     if len(shape) < 4:
-        raise InputError(f"kernel shape {shape} has fewer than 4 axes",
-                         expected="(layers, *taps, channels_in, channels_out)")
+        raise InputError(
+            f"kernel shape {shape} has fewer than 4 axes",
+            expected="(layers, *taps, channels_in, channels_out)",
+        )
     taps = math.prod(shape[1:-2])
     return int(shape[-2]) * taps, int(shape[-1]) * taps, taps
 
@@ -281,20 +298,25 @@ def delta_orthogonal(scale: float = 1.0) -> Initializer:
 def _gaussian_kernel(scale: float) -> Initializer:
     """Gaussian kernels ``K ~ N(0, scale^2 / (C_in * taps))`` (the fan-in variance of the
     convolution's rows, He et al. 2015, sec. 2.2)."""
+
     def init(key, shape, dtype=jnp.float64):
         fan_in, _, _ = _kernel_fans(shape)
-        return (_unit("normal", _unit_normal, key, tuple(shape), dtype)
-                * jnp.asarray(scale / fan_in ** 0.5, dtype))
+        return _unit("normal", _unit_normal, key, tuple(shape), dtype) * jnp.asarray(
+            scale / fan_in**0.5, dtype
+        )
+
     return init
 
 
 def _uniform_kernel(scale: float) -> Initializer:
     """Uniform kernels on ``[-a, a]``, ``a = scale sqrt(6 / (fan_in + fan_out))`` with
     ``fan = channels * taps`` (Glorot & Bengio 2010, eq. 16 with a gain)."""
+
     def init(key, shape, dtype=jnp.float64):
         fan_in, fan_out, _ = _kernel_fans(shape)
         bound = scale * (6.0 / (fan_in + fan_out)) ** 0.5
         return _unit("uniform", _unit_uniform, key, tuple(shape), dtype) * jnp.asarray(bound, dtype)
+
     return init
 
 
@@ -317,12 +339,17 @@ def conv_kernel(name: str, scale: float) -> Initializer:
     """
     key = str(name).lower()
     if key not in _KERNEL_INITIALIZERS:
-        raise InputError(f"weight initializer {name!r} has no convolution kernel form",
-                         expected=f"one of {', '.join(_KERNEL_INITIALIZERS)}",
-                         hint="delta-orthogonal is the orthogonal initializer of a convolution")
+        raise InputError(
+            f"weight initializer {name!r} has no convolution kernel form",
+            expected=f"one of {', '.join(_KERNEL_INITIALIZERS)}",
+            hint="delta-orthogonal is the orthogonal initializer of a convolution",
+        )
     if not scale >= 0:
-        raise InputError(f"weight scale sigma_w = {scale!r} is negative or not a number",
-                         expected="a number >= 0", hint="give sigma_w as a scale, not a variance")
+        raise InputError(
+            f"weight scale sigma_w = {scale!r} is negative or not a number",
+            expected="a number >= 0",
+            hint="give sigma_w as a scale, not a variance",
+        )
     return _KERNEL_INITIALIZERS[key](float(scale))
 
 
@@ -334,14 +361,21 @@ def get_initializer(name: str, scale: float) -> Initializer:
     """
     key = str(name).lower()
     if key == "delta-orthogonal":
-        raise InputError("weight initializer 'delta-orthogonal' is a convolution kernel",
-                         expected=f"one of {', '.join(_WEIGHT_INITIALIZERS)} for a dense layer",
-                         hint="use orthogonal for dense layers")
+        raise InputError(
+            "weight initializer 'delta-orthogonal' is a convolution kernel",
+            expected=f"one of {', '.join(_WEIGHT_INITIALIZERS)} for a dense layer",
+            hint="use orthogonal for dense layers",
+        )
     if key not in _WEIGHT_INITIALIZERS:
-        raise InputError(f"unknown weight initializer {name!r}",
-                         expected=f"one of {', '.join(_WEIGHT_INITIALIZERS)}",
-                         hint=hints(did_you_mean(name, _WEIGHT_INITIALIZERS), "check the spelling"))
+        raise InputError(
+            f"unknown weight initializer {name!r}",
+            expected=f"one of {', '.join(_WEIGHT_INITIALIZERS)}",
+            hint=hints(did_you_mean(name, _WEIGHT_INITIALIZERS), "check the spelling"),
+        )
     if not scale >= 0:
-        raise InputError(f"weight scale sigma_w = {scale!r} is negative or not a number",
-                         expected="a number >= 0", hint="give sigma_w as a scale, not a variance")
+        raise InputError(
+            f"weight scale sigma_w = {scale!r} is negative or not a number",
+            expected="a number >= 0",
+            hint="give sigma_w as a scale, not a variance",
+        )
     return _WEIGHT_INITIALIZERS[key](scale)

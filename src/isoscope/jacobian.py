@@ -37,10 +37,24 @@ import numpy as np
 
 from isoscope.network import Network
 
-__all__ = ["dense_jacobian", "layer_product", "qr_log_singular_values", "forward_fault",
-           "jacobian_fault", "Fault", "trace_count", "ProfiledJacobian", "profiled_jacobian",
-           "PartialSpectra", "partial_spectra", "LayerStatistics", "layer_statistics",
-           "StableProduct", "stable_log_singular_values", "graded_log_singular_values"]
+__all__ = [
+    "dense_jacobian",
+    "layer_product",
+    "qr_log_singular_values",
+    "forward_fault",
+    "jacobian_fault",
+    "Fault",
+    "trace_count",
+    "ProfiledJacobian",
+    "profiled_jacobian",
+    "PartialSpectra",
+    "partial_spectra",
+    "LayerStatistics",
+    "layer_statistics",
+    "StableProduct",
+    "stable_log_singular_values",
+    "graded_log_singular_values",
+]
 
 _TRACES = {"count": 0}
 
@@ -55,10 +69,11 @@ def _counted(fn):
     def wrapper(*args):
         _TRACES["count"] += 1  # runs at trace time only: counts compilations
         return fn(*args)
+
     return wrapper
 
 
-@functools.lru_cache(maxsize=None)
+@functools.cache
 def _compiled_jacfwd(apply):
     return jax.jit(_counted(jax.jacfwd(apply, argnums=1)))
 
@@ -91,7 +106,7 @@ class Fault(NamedTuple):
     detail: str
 
 
-@functools.lru_cache(maxsize=None)
+@functools.cache
 def _compiled_trace(trace):
     return jax.jit(trace)
 
@@ -110,11 +125,13 @@ def forward_fault(network: Network, params, x: jax.Array) -> Fault | None:
     bad = ~np.all(np.isfinite(np.asarray(hs)), axis=-1)
     if bad.any():
         layer = int(np.argmax(bad)) + 1
-        return Fault("forward", layer, f"pre-activations overflow at layer {layer} of {network.depth}")
+        return Fault(
+            "forward", layer, f"pre-activations overflow at layer {layer} of {network.depth}"
+        )
     return None
 
 
-@functools.lru_cache(maxsize=None)
+@functools.cache
 def _compiled_layer_product(layer):
     layer_jac = jax.jacfwd(layer, argnums=1)
 
@@ -123,6 +140,7 @@ def _compiled_layer_product(layer):
             x, t = carry
             t = layer_jac(p, x) @ t
             return (layer(p, x), t), jnp.all(jnp.isfinite(t))
+
         n = x.shape[0]
         (y, t), finite = jax.lax.scan(step, (x, jnp.eye(n, dtype=x.dtype)), slices)
         return t, finite
@@ -148,9 +166,12 @@ def jacobian_fault(network: Network, params, x: jax.Array) -> Fault | None:
     if finite.all():
         return None
     layer = int(np.argmax(~finite)) + 1
-    return Fault("jacobian", layer,
-                 f"the Jacobian product overflows at layer {layer} of {network.depth}"
-                 f" in {jnp.asarray(x).dtype}")
+    return Fault(
+        "jacobian",
+        layer,
+        f"the Jacobian product overflows at layer {layer} of {network.depth}"
+        f" in {jnp.asarray(x).dtype}",
+    )
 
 
 class ProfiledJacobian(NamedTuple):
@@ -189,7 +210,7 @@ def _power_of_two_split(t: jax.Array, dtype) -> tuple[jax.Array, jax.Array]:
     return t * jnp.ldexp(jnp.ones((), dtype), -k), k
 
 
-@functools.lru_cache(maxsize=None)
+@functools.cache
 def _compiled_profiled(layer):
     def run(slices, x, slot, count):
         n, dtype = x.shape[0], x.dtype
@@ -197,16 +218,22 @@ def _compiled_profiled(layer):
         def step(carry, inputs):
             p, where = inputs
             x, t, k, buf, exps = carry
-            y, t = jax.vmap(lambda v: jax.jvp(lambda u: layer(p, u), (x,), (v,)), in_axes=1,
-                            out_axes=(None, 1))(t)
+            y, t = jax.vmap(
+                lambda v: jax.jvp(lambda u: layer(p, u), (x,), (v,)), in_axes=1, out_axes=(None, 1)
+            )(t)
             t, dk = _power_of_two_split(t, dtype)
             k = k + dk
             buf = jax.lax.dynamic_update_index_in_dim(buf, t, where, 0)
             exps = jax.lax.dynamic_update_index_in_dim(exps, k, where, 0)
             return (y, t, k, buf, exps), None
 
-        init = (x, jnp.eye(n, dtype=dtype), jnp.zeros((), jnp.int32),
-                jnp.zeros((count + 1, n, n), dtype), jnp.zeros(count + 1, jnp.int32))
+        init = (
+            x,
+            jnp.eye(n, dtype=dtype),
+            jnp.zeros((), jnp.int32),
+            jnp.zeros((count + 1, n, n), dtype),
+            jnp.zeros(count + 1, jnp.int32),
+        )
         (_, t, k, buf, exps), _ = jax.lax.scan(step, init, (slices, slot))
         return jnp.ldexp(t, k), buf[:count], exps[:count]
 
@@ -235,12 +262,18 @@ def profiled_jacobian(network: Network, params, x: jax.Array, depths) -> Profile
     if network.layer is None:
         raise ValueError("profiled_jacobian needs a built-in stack with per-layer structure")
     depths = np.asarray(depths, dtype=int)
-    if depths.size == 0 or np.any(np.diff(depths) <= 0) or depths[0] < 1 or depths[-1] > network.depth:
+    if (
+        depths.size == 0
+        or np.any(np.diff(depths) <= 0)
+        or depths[0] < 1
+        or depths[-1] > network.depth
+    ):
         raise ValueError(f"depths must increase within 1..{network.depth}, got {depths.tolist()}")
     slot = np.full(network.depth, depths.size, dtype=np.int32)  # unkept layers write a scratch slot
     slot[depths - 1] = np.arange(depths.size, dtype=np.int32)
-    j, m, e = _compiled_profiled(network.layer)(network.layer_slices(params), x, jnp.asarray(slot),
-                                                int(depths.size))
+    j, m, e = _compiled_profiled(network.layer)(
+        network.layer_slices(params), x, jnp.asarray(slot), int(depths.size)
+    )
     return ProfiledJacobian(j, depths, m, e)
 
 
@@ -270,7 +303,7 @@ class PartialSpectra(NamedTuple):
         return np.ldexp(self.s[row], int(self.exponents[row]))
 
 
-@functools.lru_cache(maxsize=None)
+@functools.cache
 def _batched_svd():
     return jax.jit(lambda m: jnp.linalg.svd(m, compute_uv=False))
 
@@ -299,19 +332,19 @@ class LayerStatistics(NamedTuple):
     gain: np.ndarray
 
 
-@functools.lru_cache(maxsize=None)
+@functools.cache
 def _compiled_statistics(trace, family: str, activation):
     def run(params, x):
         _, h = trace(params, x)
         n = h.shape[-1]
-        d = activation.derivative(h)                        # phi'(h^l_i), shape (L, N)
-        if "K" in params:       # row (p, o) of a circular convolution: every K[taps, :, o]
+        d = activation.derivative(h)  # phi'(h^l_i), shape (L, N)
+        if "K" in params:  # row (p, o) of a circular convolution: every K[taps, :, o]
             k = params["K"]
-            per_channel = jnp.sum(k ** 2, axis=tuple(range(1, k.ndim - 1)))   # (L, C)
+            per_channel = jnp.sum(k**2, axis=tuple(range(1, k.ndim - 1)))  # (L, C)
             rows = jnp.tile(per_channel, (1, n // k.shape[-1]))  # flat index p * C + o
         else:
-            rows = jnp.sum(params["W"] ** 2, axis=-1)       # |W^l_{i,:}|^2
-        branch = jnp.sum(d * d * rows, axis=-1) / n         # ||D W||_F^2 / N
+            rows = jnp.sum(params["W"] ** 2, axis=-1)  # |W^l_{i,:}|^2
+        branch = jnp.sum(d * d * rows, axis=-1) / n  # ||D W||_F^2 / N
         if family != "residual":
             gain = branch
         else:
@@ -346,12 +379,14 @@ def layer_statistics(network: Network, params, x: jax.Array) -> LayerStatistics:
     activation, width, depth, dtype).
     """
     if network.trace is None or network.family not in ("plain", "residual", "conv1d", "conv2d"):
-        raise ValueError("layer_statistics needs a built-in stack (plain, residual, conv1d, conv2d)")
+        raise ValueError(
+            "layer_statistics needs a built-in stack (plain, residual, conv1d, conv2d)"
+        )
     q, g = _compiled_statistics(network.trace, network.family, network.activation)(params, x)
     return LayerStatistics(np.asarray(q, dtype=np.float64), np.asarray(g, dtype=np.float64))
 
 
-@functools.lru_cache(maxsize=None)
+@functools.cache
 def _compiled_qr(layer):
     layer_jac = jax.jacfwd(layer, argnums=1)
 
@@ -363,6 +398,7 @@ def _compiled_qr(layer):
             d = jnp.diagonal(r)
             signs = jnp.where(d < 0, -1.0, 1.0).astype(q.dtype)
             return (layer(p, x), q * signs[None, :], logs + jnp.log(jnp.abs(d))), None
+
         n = x.shape[0]
         init = (x, jnp.eye(n, dtype=x.dtype), jnp.zeros(n, dtype=x.dtype))
         (y, q, logs), _ = jax.lax.scan(step, init, slices)
@@ -456,30 +492,45 @@ def _udt_pivoted(a, log_d, t):
         p = jnp.argmax(key)
         x = w[:, p] * below
         alpha = norms[p]
-        sign = jnp.where(x[k] < 0, -1.0, 1.0).astype(dtype)   # H x = -sign alpha e_k
+        sign = jnp.where(x[k] < 0, -1.0, 1.0).astype(dtype)  # H x = -sign alpha e_k
         v = x.at[k].add(sign * alpha)
         vv = v @ v
         beta = jnp.where(vv > 0, 2.0 / jnp.where(vv > 0, vv, 1.0), 0.0)
         free = (~chosen).astype(dtype)
         w = w - beta * v[:, None] * (v @ w)[None, :] * free[None, :]
-        r = -sign * w[k]                                       # row k of R, r_kk = alpha
+        r = -sign * w[k]  # row k of R, r_kk = alpha
         chosen_next = chosen.at[p].set(True)
         deg = key[p] == -jnp.inf
         lr = jnp.log(alpha).astype(ldt)
         expo = jnp.log(jnp.abs(r)).astype(ldt) - lr + log_d - jnp.where(deg, 0, log_d[p])
         row = jnp.sign(r) * jnp.exp(jnp.minimum(expo, 709.0)).astype(dtype)
         row = jnp.where(chosen_next | deg, 0, row).at[p].set(1)
-        return (w, chosen_next, vs.at[:, k].set(v), betas.at[k].set(beta),
-                signs.at[k].set(-sign), f.at[k].set(row),
-                new_d.at[k].set(jnp.where(deg, neg_inf, lr + log_d[p])), log_r.at[k].set(lr))
+        return (
+            w,
+            chosen_next,
+            vs.at[:, k].set(v),
+            betas.at[k].set(beta),
+            signs.at[k].set(-sign),
+            f.at[k].set(row),
+            new_d.at[k].set(jnp.where(deg, neg_inf, lr + log_d[p])),
+            log_r.at[k].set(lr),
+        )
 
-    def build(i, q):                    # Q = H_0 ... H_(n-1), applied from the last reflector
+    def build(i, q):  # Q = H_0 ... H_(n-1), applied from the last reflector
         k = n - 1 - i
         v = vs[:, k]
         return q - betas[k] * v[:, None] * (v @ q)[None, :]
 
-    init = (a, jnp.zeros(n, bool), jnp.zeros_like(a), jnp.zeros(n, dtype), jnp.zeros(n, dtype),
-            jnp.zeros_like(a), jnp.zeros(n, ldt), jnp.zeros(n, ldt))
+    init = (
+        a,
+        jnp.zeros(n, bool),
+        jnp.zeros_like(a),
+        jnp.zeros(n, dtype),
+        jnp.zeros(n, dtype),
+        jnp.zeros_like(a),
+        jnp.zeros(n, ldt),
+        jnp.zeros(n, ldt),
+    )
     _, _, vs, betas, signs, f, new_d, log_r = jax.lax.fori_loop(0, n, step, init)
     q = jax.lax.fori_loop(0, n, build, jnp.eye(n, dtype=dtype)) * signs[None, :]
     return q, new_d, f @ t, log_r
@@ -521,11 +572,10 @@ def _udt_step(a, log_d, t):
     """
     q, new_d, new_t, log_r, worst = _udt_prepivoted(a, log_d, t)
     ok = (worst <= PREPIVOT_BOUND) & jnp.all(jnp.isfinite(new_d)) & jnp.all(jnp.isfinite(new_t))
-    return jax.lax.cond(ok, lambda: (q, new_d, new_t, log_r),
-                        lambda: _udt_pivoted(a, log_d, t))
+    return jax.lax.cond(ok, lambda: (q, new_d, new_t, log_r), lambda: _udt_pivoted(a, log_d, t))
 
 
-@functools.lru_cache(maxsize=None)
+@functools.cache
 def _compiled_stable(layer):
     def run(slices, x, slot, count):
         n, dtype = x.shape[0], x.dtype
@@ -534,24 +584,32 @@ def _compiled_stable(layer):
         def step(carry, inputs):
             p, where = inputs
             x, u, log_d, t, t_buf, d_buf = carry
-            y, a = jax.vmap(lambda v: jax.jvp(lambda z: layer(p, z), (x,), (v,)), in_axes=1,
-                            out_axes=(None, 1))(u)
+            y, a = jax.vmap(
+                lambda v: jax.jvp(lambda z: layer(p, z), (x,), (v,)), in_axes=1, out_axes=(None, 1)
+            )(u)
             u, log_d, t, log_r = _udt_step(a, log_d, t)
             t_buf = jax.lax.dynamic_update_index_in_dim(t_buf, t, where, 0)
             d_buf = jax.lax.dynamic_update_index_in_dim(d_buf, log_d, where, 0)
             return (y, u, log_d, t, t_buf, d_buf), log_r
 
         eye = jnp.eye(n, dtype=dtype)
-        init = (x, eye, jnp.zeros(n, ld_dtype), eye, jnp.zeros((count + 1, n, n), dtype),
-                jnp.zeros((count + 1, n), ld_dtype))
+        init = (
+            x,
+            eye,
+            jnp.zeros(n, ld_dtype),
+            eye,
+            jnp.zeros((count + 1, n, n), dtype),
+            jnp.zeros((count + 1, n), ld_dtype),
+        )
         (_, _, _, _, t_buf, d_buf), stretch = jax.lax.scan(step, init, (slices, slot))
         return t_buf[:count], d_buf[:count], stretch
 
     return jax.jit(_counted(run), static_argnums=(3,))
 
 
-def graded_log_singular_values(log_d: np.ndarray, t: np.ndarray, tol: float | None = None,
-                               max_sweeps: int = 80) -> tuple[np.ndarray, int]:
+def graded_log_singular_values(
+    log_d: np.ndarray, t: np.ndarray, tol: float | None = None, max_sweeps: int = 80
+) -> tuple[np.ndarray, int]:
     """``ln s`` of ``D T`` (D diagonal given as ``ln d``, T well-conditioned) to high relative
     accuracy, however far d spreads, by one-sided Jacobi on columns held as (unit vector, log
     scale).
@@ -570,7 +628,7 @@ def graded_log_singular_values(log_d: np.ndarray, t: np.ndarray, tol: float | No
     Returns:
       ``(ln s decreasing, sweeps)``.
     """
-    w = np.array(np.asarray(t, dtype=np.float64).T)          # columns w_k = T[k, :]
+    w = np.array(np.asarray(t, dtype=np.float64).T)  # columns w_k = T[k, :]
     lv = np.asarray(log_d, dtype=np.float64).copy()
     n = lv.size
     norms = np.linalg.norm(w, axis=0)
@@ -582,7 +640,7 @@ def graded_log_singular_values(log_d: np.ndarray, t: np.ndarray, tol: float | No
     players = list(range(n)) + ([-1] if n % 2 else [])
     m = len(players)
     sweeps = 0
-    for sweeps in range(1, max_sweeps + 1):
+    for sweeps in range(1, max_sweeps + 1):  # noqa: B007 (the count is returned)
         worst = 0.0
         order = players[:]
         for _ in range(m - 1):
@@ -590,16 +648,16 @@ def graded_log_singular_values(log_d: np.ndarray, t: np.ndarray, tol: float | No
             pb = np.array([order[m - 1 - k] for k in range(m // 2)])
             keep = (pa >= 0) & (pb >= 0)
             pa, pb = pa[keep], pb[keep]
-            swap = lv[pa] < lv[pb]                        # a: the larger column of each pair
+            swap = lv[pa] < lv[pb]  # a: the larger column of each pair
             pa, pb = np.where(swap, pb, pa), np.where(swap, pa, pb)
             gamma = np.einsum("ij,ij->j", w[:, pa], w[:, pb])
             gamma = np.where(np.isfinite(lv[pb]), gamma, 0.0)
             worst = max(worst, float(np.max(np.abs(gamma), initial=0.0)))
-            act = (np.abs(gamma) > tol) & np.isfinite(lv[pb])   # a zero column is orthogonal
+            act = (np.abs(gamma) > tol) & np.isfinite(lv[pb])  # a zero column is orthogonal
             if act.any():
                 a_i, b_i, g = pa[act], pb[act], gamma[act]
                 delta = lv[a_i] - lv[b_i]
-                r2 = np.exp(-2.0 * delta)                 # (|b| / |a|)^2 <= 1
+                r2 = np.exp(-2.0 * delta)  # (|b| / |a|)^2 <= 1
                 # |zeta| e^-delta = (1 - r2) / (2 |gamma|); kappa = t e^delta
                 z = (1.0 - r2) / (2.0 * np.abs(g))
                 kappa = -np.sign(g) / (z + np.sqrt(r2 + z * z))
@@ -617,7 +675,9 @@ def graded_log_singular_values(log_d: np.ndarray, t: np.ndarray, tol: float | No
     return np.sort(lv)[::-1], sweeps
 
 
-def stable_log_singular_values(network: Network, params, x: jax.Array, depths=None) -> StableProduct:
+def stable_log_singular_values(
+    network: Network, params, x: jax.Array, depths=None
+) -> StableProduct:
     """``ln s`` of ``J = J_L ... J_1`` to full accuracy, by a stabilised product (the deep route).
 
     The partial product is kept as ``U D T`` (U orthogonal, D diagonal held as ``ln d``, T
@@ -644,7 +704,8 @@ def stable_log_singular_values(network: Network, params, x: jax.Array, depths=No
     slot = np.full(network.depth, keep.size, dtype=np.int32)
     slot[keep - 1] = np.arange(keep.size, dtype=np.int32)
     t_buf, d_buf, stretch = _compiled_stable(network.layer)(
-        network.layer_slices(params), x, jnp.asarray(slot), int(keep.size))
+        network.layer_slices(params), x, jnp.asarray(slot), int(keep.size)
+    )
     t_buf, d_buf = np.asarray(t_buf), np.asarray(d_buf)
     stretch = np.asarray(stretch, dtype=np.float64)
     running = np.maximum.accumulate(_rank_deficits(stretch, np.asarray(x).dtype))
@@ -657,6 +718,12 @@ def stable_log_singular_values(network: Network, params, x: jax.Array, depths=No
     full = rows[-1] if keep[-1] == network.depth else None
     if full is None:
         full = stable_log_singular_values(network, params, x).log_s
-    return StableProduct(full, None if depths is None else rows,
-                         None if depths is None else keep, stretch, sweeps,
-                         int(running[-1]), None if depths is None else partial)
+    return StableProduct(
+        full,
+        None if depths is None else rows,
+        None if depths is None else keep,
+        stretch,
+        sweeps,
+        int(running[-1]),
+        None if depths is None else partial,
+    )

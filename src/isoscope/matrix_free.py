@@ -42,8 +42,13 @@ import numpy as np
 from isoscope.errors import InputError
 from isoscope.network import Network
 
-__all__ = ["QuadratureRule", "lanczos_quadrature", "lanczos_tridiagonal", "quadrature_summary",
-           "rademacher_probes"]
+__all__ = [
+    "QuadratureRule",
+    "lanczos_quadrature",
+    "lanczos_tridiagonal",
+    "quadrature_summary",
+    "rademacher_probes",
+]
 
 
 class QuadratureRule(NamedTuple):
@@ -94,7 +99,7 @@ def lanczos_tridiagonal(matvec, probe: jax.Array, steps: int) -> tuple[jax.Array
         w = matvec(q)
         a = jnp.vdot(q, w)
         keep = (rows <= j).astype(dtype)
-        for _ in range(2):                        # "twice is enough" (Giraud et al. 2005)
+        for _ in range(2):  # "twice is enough" (Giraud et al. 2005)
             w = w - ((basis @ w) * keep) @ basis
         b = jnp.linalg.norm(w)
         scale = jnp.maximum(scale, jnp.maximum(jnp.abs(a), b))
@@ -126,7 +131,7 @@ def _gauss_rule(alpha: jax.Array, beta: jax.Array):
     t = jnp.diag(alpha) + jnp.diag(off, 1) + jnp.diag(off, -1)
     theta, y = jnp.linalg.eigh(t)
     b = beta[-1]
-    dead = (alpha == 0) & (jnp.concatenate([off, b[None]]) == 0)   # padding after exhaustion
+    dead = (alpha == 0) & (jnp.concatenate([off, b[None]]) == 0)  # padding after exhaustion
     safe = t + jnp.diag(dead.astype(t.dtype))
     delta = jnp.linalg.solve(safe, (b * b) * jax.nn.one_hot(m - 1, m, dtype=t.dtype))
     corner = jnp.where(b > 0, delta[-1], 0.0)
@@ -136,26 +141,29 @@ def _gauss_rule(alpha: jax.Array, beta: jax.Array):
     return jnp.maximum(radau, 0.0), z[0] ** 2, theta, y[0] ** 2, jnp.abs(b * y[-1])
 
 
-@functools.lru_cache(maxsize=None)
+@functools.cache
 def _compiled_rule(apply, steps: int):
     """One compiled function per network function and step count: parameters, input and
     probes are traced arguments, so new draws never recompile."""
+
     def run(params, x, probes):
         _, jvp = jax.linearize(lambda z: apply(params, z), x)
         transpose = jax.linear_transpose(jvp, x)
 
-        def gram(v):                                  # v -> J^T J v
+        def gram(v):  # v -> J^T J v
             return transpose(jvp(v))[0]
 
         def one(probe):
             return _gauss_rule(*lanczos_tridiagonal(gram, probe, steps))
 
         return jax.vmap(one)(probes)
+
     return jax.jit(run)
 
 
-def lanczos_quadrature(network: Network, params, x: jax.Array, key: jax.Array, *,
-                       probes: int = 8, steps: int = 80) -> QuadratureRule:
+def lanczos_quadrature(
+    network: Network, params, x: jax.Array, key: jax.Array, *, probes: int = 8, steps: int = 80
+) -> QuadratureRule:
     """Stochastic Lanczos quadrature of the spectral measure of ``J^T J`` at input ``x``.
 
     Args:
@@ -168,11 +176,17 @@ def lanczos_quadrature(network: Network, params, x: jax.Array, key: jax.Array, *
       A :class:`QuadratureRule` in the dtype of ``x``.
     """
     if isinstance(probes, bool) or not isinstance(probes, int) or probes < 1:
-        raise InputError(f"probes = {probes!r} is not a positive whole number",
-                         expected="an integer >= 1", key="analysis.probes")
+        raise InputError(
+            f"probes = {probes!r} is not a positive whole number",
+            expected="an integer >= 1",
+            key="analysis.probes",
+        )
     if isinstance(steps, bool) or not isinstance(steps, int) or steps < 1:
-        raise InputError(f"lanczos_steps = {steps!r} is not a positive whole number",
-                         expected="an integer >= 1", key="analysis.lanczos_steps")
+        raise InputError(
+            f"lanczos_steps = {steps!r} is not a positive whole number",
+            expected="an integer >= 1",
+            key="analysis.lanczos_steps",
+        )
     dim = int(x.shape[0])
     m = min(steps, dim)
     z = rademacher_probes(key, probes, dim, x.dtype)
@@ -196,13 +210,16 @@ def quadrature_summary(rule: QuadratureRule) -> dict[str, Any]:
     p = nodes.shape[0]
     out: dict[str, Any] = {"probes": int(p), "steps": int(nodes.shape[1]), "dim": int(rule.dim)}
     for k in range(1, 5):
-        per_probe = np.sum(weights * nodes ** k, axis=1)
+        per_probe = np.sum(weights * nodes**k, axis=1)
         out[f"m{k}"] = float(per_probe.mean())
-        out[f"m{k}_se"] = (float(per_probe.std(ddof=1) / math.sqrt(p)) if p > 1
-                           else float("nan"))
+        out[f"m{k}_se"] = float(per_probe.std(ddof=1) / math.sqrt(p)) if p > 1 else float("nan")
     top = np.unravel_index(np.argmax(nodes), nodes.shape)
     live = np.where(weights > 1e-12, nodes, np.inf)
     low = np.unravel_index(np.argmin(live), nodes.shape)
-    out.update(lambda_max=float(nodes[top]), lambda_max_residual=float(residuals[top]),
-               lambda_min=float(nodes[low]), lambda_min_residual=float(residuals[low]))
+    out.update(
+        lambda_max=float(nodes[top]),
+        lambda_max_residual=float(residuals[top]),
+        lambda_min=float(nodes[low]),
+        lambda_min_residual=float(residuals[low]),
+    )
     return out

@@ -79,23 +79,31 @@ class Network:
     def layer_slices(self, params: Params) -> Params:
         """Per-layer parameters as a pytree with a leading layer axis (for ``lax.scan``)."""
         if self.layer is None:
-            raise InputError("this network has no per-layer structure (a user's black box)",
-                             expected="a built-in family (plain, residual, conv1d, conv2d)",
-                             hint="use the dense Jacobian route for black-box networks")
+            raise InputError(
+                "this network has no per-layer structure (a user's black box)",
+                expected="a built-in family (plain, residual, conv1d, conv2d)",
+                hint="use the dense Jacobian route for black-box networks",
+            )
         return _slices(params)
 
 
 def _slices(params: Params) -> Params:
     if "K" in params:
         return {"K": params["K"], "b": params["b"]}
-    return {"W": params["W"], "b": params["b"],
-            "alpha": jnp.broadcast_to(params["alpha"], params["b"].shape[:1])}
+    return {
+        "W": params["W"],
+        "b": params["b"],
+        "alpha": jnp.broadcast_to(params["alpha"], params["b"].shape[:1]),
+    }
 
 
 def _check_size(name: str, value: Any) -> int:
     if isinstance(value, bool) or not isinstance(value, int) or value <= 0:
-        raise InputError(f"{name} = {value!r} is not a positive whole number",
-                         expected=f"an integer {name} >= 1", key=name)
+        raise InputError(
+            f"{name} = {value!r} is not a positive whole number",
+            expected=f"an integer {name} >= 1",
+            key=name,
+        )
     return value
 
 
@@ -103,12 +111,15 @@ def _check_scale(name: str, value: Any) -> float:
     try:
         v = float(value)
     except (TypeError, ValueError):
-        raise InputError(f"{name} = {value!r} is not a number", expected="a number >= 0",
-                         key=name) from None
+        raise InputError(
+            f"{name} = {value!r} is not a number", expected="a number >= 0", key=name
+        ) from None
     if not v >= 0 or v == float("inf"):
-        raise InputError(f"{name} = {value!r} is negative or not finite",
-                         expected="a finite number >= 0 (a scale: standard deviation times sqrt(fan_in))",
-                         key=name)
+        raise InputError(
+            f"{name} = {value!r} is negative or not finite",
+            expected="a finite number >= 0 (a scale: standard deviation times sqrt(fan_in))",
+            key=name,
+        )
     return v
 
 
@@ -116,18 +127,21 @@ def _check_scale(name: str, value: Any) -> float:
 def _layer_fns(family: str, phi: Callable) -> tuple[Callable, Callable]:
     """``(layer(p, x), output(p, x, h))``: one layer, and its output given ``h = W x + b``."""
     if family == "plain":
+
         def output(p, x, h):
             return phi(h)
     else:
+
         def output(p, x, h):
             return x + p["alpha"] * phi(h)
 
     def layer(p, x):
         return output(p, x, p["W"] @ x + p["b"])
+
     return layer, output
 
 
-@functools.lru_cache(maxsize=None)
+@functools.cache
 def _forward(family: str, activation: Activation):
     """Cached ``(layer, apply, trace)`` for a family and activation (one object per key; the
     registry returns one Activation per leaky slope, so slopes never share a function)."""
@@ -148,8 +162,16 @@ def _forward(family: str, activation: Activation):
     return layer, apply, trace
 
 
-def _stack(family: str, width: int, depth: int, activation: str | Activation, weights: str,
-           sigma_w: float, sigma_b: float, alpha: float) -> Network:
+def _stack(
+    family: str,
+    width: int,
+    depth: int,
+    activation: str | Activation,
+    weights: str,
+    sigma_w: float,
+    sigma_b: float,
+    alpha: float,
+) -> Network:
     width, depth = _check_size("width", width), _check_size("depth", depth)
     sigma_w, sigma_b = _check_scale("sigma_w", sigma_w), _check_scale("sigma_b", sigma_b)
     alpha = float(alpha)
@@ -160,17 +182,37 @@ def _stack(family: str, width: int, depth: int, activation: str | Activation, we
 
     def init(key: jax.Array, dtype=jnp.float64) -> Params:
         kw, kb = jax.random.split(key)
-        return {"W": w_init(kw, (depth, width, width), dtype),
-                "b": b_init(kb, (depth, width), dtype),
-                "alpha": jnp.asarray(alpha, dtype)}
+        return {
+            "W": w_init(kw, (depth, width, width), dtype),
+            "b": b_init(kb, (depth, width), dtype),
+            "alpha": jnp.asarray(alpha, dtype),
+        }
 
-    return Network(init=init, apply=apply, width=width, depth=depth, family=family,
-                   activation=act, layer=layer, trace=trace, weights=str(weights).lower(),
-                   sigma_w=sigma_w, sigma_b=sigma_b, alpha=alpha if family == "residual" else None)
+    return Network(
+        init=init,
+        apply=apply,
+        width=width,
+        depth=depth,
+        family=family,
+        activation=act,
+        layer=layer,
+        trace=trace,
+        weights=str(weights).lower(),
+        sigma_w=sigma_w,
+        sigma_b=sigma_b,
+        alpha=alpha if family == "residual" else None,
+    )
 
 
-def plain_stack(width: int, depth: int, activation: str | Activation = "tanh", *,
-                weights: str = "orthogonal", sigma_w: float = 1.0, sigma_b: float = 0.0) -> Network:
+def plain_stack(
+    width: int,
+    depth: int,
+    activation: str | Activation = "tanh",
+    *,
+    weights: str = "orthogonal",
+    sigma_w: float = 1.0,
+    sigma_b: float = 0.0,
+) -> Network:
     """A plain stack ``x^l = phi(W^l x^{l-1} + b^l)``, l = 1..depth, of constant width.
 
     Args:
@@ -188,9 +230,16 @@ def plain_stack(width: int, depth: int, activation: str | Activation = "tanh", *
     return _stack("plain", width, depth, activation, weights, sigma_w, sigma_b, 0.0)
 
 
-def residual_stack(width: int, depth: int, activation: str | Activation = "relu", *,
-                   weights: str = "gaussian", sigma_w: float = 1.0, sigma_b: float = 0.0,
-                   alpha: float = 1.0) -> Network:
+def residual_stack(
+    width: int,
+    depth: int,
+    activation: str | Activation = "relu",
+    *,
+    weights: str = "gaussian",
+    sigma_w: float = 1.0,
+    sigma_b: float = 0.0,
+    alpha: float = 1.0,
+) -> Network:
     """A residual stack ``x^l = x^{l-1} + alpha * phi(W^l x^{l-1} + b^l)``.
 
     Its Jacobian is ``prod_l (I + alpha diag(phi'(h^l)) W^l)`` (Tarnowski et al. 2019, eqs. 1-2);
@@ -199,7 +248,7 @@ def residual_stack(width: int, depth: int, activation: str | Activation = "relu"
     return _stack("residual", width, depth, activation, weights, sigma_w, sigma_b, alpha)
 
 
-@functools.lru_cache(maxsize=None)
+@functools.cache
 def _conv_forward(size: tuple[int, ...], activation: Activation):
     """Cached ``(layer, apply, trace)`` of a circular convolution stack on ``size`` positions.
 
@@ -214,9 +263,13 @@ def _conv_forward(size: tuple[int, ...], activation: Activation):
         k = p["K"]
         image = x.reshape((1, *size, k.shape[-1]))
         pad = [(0, 0)] + [((t - 1) // 2, (t - 1) // 2) for t in k.shape[:-2]] + [(0, 0)]
-        out = jax.lax.conv_general_dilated(jnp.pad(image, pad, mode="wrap"), k,
-                                           window_strides=(1,) * dims, padding="VALID",
-                                           dimension_numbers=numbers)
+        out = jax.lax.conv_general_dilated(
+            jnp.pad(image, pad, mode="wrap"),
+            k,
+            window_strides=(1,) * dims,
+            padding="VALID",
+            dimension_numbers=numbers,
+        )
         return (out + p["b"]).reshape(-1)
 
     def layer(p, x):
@@ -235,9 +288,18 @@ def _conv_forward(size: tuple[int, ...], activation: Activation):
     return layer, apply, trace
 
 
-def conv_stack(dims: int, channels: int, size, kernel: int, depth: int,
-               activation: str | Activation = "tanh", *, weights: str = "delta-orthogonal",
-               sigma_w: float = 1.0, sigma_b: float = 0.0) -> Network:
+def conv_stack(
+    dims: int,
+    channels: int,
+    size,
+    kernel: int,
+    depth: int,
+    activation: str | Activation = "tanh",
+    *,
+    weights: str = "delta-orthogonal",
+    sigma_w: float = 1.0,
+    sigma_b: float = 0.0,
+) -> Network:
     """A stack of circular convolutions ``x^l = phi(K^l * x^{l-1} + b^l)`` over 1 or 2
     spatial dimensions, ``channels`` in and out at every layer.
 
@@ -266,9 +328,11 @@ def conv_stack(dims: int, channels: int, size, kernel: int, depth: int,
     channels, depth = _check_size("channels", channels), _check_size("depth", depth)
     kernel = _check_size("kernel", kernel)
     if kernel % 2 == 0 or kernel > min(size):
-        raise InputError(f"kernel = {kernel} with size {size}",
-                         expected="an odd kernel size no larger than every spatial size",
-                         key="kernel")
+        raise InputError(
+            f"kernel = {kernel} with size {size}",
+            expected="an odd kernel size no larger than every spatial size",
+            key="kernel",
+        )
     sigma_w, sigma_b = _check_scale("sigma_w", sigma_w), _check_scale("sigma_b", sigma_b)
     act = get_activation(activation)
     k_init = conv_kernel(weights, sigma_w)
@@ -281,15 +345,30 @@ def conv_stack(dims: int, channels: int, size, kernel: int, depth: int,
         return {"K": k_init(kk, shape, dtype), "b": b_init(kb, (depth, channels), dtype)}
 
     width = channels * math.prod(size)
-    return Network(init=init, apply=apply, width=width, depth=depth,
-                   family="conv1d" if dims == 1 else "conv2d", activation=act, layer=layer,
-                   trace=trace, weights=str(weights).lower(), sigma_w=sigma_w, sigma_b=sigma_b,
-                   channels=channels, size=size, kernel=kernel)
+    return Network(
+        init=init,
+        apply=apply,
+        width=width,
+        depth=depth,
+        family="conv1d" if dims == 1 else "conv2d",
+        activation=act,
+        layer=layer,
+        trace=trace,
+        weights=str(weights).lower(),
+        sigma_w=sigma_w,
+        sigma_b=sigma_b,
+        channels=channels,
+        size=size,
+        kernel=kernel,
+    )
 
 
-def custom_network(init: Callable[[jax.Array, Any], Params],
-                   apply: Callable[[Params, jax.Array], jax.Array],
-                   width: int, depth: int | None = None) -> Network:
+def custom_network(
+    init: Callable[[jax.Array, Any], Params],
+    apply: Callable[[Params, jax.Array], jax.Array],
+    width: int,
+    depth: int | None = None,
+) -> Network:
     """Wrap a user's pure ``(init, apply)`` pair as a black-box :class:`Network`.
 
     ``init(key, dtype)`` returns the parameters in that dtype, ``apply(params, x)`` maps one
@@ -298,7 +377,9 @@ def custom_network(init: Callable[[jax.Array, Any], Params],
     every draw so that the Jacobian compiles once.
     """
     if not callable(init) or not callable(apply):
-        raise InputError("init and apply must be callables",
-                         expected="init(key, dtype) and apply(params, x)")
-    return Network(init=init, apply=apply, width=_check_size("width", width), depth=depth,
-                   family="python")
+        raise InputError(
+            "init and apply must be callables", expected="init(key, dtype) and apply(params, x)"
+        )
+    return Network(
+        init=init, apply=apply, width=_check_size("width", width), depth=depth, family="python"
+    )

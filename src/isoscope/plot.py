@@ -16,26 +16,39 @@ import numpy as np
 
 from isoscope.spectrum import Spectrum
 
-__all__ = ["log_s_figure", "lambda_figure", "comparison_figure", "cdf_overlay_figure", "depth_figure", "critical_figure",
-           "phase_figure", "curves_figure", "PredictedLaw", "save", "SPREAD_DECADES"]
+__all__ = [
+    "log_s_figure",
+    "lambda_figure",
+    "comparison_figure",
+    "cdf_overlay_figure",
+    "depth_figure",
+    "critical_figure",
+    "phase_figure",
+    "curves_figure",
+    "PredictedLaw",
+    "save",
+    "SPREAD_DECADES",
+]
 
 MEASURED = "#2f6f73"
 PREDICTED = "#c4512b"
 REFERENCE = "#333333"
-SHADE = "#d9d4c7"   # depths at which the measured partial product is no longer isometric
+SHADE = "#d9d4c7"  # depths at which the measured partial product is no longer isometric
 DESIGN_COLOURS = ("#2f6f73", "#c4512b", "#6b5b95", "#b8860b", "#3b7d3b", "#8c564b")
 
 
 def _pyplot():
     import matplotlib
+
     matplotlib.use("Agg", force=False)
     import matplotlib.pyplot as plt
+
     return plt
 
 
-SPREAD_DECADES = 1.5   # lambda spanning more decades than this is drawn on a log axis (convention)
-CONTEXT = 1.5          # the log axes reach at most this many data widths beyond the measured values
-NOTE_SHARE = 1e-3      # shares of the prediction outside the axis below this are not mentioned
+SPREAD_DECADES = 1.5  # lambda spanning more decades than this is drawn on a log axis (convention)
+CONTEXT = 1.5  # the log axes reach at most this many data widths beyond the measured values
+NOTE_SHARE = 1e-3  # shares of the prediction outside the axis below this are not mentioned
 
 _LN10 = math.log(10.0)
 
@@ -55,10 +68,13 @@ class PredictedLaw(NamedTuple):
     atoms: tuple[tuple[float, float], ...] = ()
 
     @classmethod
-    def from_density(cls, density) -> "PredictedLaw":
+    def from_density(cls, density) -> PredictedLaw:
         """From a :class:`isoscope.theory.free_probability.Density` (its ``log_x``, ``rho_log``, ``atoms``)."""
-        return cls(np.asarray(density.log_x, dtype=float), np.asarray(density.rho_log, dtype=float),
-                   tuple((float(a), float(w)) for a, w in density.atoms))
+        return cls(
+            np.asarray(density.log_x, dtype=float),
+            np.asarray(density.rho_log, dtype=float),
+            tuple((float(a), float(w)) for a, w in density.atoms),
+        )
 
     def _atom_logs(self) -> list[tuple[float, float]]:
         return [(math.log(a) if a > 0 else -math.inf, w) for a, w in self.atoms]
@@ -113,6 +129,7 @@ def _bins(values: np.ndarray, count: int = 60, min_width: float = 0.0) -> np.nda
 def _note(text: str):
     """A legend row without a symbol: notes go into the legend, which sits outside the axes."""
     from matplotlib.lines import Line2D
+
     return Line2D([], [], linestyle="none", marker="none", label=text)
 
 
@@ -122,8 +139,16 @@ def _legend_outside(ax, notes: list[str] = ()) -> None:
     handles += [_note(t) for t in notes]
     labels += list(notes)
     if handles:
-        ax.legend(handles, labels, loc="upper left", bbox_to_anchor=(1.02, 1.0), borderaxespad=0.0,
-                  fontsize=8, frameon=False, handlelength=2.0)
+        ax.legend(
+            handles,
+            labels,
+            loc="upper left",
+            bbox_to_anchor=(1.02, 1.0),
+            borderaxespad=0.0,
+            fontsize=8,
+            frameon=False,
+            handlelength=2.0,
+        )
 
 
 def _percent(share: float) -> str:
@@ -150,16 +175,22 @@ def _axis_range(data: tuple[float, float] | None, context: list[float]) -> tuple
     return lo - pad, hi + pad
 
 
-def _log_panel(ax, spectrum: Spectrum, unit: str, predicted: PredictedLaw | None,
-               floor_log10_s: float | None, marks: list[tuple[float, str, str]]) -> list[str]:
+def _log_panel(
+    ax,
+    spectrum: Spectrum,
+    unit: str,
+    predicted: PredictedLaw | None,
+    floor_log10_s: float | None,
+    marks: list[tuple[float, str, str]],
+) -> list[str]:
     """Histogram of log10 s (``unit = "s"``) or log10 lambda (``"lambda"``) with the prediction.
 
     The density is per unit of the axis variable, and the bars' area is the non-zero share.
     A predicted density of ell = ln lambda becomes ``p(log10 s) = 2 ln(10) rho_log`` and
     ``p(log10 lambda) = ln(10) rho_log``.  Returns the notes for the legend.
     """
-    k = 1.0 if unit == "s" else 2.0           # axis value = k log10 s
-    to_axis = k / (2.0 * _LN10)               # axis value per unit of ell
+    k = 1.0 if unit == "s" else 2.0  # axis value = k log10 s
+    to_axis = k / (2.0 * _LN10)  # axis value per unit of ell
     ref = "s = 1 (isometry)" if unit == "s" else "lambda = 1 (isometry)"
     notes = []
     v = k * _log10_s(spectrum)
@@ -172,20 +203,35 @@ def _log_panel(ax, spectrum: Spectrum, unit: str, predicted: PredictedLaw | None
     if predicted is not None:
         ext = predicted.extent()
         if ext is not None:
-            context += [to_axis * ext[1], max(to_axis * ext[0], floor if floor is not None else -math.inf)]
+            context += [
+                to_axis * ext[1],
+                max(to_axis * ext[0], floor if floor is not None else -math.inf),
+            ]
         atoms = [(to_axis * math.log(a), w) for a, w in predicted.atoms if 0 < a < math.inf]
         context += [x for x, _ in atoms]
     x0, x1 = _axis_range(data, context)
     bar_top = 0.0
     if v.size:
         bins = _bins(v, _bin_count(v.size), min_width=(x1 - x0) / 200)
-        ax.hist(v, bins=bins, color=MEASURED, alpha=0.75,
-                weights=np.full(v.size, (1.0 - spectrum.zero_fraction) / v.size / (bins[1] - bins[0])),
-                label=f"measured ({spectrum.draws} draws x {spectrum.size})")
+        ax.hist(
+            v,
+            bins=bins,
+            color=MEASURED,
+            alpha=0.75,
+            weights=np.full(v.size, (1.0 - spectrum.zero_fraction) / v.size / (bins[1] - bins[0])),
+            label=f"measured ({spectrum.draws} draws x {spectrum.size})",
+        )
         bar_top = max(p.get_height() for p in ax.patches)
     else:
-        ax.text(0.5, 0.5, "every singular value is numerically zero\n(nothing to place on a log axis)",
-                transform=ax.transAxes, ha="center", va="center", fontsize=10)
+        ax.text(
+            0.5,
+            0.5,
+            "every singular value is numerically zero\n(nothing to place on a log axis)",
+            transform=ax.transAxes,
+            ha="center",
+            va="center",
+            fontsize=10,
+        )
     if spectrum.zero_fraction > 0 and v.size:
         notes.append(f"measured: {_percent(spectrum.zero_fraction)} numerically zero (not shown)")
     curve_top = 0.0
@@ -198,23 +244,37 @@ def _log_panel(ax, spectrum: Spectrum, unit: str, predicted: PredictedLaw | None
             curve_top = float(ys[keep].max())
         for x, w in atoms:
             if x0 <= x <= x1:
-                ax.axvline(x, color=PREDICTED, lw=3.0, alpha=0.55,
-                           label=f"predicted atom, weight {w:.3g} at {unit} = {10 ** x:.4g}"
-                           if abs(x) < 300 else f"predicted atom, weight {w:.3g} at log10 {unit} = {x:.4g}")
+                ax.axvline(
+                    x,
+                    color=PREDICTED,
+                    lw=3.0,
+                    alpha=0.55,
+                    label=f"predicted atom, weight {w:.3g} at {unit} = {10**x:.4g}"
+                    if abs(x) < 300
+                    else f"predicted atom, weight {w:.3g} at log10 {unit} = {x:.4g}",
+                )
         below = predicted.mass_below(x0 / to_axis)
         above = predicted.mass_above(x1 / to_axis)
         if below > NOTE_SHARE:
-            notes.append(f"predicted: {_percent(below)} left of the axis"
-                         + (f" (atom at 0: {_percent(predicted.atoms[0][1])})"
-                            if predicted.atoms and predicted.atoms[0][0] == 0 and predicted.atoms[0][1] > 0
-                            else ""))
+            notes.append(
+                f"predicted: {_percent(below)} left of the axis"
+                + (
+                    f" (atom at 0: {_percent(predicted.atoms[0][1])})"
+                    if predicted.atoms and predicted.atoms[0][0] == 0 and predicted.atoms[0][1] > 0
+                    else ""
+                )
+            )
         if above > NOTE_SHARE:
             notes.append(f"predicted: {_percent(above)} right of the axis")
     if x0 <= 0.0 <= x1:
         ax.axvline(0.0, color=REFERENCE, ls="--", lw=1.0, label=ref)
     else:
         notes.append(f"{ref.split(' (')[0]} is off the axis ({'right' if x1 < 0 else 'left'})")
-    if floor is not None and x0 <= floor <= x1 and (spectrum.zero_fraction > 0 or predicted is not None):
+    if (
+        floor is not None
+        and x0 <= floor <= x1
+        and (spectrum.zero_fraction > 0 or predicted is not None)
+    ):
         ax.axvline(floor, color=REFERENCE, ls=":", lw=1.0, label="SVD floor (unresolved below)")
     for x, label, style in marks:
         if x0 <= x <= x1:
@@ -227,8 +287,13 @@ def _log_panel(ax, spectrum: Spectrum, unit: str, predicted: PredictedLaw | None
     return notes
 
 
-def log_s_figure(spectrum: Spectrum, title: str, predicted: PredictedLaw | None = None,
-                 floor_log10_s: float | None = None, length_mode_log10_s: float | None = None):
+def log_s_figure(
+    spectrum: Spectrum,
+    title: str,
+    predicted: PredictedLaw | None = None,
+    floor_log10_s: float | None = None,
+    length_mode_log10_s: float | None = None,
+):
     """Histogram of log10 s (all draws pooled), density per unit log10 s.
 
     Args:
@@ -251,8 +316,13 @@ def log_s_figure(spectrum: Spectrum, title: str, predicted: PredictedLaw | None 
     fig, ax = plt.subplots(figsize=(9.0, 4.0), layout="constrained")
     marks = []
     if length_mode_log10_s is not None:
-        marks.append((length_mode_log10_s,
-                      f"input-length direction, 1 per draw (s = {10 ** length_mode_log10_s:.3g})", "-."))
+        marks.append(
+            (
+                length_mode_log10_s,
+                f"input-length direction, 1 per draw (s = {10**length_mode_log10_s:.3g})",
+                "-.",
+            )
+        )
     notes = _log_panel(ax, spectrum, "s", predicted, floor_log10_s, marks)
     ax.set_xlabel("log10 s   (s: singular value of the input-output Jacobian)")
     ax.set_ylabel("density per unit log10 s")
@@ -261,8 +331,12 @@ def log_s_figure(spectrum: Spectrum, title: str, predicted: PredictedLaw | None 
     return fig
 
 
-def lambda_figure(spectrum: Spectrum, title: str, predicted: PredictedLaw | None = None,
-                  floor_log10_s: float | None = None):
+def lambda_figure(
+    spectrum: Spectrum,
+    title: str,
+    predicted: PredictedLaw | None = None,
+    floor_log10_s: float | None = None,
+):
     """Histogram of lambda = s^2: on a linear axis when the spectrum is narrow, else in log10 lambda.
 
     The non-zero lambda between their 1st and 99th percentiles span ``D`` decades.  For
@@ -294,9 +368,14 @@ def lambda_figure(spectrum: Spectrum, title: str, predicted: PredictedLaw | None
     shown = lam[lam <= top]
     count = _bin_count(shown.size)
     width = top / count
-    ax.hist(shown, bins=np.linspace(0.0, top, count + 1), color=MEASURED, alpha=0.75,
-            weights=np.full(shown.size, 1.0 / lam.size / width),
-            label=f"measured ({spectrum.draws} draws x {spectrum.size})")
+    ax.hist(
+        shown,
+        bins=np.linspace(0.0, top, count + 1),
+        color=MEASURED,
+        alpha=0.75,
+        weights=np.full(shown.size, 1.0 / lam.size / width),
+        label=f"measured ({spectrum.draws} draws x {spectrum.size})",
+    )
     bar_top = max(p.get_height() for p in ax.patches)
     curve_top = 0.0
     if predicted is not None:
@@ -304,17 +383,25 @@ def lambda_figure(spectrum: Spectrum, title: str, predicted: PredictedLaw | None
         keep = (e <= math.log(top)) & (e >= math.log(top) - 40.0)  # below top e^-40: not visible
         if np.any(keep):
             rho = r[keep] * np.exp(-e[keep])
-            ax.plot(np.exp(e[keep]), rho, color=PREDICTED, lw=2.0, label="predicted (N -> infinity)")
+            ax.plot(
+                np.exp(e[keep]), rho, color=PREDICTED, lw=2.0, label="predicted (N -> infinity)"
+            )
             curve_top = float(rho.max())
         for a, w in predicted.atoms:
             if 0 <= a <= top:
-                ax.axvline(a, color=PREDICTED, lw=3.0, alpha=0.55,
-                           label=f"predicted atom, weight {w:.3g} at lambda = {a:.4g}")
+                ax.axvline(
+                    a,
+                    color=PREDICTED,
+                    lw=3.0,
+                    alpha=0.55,
+                    label=f"predicted atom, weight {w:.3g} at lambda = {a:.4g}",
+                )
         above = predicted.mass_above(math.log(top))
         if above > NOTE_SHARE:
             notes.append(f"predicted: {_percent(above)} right of the axis")
-    ax.axvline(1.0, color=REFERENCE, ls="--", lw=1.0, label="lambda = 1 (isometry)") if top >= 1.0 else \
-        notes.append("lambda = 1 is off the axis (right)")
+    ax.axvline(
+        1.0, color=REFERENCE, ls="--", lw=1.0, label="lambda = 1 (isometry)"
+    ) if top >= 1.0 else notes.append("lambda = 1 is off the axis (right)")
     beyond = 1.0 - shown.size / lam.size
     if beyond > 0:
         notes.append(f"measured: {_percent(beyond)} right of the axis")
@@ -338,8 +425,9 @@ def comparison_figure(spectra: dict[str, Spectrum], title: str):
     plt = _pyplot()
     names = list(spectra)
     n = max(len(names), 1)
-    fig, axes = plt.subplots(n, 1, figsize=(8.0, 1.25 * n + 1.3), sharex=True, layout="constrained",
-                             squeeze=False)
+    fig, axes = plt.subplots(
+        n, 1, figsize=(8.0, 1.25 * n + 1.3), sharex=True, layout="constrained", squeeze=False
+    )
     axes = axes[:, 0]
     values = {name: _log10_s(s) for name, s in spectra.items()}
     pooled = [v for v in values.values() if v.size]
@@ -353,18 +441,31 @@ def comparison_figure(spectra: dict[str, Spectrum], title: str):
         s, v = spectra[name], values[name]
         if v.size:
             bins = _bins(v, _bin_count(v.size), min_width=(x1 - x0) / 150)
-            ax.hist(v, bins=bins, color=colour, alpha=0.85,
-                    weights=np.full(v.size, (1.0 - s.zero_fraction) / v.size / (bins[1] - bins[0])))
+            ax.hist(
+                v,
+                bins=bins,
+                color=colour,
+                alpha=0.85,
+                weights=np.full(v.size, (1.0 - s.zero_fraction) / v.size / (bins[1] - bins[0])),
+            )
             ax.set_ylim(0.0, 1.1 * max(p.get_height() for p in ax.patches))
         else:
-            ax.text(0.5, 0.5, "every singular value is numerically zero", transform=ax.transAxes,
-                    ha="center", va="center", fontsize=9)
+            ax.text(
+                0.5,
+                0.5,
+                "every singular value is numerically zero",
+                transform=ax.transAxes,
+                ha="center",
+                va="center",
+                fontsize=9,
+            )
             ax.set_yticks([])
         ax.axvline(0.0, color=REFERENCE, ls="--", lw=1.0)
         ax.set_title(name, loc="left", fontsize=9, color=colour, fontweight="bold")
         if s.zero_fraction > 0:
-            ax.set_title(f"{_percent(s.zero_fraction)} numerically zero (not shown)", loc="right",
-                         fontsize=8)
+            ax.set_title(
+                f"{_percent(s.zero_fraction)} numerically zero (not shown)", loc="right", fontsize=8
+            )
         ax.tick_params(labelsize=8)
     axes[0].set_xlim(x0, x1)
     axes[-1].set_xlabel("log10 s   (s: singular value of the input-output Jacobian; dashed: s = 1)")
@@ -395,6 +496,7 @@ def depth_figure(profile, title: str, width: int):
       width: N, for the legend.
     """
     from isoscope.score import ISOMETRIC_SCORE
+
     plt = _pyplot()
     fig, axes = plt.subplots(3, 1, figsize=(9.5, 8.6), sharex=True, layout="constrained")
     depth = int(profile.layers[-1])
@@ -412,10 +514,11 @@ def depth_figure(profile, title: str, width: int):
     axes[-1].set_xticks([int(d) for d in profile.depths], [str(int(d)) for d in profile.depths])
     axes[-1].minorticks_off()
     axes[-1].set_xlim(0.8, depth * 1.25)
-    axes[-1].set_xlabel("layer l   (panel c: the partial Jacobian J_l ... J_1 of the first l layers)")
+    axes[-1].set_xlabel(
+        "layer l   (panel c: the partial Jacobian J_l ... J_1 of the first l layers)"
+    )
     fig.suptitle(title)
     return fig
-
 
 
 def _first_failing(depths: np.ndarray, until: int | None) -> int | None:
@@ -459,16 +562,29 @@ def _q_panel(ax, profile) -> None:
     notes = []
     if np.isfinite(spread).any():
         lo, hi = q - spread, q + spread
-        if log:   # a band reaching 0 or below is cut at the axis' lower edge
+        if log:  # a band reaching 0 or below is cut at the axis' lower edge
             lo = np.where(lo > 0, lo, np.nan)
-        ax.fill_between(layers, lo, hi, color=MEASURED, alpha=0.2, lw=0,
-                        label="measured, +-1 std across draws")
+        ax.fill_between(
+            layers, lo, hi, color=MEASURED, alpha=0.2, lw=0, label="measured, +-1 std across draws"
+        )
     else:
         notes.append("one draw: no spread across draws")
-    ax.plot(layers, q, color=MEASURED, lw=1.5, label="measured |h^l|^2 / N, mean of draws",
-            **_layer_style(layers.size))
-    ax.plot(layers, profile.predicted_q, color=PREDICTED, lw=2.0, ls="--",
-            label="mean field q^l (N -> infinity)")
+    ax.plot(
+        layers,
+        q,
+        color=MEASURED,
+        lw=1.5,
+        label="measured |h^l|^2 / N, mean of draws",
+        **_layer_style(layers.size),
+    )
+    ax.plot(
+        layers,
+        profile.predicted_q,
+        color=PREDICTED,
+        lw=2.0,
+        ls="--",
+        label="mean field q^l (N -> infinity)",
+    )
     _at_least_span(ax)
     ax.set_ylabel("q^l")
     ax.set_title("(a) pre-activation mean square of each layer", loc="left", fontsize=10)
@@ -478,10 +594,22 @@ def _q_panel(ax, profile) -> None:
 def _gain_panel(ax, profile) -> None:
     layers, g = profile.layers, profile.measured_layer_gain
     _log_if_spread(ax, np.concatenate([g, profile.predicted_layer_gain, [1.0]]))
-    ax.plot(layers, g, color=MEASURED, lw=1.5, label="measured ||J_l||_F^2 / N, mean of draws",
-            **_layer_style(layers.size))
-    ax.plot(layers, profile.predicted_layer_gain, color=PREDICTED, lw=2.0, ls="--",
-            label="mean field (N -> infinity)")
+    ax.plot(
+        layers,
+        g,
+        color=MEASURED,
+        lw=1.5,
+        label="measured ||J_l||_F^2 / N, mean of draws",
+        **_layer_style(layers.size),
+    )
+    ax.plot(
+        layers,
+        profile.predicted_layer_gain,
+        color=PREDICTED,
+        lw=2.0,
+        ls="--",
+        label="mean field (N -> infinity)",
+    )
     ax.axhline(1.0, color=REFERENCE, ls="--", lw=1.0, label="1 (the layer keeps lengths)")
     _at_least_span(ax)
     ax.set_ylabel("mean s^2 of J_l")
@@ -489,34 +617,63 @@ def _gain_panel(ax, profile) -> None:
     _legend_outside(ax)
 
 
-def _spread_panel(ax, profile, width: int, stop: int | None, predicted_stop: int | None,
-                  threshold: float) -> None:
-    depths, measured, predicted = profile.depths, profile.measured_log_s_std, profile.predicted_log_s_std
+def _spread_panel(
+    ax, profile, width: int, stop: int | None, predicted_stop: int | None, threshold: float
+) -> None:
+    depths, measured, predicted = (
+        profile.depths,
+        profile.measured_log_s_std,
+        profile.predicted_log_s_std,
+    )
     _log_if_spread(ax, np.concatenate([measured, predicted]))
     ax.plot(depths, predicted, color=PREDICTED, lw=2.0, label="predicted (N -> infinity)")
-    ax.plot(depths, measured, "o", color=MEASURED, ms=6, label=f"measured (width {width}, first draw)")
+    ax.plot(
+        depths, measured, "o", color=MEASURED, ms=6, label=f"measured (width {width}, first draw)"
+    )
     if not np.isfinite(measured).any():
-        ax.text(0.5, 0.5, "no measured spread: every partial product is numerically zero\n"
-                "or has fewer than two values above the SVD floor", transform=ax.transAxes,
-                ha="center", va="center", fontsize=9)
+        ax.text(
+            0.5,
+            0.5,
+            "no measured spread: every partial product is numerically zero\n"
+            "or has fewer than two values above the SVD floor",
+            transform=ax.transAxes,
+            ha="center",
+            va="center",
+            fontsize=9,
+        )
     first = int(depths[0])
     if stop is not None and stop > first:
-        ax.fill_between([], [], color=SHADE, alpha=0.5,
-                        label=f"measured isometry score < {threshold:g} from l = {stop}")
+        ax.fill_between(
+            [],
+            [],
+            color=SHADE,
+            alpha=0.5,
+            label=f"measured isometry score < {threshold:g} from l = {stop}",
+        )
     if predicted_stop is not None and predicted_stop > first:
-        ax.plot([], [], color=PREDICTED, ls=":", lw=1.5,
-                label=f"predicted score < {threshold:g} from l = {predicted_stop}")
+        ax.plot(
+            [],
+            [],
+            color=PREDICTED,
+            ls=":",
+            lw=1.5,
+            label=f"predicted score < {threshold:g} from l = {predicted_stop}",
+        )
     notes = []
-    for who, until, scores in (("measured", profile.isometric_until, profile.measured_isometry),
-                               ("predicted", profile.predicted_isometric_until,
-                                profile.predicted_isometry)):
+    for who, until, scores in (
+        ("measured", profile.isometric_until, profile.measured_isometry),
+        ("predicted", profile.predicted_isometric_until, profile.predicted_isometry),
+    ):
         if until == int(depths[-1]):
             notes.append(f"{who}: isometric (score >= {threshold:g}) at every profiled depth")
         elif until is None:
-            notes.append(f"{who}: not isometric even at l = {first} "
-                         f"(score {_score_text(scores[0])})")
-    notes.append(f"score of J_L ... J_1: measured {_score_text(profile.measured_isometry[-1])}, "
-                 f"predicted {_score_text(profile.predicted_isometry[-1])}")
+            notes.append(
+                f"{who}: not isometric even at l = {first} (score {_score_text(scores[0])})"
+            )
+    notes.append(
+        f"score of J_L ... J_1: measured {_score_text(profile.measured_isometry[-1])}, "
+        f"predicted {_score_text(profile.predicted_isometry[-1])}"
+    )
     ax.set_ylabel("std of ln s of J_l ... J_1")
     ax.set_title("(c) spread of the first l layers together", loc="left", fontsize=10)
     _legend_outside(ax, notes)
@@ -526,8 +683,13 @@ def _score_text(v: float) -> str:
     return f"{v:.3f}" if math.isfinite(v) else "none"
 
 
-def critical_figure(sigma_w2: np.ndarray, sigma_b2: np.ndarray, point: tuple[float, float],
-                    title: str, label: str = "this design"):
+def critical_figure(
+    sigma_w2: np.ndarray,
+    sigma_b2: np.ndarray,
+    point: tuple[float, float],
+    title: str,
+    label: str = "this design",
+):
     """The critical line chi_1 = 1 in the (sigma_w^2, sigma_b^2) plane with one design marked.
 
     Below/right of the line (larger sigma_w^2 at fixed sigma_b^2) is the chaotic phase, above/left
@@ -577,19 +739,37 @@ def cdf_overlay_figure(spectra: dict[str, Spectrum], title: str):
         label = name + (f" ({_percent(zero)} numerically zero)" if zero > 0 else "")
         if v.size:
             y = zero + (1.0 - zero) * np.arange(1, v.size + 1) / v.size
-            ax.step(np.concatenate([[x0], v, [x1]]), np.concatenate([[zero], y, [1.0]]),
-                    where="post", color=colour, lw=1.8, ls=dashes[k % len(dashes)], label=label)
+            ax.step(
+                np.concatenate([[x0], v, [x1]]),
+                np.concatenate([[zero], y, [1.0]]),
+                where="post",
+                color=colour,
+                lw=1.8,
+                ls=dashes[k % len(dashes)],
+                label=label,
+            )
         else:
-            ax.plot([], [], color=colour, ls=dashes[k % len(dashes)],
-                    label=f"{name} (every singular value numerically zero)")
+            ax.plot(
+                [],
+                [],
+                color=colour,
+                ls=dashes[k % len(dashes)],
+                label=f"{name} (every singular value numerically zero)",
+            )
     ax.axvline(0.0, color=REFERENCE, ls="--", lw=1.0)
     ax.set_xlim(x0, x1)
     ax.set_ylim(0.0, 1.0)
     ax.set_xlabel("log10 s   (s: singular value of the input-output Jacobian; dashed: s = 1)")
     ax.set_ylabel("fraction of singular values <= s")
     ax.set_title(title)
-    ax.legend(loc="upper center", bbox_to_anchor=(0.5, -0.16), ncol=1 if len(spectra) > 3 else len(spectra),
-              fontsize=8, frameon=False, handlelength=3.0)
+    ax.legend(
+        loc="upper center",
+        bbox_to_anchor=(0.5, -0.16),
+        ncol=1 if len(spectra) > 3 else len(spectra),
+        fontsize=8,
+        frameon=False,
+        handlelength=3.0,
+    )
     return fig
 
 
@@ -627,7 +807,12 @@ def _axis_positions(values: tuple) -> tuple[np.ndarray, list[str] | None]:
 def _metric_norm(metric: str, matrices_values: list[np.ndarray]):
     """The colour map and normalisation of a metric over every facet (rows compare directly)."""
     from matplotlib import colors
-    finite = np.concatenate([v[np.isfinite(v)] for v in matrices_values]) if matrices_values else np.array([])
+
+    finite = (
+        np.concatenate([v[np.isfinite(v)] for v in matrices_values])
+        if matrices_values
+        else np.array([])
+    )
     cmap = _METRIC_STYLE.get(metric, (metric, "cividis", ".3g"))[1]
     if metric == "score.isometry":
         return cmap, colors.Normalize(0.0, 1.0)
@@ -674,8 +859,13 @@ def phase_figure(matrices: list, title: str, critical=None):
     plt = _pyplot()
     first = matrices[0]
     rows, cols = len(first.facets), len(matrices)
-    fig, axes = plt.subplots(rows, cols, figsize=(4.3 * cols + 0.6, 3.4 * rows + 1.1),
-                             layout="constrained", squeeze=False)
+    fig, axes = plt.subplots(
+        rows,
+        cols,
+        figsize=(4.3 * cols + 0.6, 3.4 * rows + 1.1),
+        layout="constrained",
+        squeeze=False,
+    )
     xs, xlabels = _axis_positions(first.x)
     ys, ylabels = _axis_positions(first.y)
     xe, ye = _edges(xs), _edges(ys)
@@ -686,8 +876,18 @@ def phase_figure(matrices: list, title: str, critical=None):
         label, _, fmt = _METRIC_STYLE.get(m.metric, (m.metric, "cividis", ".3g"))
         for r, facet in enumerate(m.facets):
             ax = axes[r, c]
-            ax.add_patch(Rectangle((xe[0], ye[0]), xe[-1] - xe[0], ye[-1] - ye[0], facecolor="white",
-                                   edgecolor="#9a9a9a", hatch=MISSING_HATCH, lw=0.0, zorder=0))
+            ax.add_patch(
+                Rectangle(
+                    (xe[0], ye[0]),
+                    xe[-1] - xe[0],
+                    ye[-1] - ye[0],
+                    facecolor="white",
+                    edgecolor="#9a9a9a",
+                    hatch=MISSING_HATCH,
+                    lw=0.0,
+                    zorder=0,
+                )
+            )
             values = np.ma.masked_invalid(facet.values)
             missing |= bool(values.mask.any()) if np.ndim(values.mask) else bool(values.mask)
             mesh = ax.pcolormesh(xe, ye, values, cmap=cmap, norm=norm, zorder=1)
@@ -696,12 +896,28 @@ def phase_figure(matrices: list, title: str, critical=None):
                     for j, x in enumerate(xs):
                         v = facet.values[i, j]
                         if math.isfinite(v):
-                            ax.text(x, y, format(v, fmt), ha="center", va="center", fontsize=7,
-                                    color=_text_colour(mesh.cmap(norm(v))), zorder=3)
+                            ax.text(
+                                x,
+                                y,
+                                format(v, fmt),
+                                ha="center",
+                                va="center",
+                                fontsize=7,
+                                color=_text_colour(mesh.cmap(norm(v))),
+                                zorder=3,
+                            )
             if critical is not None:
-                cx, cy = ((critical.sigma_w, critical.sigma_b) if m.x_key == "init.sigma_w"
-                          else (critical.sigma_b, critical.sigma_w))
-                style = {"color": "white", "path_effects": outline, "zorder": 4, "label": CRITICAL_LABEL}
+                cx, cy = (
+                    (critical.sigma_w, critical.sigma_b)
+                    if m.x_key == "init.sigma_w"
+                    else (critical.sigma_b, critical.sigma_w)
+                )
+                style = {
+                    "color": "white",
+                    "path_effects": outline,
+                    "zorder": 4,
+                    "label": CRITICAL_LABEL,
+                }
                 if cx.size > 1:
                     ax.plot(cx, cy, lw=1.6, **style)
                 else:
@@ -712,23 +928,44 @@ def phase_figure(matrices: list, title: str, critical=None):
             ax.set_yticks(ys, ylabels if ylabels else [f"{v:g}" for v in ys], fontsize=8)
             ax.set_xlabel(m.x_key, fontsize=9)
             ax.set_ylabel(m.y_key, fontsize=9)
-            ax.set_title(label + (f"\n{_facet_text(facet.fixed)}" if facet.fixed else ""), fontsize=9)
+            ax.set_title(
+                label + (f"\n{_facet_text(facet.fixed)}" if facet.fixed else ""), fontsize=9
+            )
             if r == rows - 1 or rows == 1:
                 fig.colorbar(mesh, ax=axes[:, c].tolist(), shrink=0.9, aspect=30, pad=0.02)
     handles = []
     if critical is not None:
         point = critical.sigma_w.size == 1
-        handles.append(plt.Line2D([], [], color="white", lw=0.0 if point else 1.6,
-                                  marker="o" if point else None, markeredgecolor="black",
-                                  path_effects=None if point else outline,
-                                  label=f"{CRITICAL_LABEL} ({critical.activation})"
-                                  + (f": the single point sigma_b = {critical.sigma_b[0]:g}" if point else "")))
+        handles.append(
+            plt.Line2D(
+                [],
+                [],
+                color="white",
+                lw=0.0 if point else 1.6,
+                marker="o" if point else None,
+                markeredgecolor="black",
+                path_effects=None if point else outline,
+                label=f"{CRITICAL_LABEL} ({critical.activation})"
+                + (f": the single point sigma_b = {critical.sigma_b[0]:g}" if point else ""),
+            )
+        )
     if missing:
-        handles.append(Patch(facecolor="white", edgecolor="#9a9a9a", hatch=MISSING_HATCH,
-                             label="no stored number (not run, failed or null)"))
+        handles.append(
+            Patch(
+                facecolor="white",
+                edgecolor="#9a9a9a",
+                hatch=MISSING_HATCH,
+                label="no stored number (not run, failed or null)",
+            )
+        )
     if handles:
-        fig.legend(handles=handles, loc="outside lower center", ncol=len(handles), fontsize=8,
-                   frameon=False)
+        fig.legend(
+            handles=handles,
+            loc="outside lower center",
+            ncol=len(handles),
+            fontsize=8,
+            frameon=False,
+        )
     fig.suptitle(title)
     return fig
 
@@ -752,11 +989,20 @@ def curves_figure(curves: list, along: str, metric: str, title: str):
     markers = ("o", "s", "^", "D", "v", "P", "X", "<", ">", "h", "*", "p")
     cmap = plt.get_cmap("viridis")
     n = max(len(curves), 1)
-    xs_all = np.concatenate([np.asarray(c.x, dtype=float) for c in curves]) if curves else np.array([])
+    xs_all = (
+        np.concatenate([np.asarray(c.x, dtype=float) for c in curves]) if curves else np.array([])
+    )
     for k, c in enumerate(curves):
         colour = cmap(0.88 * k / max(n - 1, 1))
-        ax.plot(np.asarray(c.x, dtype=float), c.values, marker=markers[k % len(markers)], ms=5,
-                lw=1.6, color=colour, label=_facet_text(c.fixed) or metric)
+        ax.plot(
+            np.asarray(c.x, dtype=float),
+            c.values,
+            marker=markers[k % len(markers)],
+            ms=5,
+            lw=1.6,
+            color=colour,
+            label=_facet_text(c.fixed) or metric,
+        )
     if xs_all.size and xs_all.min() > 0 and xs_all.max() / xs_all.min() >= 8:
         ax.set_xscale("log", base=2)
     ticks = np.unique(xs_all)

@@ -25,20 +25,43 @@ from typing import Any, NamedTuple
 from scipy.optimize import brentq
 
 from isoscope.activations import get_activation
-from isoscope.analysis import Analysis, InputPlan, analyze, plan_inputs, predict_spec, spec_activation
+from isoscope.analysis import (
+    Analysis,
+    InputPlan,
+    analyze,
+    plan_inputs,
+    predict_spec,
+    spec_activation,
+)
 from isoscope.errors import InputError, TheoryError
 from isoscope.spec import Spec, parse_spec
 from isoscope.theory import free_probability as fp
 from isoscope.theory import mean_field as mf
 from isoscope.theory.predict import log_lambda_stats, predict
 
-__all__ = ["ADVICE", "TRAINABLE_SPREAD", "SIGNAL_MULTIPLE", "MAX_DEPTH", "DepthLimit",
-           "TARGET_SPREAD", "predicted_spread", "trainable_depth", "Ranking", "rank",
-           "Candidate", "Recommendation", "plain_can_be_isometric", "propose", "recommend",
-           "residual_tau_for_spread"]
+__all__ = [
+    "ADVICE",
+    "TRAINABLE_SPREAD",
+    "SIGNAL_MULTIPLE",
+    "MAX_DEPTH",
+    "DepthLimit",
+    "TARGET_SPREAD",
+    "predicted_spread",
+    "trainable_depth",
+    "Ranking",
+    "rank",
+    "Candidate",
+    "Recommendation",
+    "plain_can_be_isometric",
+    "propose",
+    "recommend",
+    "residual_tau_for_spread",
+]
 
-ADVICE = ("Advice, not a guarantee: judged at initialization only. Training dynamics, "
-          "normalisation layers and optimiser settings are outside what isoscope measures.")
+ADVICE = (
+    "Advice, not a guarantee: judged at initialization only. Training dynamics, "
+    "normalisation layers and optimiser settings are outside what isoscope measures."
+)
 
 # The spread of ln s at which a design counts as no longer trainable: a standard deviation of
 # one decade in s (ln 10), so that the squared gradient norms of directions one std apart
@@ -98,8 +121,9 @@ def _spread(spec: Spec, plan: InputPlan, depth: int) -> float:
     if n.family == "plain" and plan.kind == "steady-state":
         # steady-state inputs keep every layer at the law's variance: the same law as
         # predict_spec's, without walking a q trajectory of `depth` layers
-        return predict(spec_activation(spec), i.weights, i.sigma_w, i.sigma_b, depth,
-                       points=_POINTS).log_s_std
+        return predict(
+            spec_activation(spec), i.weights, i.sigma_w, i.sigma_b, depth, points=_POINTS
+        ).log_s_std
     return predict_spec(_at_depth(spec, depth), plan, points=_POINTS).log_s_std
 
 
@@ -121,18 +145,25 @@ def _spread_depth(spec: Spec, plan: InputPlan, limit: float) -> tuple[float, str
     per step) until it brackets the crossing, then narrows the bracket by false position with
     integer depths until the two ends are adjacent.  A handful of predictions at any depth.
     """
+
     def spread(depth: int) -> float:
         s = predicted_spread(spec, depth, plan)
         return s if math.isfinite(s) else math.inf
 
     seen = {1: spread(1)}
     if seen[1] > limit:
-        return 0.0, f"one layer already has a predicted std ln s of {seen[1]:.3g}, above {limit:.3g}"
+        return (
+            0.0,
+            f"one layer already has a predicted std ln s of {seen[1]:.3g}, above {limit:.3g}",
+        )
     good, bad = 1, None
     prev = None
     while bad is None:
         if good == MAX_DEPTH:
-            return math.inf, f"the predicted spread stays within {limit:.3g} up to {MAX_DEPTH} layers"
+            return (
+                math.inf,
+                f"the predicted spread stays within {limit:.3g} up to {MAX_DEPTH} layers",
+            )
         guess = 2 * good if prev is None else _crossing(prev, good, seen[prev], seen[good], limit)
         ahead = 8 * good if not math.isfinite(guess) else math.ceil(guess * 1.02) + 1
         nxt = int(min(MAX_DEPTH, max(math.ceil(1.5 * good), min(8 * good, ahead))))
@@ -147,7 +178,7 @@ def _spread_depth(spec: Spec, plan: InputPlan, limit: float) -> tuple[float, str
         seen[mid] = spread(mid)
         if seen[mid] <= limit:
             good = mid
-            if bad - good > 1:      # confirm the neighbour above, the usual landing spot
+            if bad - good > 1:  # confirm the neighbour above, the usual landing spot
                 seen[good + 1] = spread(good + 1)
                 if seen[good + 1] > limit:
                     bad = good + 1
@@ -165,8 +196,9 @@ def _crossing(x0: int, x1: int, y0: float, y1: float, limit: float) -> float:
     return x1 + (limit - y1) * (x1 - x0) / (y1 - y0)
 
 
-def trainable_depth(spec: Spec, limit: float = TRAINABLE_SPREAD,
-                    plan: InputPlan | None = None) -> DepthLimit:
+def trainable_depth(
+    spec: Spec, limit: float = TRAINABLE_SPREAD, plan: InputPlan | None = None
+) -> DepthLimit:
     """Depth up to which ``spec``'s design stays usable at initialization.
 
     Two bounds, the smaller wins:
@@ -188,8 +220,10 @@ def trainable_depth(spec: Spec, limit: float = TRAINABLE_SPREAD,
       plan: the inputs (default :func:`~isoscope.analysis.plan_inputs` of the spec).
     """
     if not (isinstance(limit, (int, float)) and limit > 0 and math.isfinite(limit)):
-        raise InputError(f"spread limit {limit!r} is not a positive number",
-                         expected="a positive std of ln s, e.g. 1.0")
+        raise InputError(
+            f"spread limit {limit!r} is not a positive number",
+            expected="a positive std of ln s, e.g. 1.0",
+        )
     plan = plan_inputs(spec)[0] if plan is None else plan
     xi_c, signal = math.nan, math.inf
     if spec.network.family == "plain":
@@ -205,8 +239,10 @@ def trainable_depth(spec: Spec, limit: float = TRAINABLE_SPREAD,
         binding, reason = "none", why
     elif math.isfinite(signal) and math.floor(signal) <= spread:
         binding = "signal"
-        reason = (f"{SIGNAL_MULTIPLE:g} xi_c = {signal:.4g} layers: off the critical line, "
-                  f"correlations decay over xi_c = {xi_c:.4g} layers")
+        reason = (
+            f"{SIGNAL_MULTIPLE:g} xi_c = {signal:.4g} layers: off the critical line, "
+            f"correlations decay over xi_c = {xi_c:.4g} layers"
+        )
     else:
         binding, reason = "spread", why
     return DepthLimit(float(depth), spread, signal, xi_c, float(limit), binding, reason)
@@ -238,12 +274,17 @@ def _best(names: Sequence[str], values: Sequence[float], higher: bool) -> list[s
     if not pairs:
         return []
     top = max(v for _, v in pairs) if higher else min(v for _, v in pairs)
-    return [n for n, v in pairs if v == top or (math.isfinite(top) and abs(v - top) <= 1e-12 * max(1.0, abs(top)))]
+    return [
+        n
+        for n, v in pairs
+        if v == top or (math.isfinite(top) and abs(v - top) <= 1e-12 * max(1.0, abs(top)))
+    ]
 
 
 def rank(analyses: Sequence[Analysis], limits: Sequence[DepthLimit] | None = None) -> Ranking:
     """Order designs by measured isometry score and name the winner of each criterion
     (see :class:`Ranking`).  Pure: depends on the analyses' numbers only."""
+
     def key(i: int) -> tuple[int, float, float]:
         sc = analyses[i].score
         iso = sc.isometry if _finite(sc.isometry) else -math.inf
@@ -254,11 +295,20 @@ def rank(analyses: Sequence[Analysis], limits: Sequence[DepthLimit] | None = Non
     names = [a.spec.name for a in analyses]
     winners = {
         "isometry": _best(names, [a.score.isometry for a in analyses], higher=True),
-        "gain": _best(names, [abs(a.score.log10_gain) if _finite(a.score.log10_gain) else math.nan
-                              for a in analyses], higher=False),
+        "gain": _best(
+            names,
+            [
+                abs(a.score.log10_gain) if _finite(a.score.log10_gain) else math.nan
+                for a in analyses
+            ],
+            higher=False,
+        ),
         "spread": _best(names, [a.score.log_s_std for a in analyses], higher=False),
-        "agreement": _best(names, [a.agreement.ks if a.agreement is not None else math.nan
-                                   for a in analyses], higher=False),
+        "agreement": _best(
+            names,
+            [a.agreement.ks if a.agreement is not None else math.nan for a in analyses],
+            higher=False,
+        ),
     }
     if limits is not None:
         winners["trainable_depth"] = _best(names, [d.depth for d in limits], higher=True)
@@ -306,20 +356,42 @@ class Recommendation:
     plain_isometric: bool
 
 
-def _design(activation: str, family: str, depth: int, width: int, weights: str, sigma_w: float,
-            sigma_b: float, alpha: float | None, draws: int, seed: int, slope: float | None) -> Spec:
+def _design(
+    activation: str,
+    family: str,
+    depth: int,
+    width: int,
+    weights: str,
+    sigma_w: float,
+    sigma_b: float,
+    alpha: float | None,
+    draws: int,
+    seed: int,
+    slope: float | None,
+) -> Spec:
     """A validated spec for one candidate (its name says what it is)."""
-    name = f"{family}-{weights}-sb{sigma_b:.3g}" + (f"-alpha{alpha:.4g}" if alpha is not None else "")
-    network: dict[str, Any] = {"family": family, "width": width, "depth": depth,
-                               "activation": activation}
+    name = f"{family}-{weights}-sb{sigma_b:.3g}" + (
+        f"-alpha{alpha:.4g}" if alpha is not None else ""
+    )
+    network: dict[str, Any] = {
+        "family": family,
+        "width": width,
+        "depth": depth,
+        "activation": activation,
+    }
     if alpha is not None:
         network["alpha"] = alpha
     if slope is not None:
         network["leaky_slope"] = slope
-    return parse_spec({"name": name, "network": network,
-                       "init": {"weights": weights, "sigma_w": sigma_w, "sigma_b": sigma_b},
-                       "analysis": {"inputs": draws, "seed": seed}},
-                      source="<recommend>")
+    return parse_spec(
+        {
+            "name": name,
+            "network": network,
+            "init": {"weights": weights, "sigma_w": sigma_w, "sigma_b": sigma_b},
+            "analysis": {"inputs": draws, "seed": seed},
+        },
+        source="<recommend>",
+    )
 
 
 def plain_can_be_isometric(activation) -> bool:
@@ -338,13 +410,16 @@ def residual_tau_for_spread(target: float) -> float:
     ``S(z) = exp(-tau (1 + 2z))`` (Tarnowski et al. 2019) depends on tau alone and its spread
     grows with tau (about sqrt(tau/2) for small tau, from m2/m1^2 = 1 + 2 tau); solved by
     brentq in ln tau on :func:`~isoscope.theory.free_probability.residual_density`."""
+
     def f(log_tau: float) -> float:
         return log_lambda_stats(fp.residual_density(math.exp(log_tau), _POINTS))[1] / 2.0 - target
+
     return math.exp(brentq(f, math.log(1e-8), math.log(1e3), xtol=1e-10))
 
 
-def _alpha_for_tau(act, sigma_w: float, sigma_b: float, depth: int, tau: float,
-                   input_variance: float) -> float:
+def _alpha_for_tau(
+    act, sigma_w: float, sigma_b: float, depth: int, tau: float, input_variance: float
+) -> float:
     """The branch scale alpha whose accumulated ``tau = sum_l alpha^2 sigma_w^2 E[phi'(h^l)^2]``
     along the residual q^l trajectory equals ``tau`` (brentq in ln alpha; tau grows with alpha).
     The bracket starts from the constant-q guess ``alpha0^2 = tau / (L sigma_w^2 E[phi'^2])`` at
@@ -357,8 +432,9 @@ def _alpha_for_tau(act, sigma_w: float, sigma_b: float, depth: int, tau: float,
     def f(log_alpha: float) -> float:
         a = math.exp(log_alpha)
         try:
-            q = mf.q_trajectory(act, sigma_w, sigma_b, input_variance, depth, family="residual",
-                                alpha=a)
+            q = mf.q_trajectory(
+                act, sigma_w, sigma_b, input_variance, depth, family="residual", alpha=a
+            )
         except SolverError:
             return 1e300
         return math.log(fp.residual_tau(act, sigma_w, q, a)) - math.log(tau)
@@ -390,10 +466,12 @@ def _candidate(spec: Spec, target: float, role: str) -> Candidate:
 def _bias_for_target(act, depth: int, target: float, lo: float, hi: float) -> float:
     """The largest sigma_b in [lo, hi] whose orthogonal critical stack has predicted spread <=
     target (the spread grows with q* along the critical line); lo or hi at the ends."""
+
     def f(log_sb: float) -> float:
         sb = math.exp(log_sb)
         sw = mf.critical_point(act, sb).sigma_w
         return predict(act, "orthogonal", sw, sb, depth, points=_POINTS).log_s_std - target
+
     if f(math.log(hi)) <= 0:
         return hi
     if f(math.log(lo)) >= 0:
@@ -404,9 +482,17 @@ def _bias_for_target(act, depth: int, target: float, lo: float, hi: float) -> fl
 SIGMA_B_RANGE = (1e-6, 1.0)
 
 
-def propose(activation: str, depth: int, width: int, family: str = "plain",
-            sigma_b: float | None = None, target_spread: float | None = None, draws: int = 2,
-            seed: int = 0, leaky_slope: float | None = None) -> tuple[list[Candidate], list[str], bool]:
+def propose(
+    activation: str,
+    depth: int,
+    width: int,
+    family: str = "plain",
+    sigma_b: float | None = None,
+    target_spread: float | None = None,
+    draws: int = 2,
+    seed: int = 0,
+    leaky_slope: float | None = None,
+) -> tuple[list[Candidate], list[str], bool]:
     """Theory's candidates for a design question, best first (nothing is measured here).
 
     Plain stacks of an activation that can be isometric (:func:`plain_can_be_isometric`):
@@ -429,7 +515,11 @@ def propose(activation: str, depth: int, width: int, family: str = "plain",
       (candidates, reason sentences, plain_isometric).
     """
     target = TARGET_SPREAD if target_spread is None else float(target_spread)
-    act = get_activation(activation, slope=leaky_slope) if leaky_slope is not None else get_activation(activation)
+    act = (
+        get_activation(activation, slope=leaky_slope)
+        if leaky_slope is not None
+        else get_activation(activation)
+    )
     name = act.name
     slope = act.slope if name == "leaky-relu" else None
 
@@ -445,56 +535,91 @@ def propose(activation: str, depth: int, width: int, family: str = "plain",
         else:
             sb = float(sigma_b)
         cp = mf.critical_point(act, sb)
-        best = _candidate(spec("plain", "orthogonal", cp.sigma_w, sb), target,
-                          "orthogonal on the critical line")
+        best = _candidate(
+            spec("plain", "orthogonal", cp.sigma_w, sb), target, "orthogonal on the critical line"
+        )
         cands.append(best)
-        cands.append(_candidate(spec("plain", "gaussian", cp.sigma_w, sb), target,
-                                "Gaussian at the same point"))
+        cands.append(
+            _candidate(
+                spec("plain", "gaussian", cp.sigma_w, sb), target, "Gaussian at the same point"
+            )
+        )
         if sigma_b is None and sb < SIGMA_B_RANGE[1]:
             sb10 = min(10.0 * sb, SIGMA_B_RANGE[1])
             cp10 = mf.critical_point(act, sb10)
-            cands.append(_candidate(spec("plain", "orthogonal", cp10.sigma_w, sb10), target,
-                                    "orthogonal on the critical line, ten times the bias"))
-        reasons.append(f"On the critical line (chi_1 = 1) the gain stays 1 at every depth; sigma_w = "
-                       f"{cp.sigma_w:.10g} is the critical weight scale for sigma_b = {sb:.6g} "
-                       f"(q* = {cp.q_star:.4g}).")
+            cands.append(
+                _candidate(
+                    spec("plain", "orthogonal", cp10.sigma_w, sb10),
+                    target,
+                    "orthogonal on the critical line, ten times the bias",
+                )
+            )
+        reasons.append(
+            f"On the critical line (chi_1 = 1) the gain stays 1 at every depth; sigma_w = "
+            f"{cp.sigma_w:.10g} is the critical weight scale for sigma_b = {sb:.6g} "
+            f"(q* = {cp.q_star:.4g})."
+        )
         if sigma_b is None:
             reasons.append(
                 f"The spread grows with q*: sigma_b = {sb:.4g} is the largest bias whose predicted "
                 f"std ln s at depth {depth} is at most the target {target:.4g}, keeping as much of "
-                f"{name}'s non-linearity as the target allows." if best.meets_target else
-                f"Even the smallest bias considered ({sb:.3g}) predicts std ln s = "
+                f"{name}'s non-linearity as the target allows."
+                if best.meets_target
+                else f"Even the smallest bias considered ({sb:.3g}) predicts std ln s = "
                 f"{best.predicted_spread:.3g} at depth {depth}, above the target {target:.4g}: "
-                "no plain setting meets it; consider a residual stack or a smaller depth.")
-        reasons.append("Orthogonal weights keep every singular value of W at sigma_w; Gaussian "
-                       "weights add the spread of the Marchenko-Pastur law at every layer.")
+                "no plain setting meets it; consider a residual stack or a smaller depth."
+            )
+        reasons.append(
+            "Orthogonal weights keep every singular value of W at sigma_w; Gaussian "
+            "weights add the spread of the Marchenko-Pastur law at every layer."
+        )
         return cands, reasons, plain_ok
     # residual designs (asked for, or the way out for ReLU-type plain stacks)
     sb = 0.0 if sigma_b is None else float(sigma_b)
     tau = residual_tau_for_spread(target)
     alpha = _alpha_for_tau(act, 1.0, sb, depth, tau, 1.0)
     for weights in ("orthogonal", "gaussian"):
-        cands.append(_candidate(spec("residual", weights, 1.0, sb, alpha), target,
-                                f"residual, {weights} branches"))
+        cands.append(
+            _candidate(
+                spec("residual", weights, 1.0, sb, alpha), target, f"residual, {weights} branches"
+            )
+        )
     if family == "plain":
-        reasons.append(f"No plain setting of {name} is isometric: phi'(h)^2 takes more than one value "
-                       "with a law that is the same at every q*, so mu_2/mu_1^2 > 1 whatever the "
-                       "scales and the spread grows with every layer. A residual stack is proposed "
-                       "instead.")
+        reasons.append(
+            f"No plain setting of {name} is isometric: phi'(h)^2 takes more than one value "
+            "with a law that is the same at every q*, so mu_2/mu_1^2 > 1 whatever the "
+            "scales and the spread grows with every layer. A residual stack is proposed "
+            "instead."
+        )
         cp = mf.critical_point(act, 0.0)
         for weights in ("orthogonal", "gaussian"):
-            cands.append(_candidate(spec("plain", weights, cp.sigma_w, 0.0), target,
-                                    f"plain, {weights}, critical scaling"))
-    reasons.append(f"The residual law depends on tau = sum_l alpha^2 sigma_w^2 E[phi'(h^l)^2] alone: "
-                   f"tau = {tau:.4g} gives the target std ln s = {target:.4g}, reached with "
-                   f"sigma_w = 1 and alpha = {alpha:.6g} (alpha^2 L = {alpha * alpha * depth:.4g}).")
+            cands.append(
+                _candidate(
+                    spec("plain", weights, cp.sigma_w, 0.0),
+                    target,
+                    f"plain, {weights}, critical scaling",
+                )
+            )
+    reasons.append(
+        f"The residual law depends on tau = sum_l alpha^2 sigma_w^2 E[phi'(h^l)^2] alone: "
+        f"tau = {tau:.4g} gives the target std ln s = {target:.4g}, reached with "
+        f"sigma_w = 1 and alpha = {alpha:.6g} (alpha^2 L = {alpha * alpha * depth:.4g})."
+    )
     return cands, reasons, plain_ok
 
 
-def recommend(activation: str, depth: int, width: int, family: str = "plain",
-              sigma_b: float | None = None, target_spread: float | None = None, draws: int = 2,
-              seed: int = 0, leaky_slope: float | None = None,
-              progress: Callable[[int, int], None] | None = None) -> Recommendation:
+def recommend(
+    activation: str,
+    depth: int,
+    width: int,
+    family: str = "plain",
+    sigma_b: float | None = None,
+    target_spread: float | None = None,
+    draws: int = 2,
+    seed: int = 0,
+    leaky_slope: float | None = None,
+    progress: Callable[[int, int], None] | None = None,
+) -> Recommendation:
     """Propose an initialization (:func:`propose`) and check every candidate by measurement.
 
     Each candidate is analysed at the user's width and depth with ``draws`` draws
@@ -504,8 +629,9 @@ def recommend(activation: str, depth: int, width: int, family: str = "plain",
     measurement decides; the reason says when measurement overturned theory's first choice.
     """
     target = TARGET_SPREAD if target_spread is None else float(target_spread)
-    cands, reasons, plain_ok = propose(activation, depth, width, family, sigma_b, target, draws,
-                                       seed, leaky_slope)
+    cands, reasons, plain_ok = propose(
+        activation, depth, width, family, sigma_b, target, draws, seed, leaky_slope
+    )
     measured = []
     for i, c in enumerate(cands):
         measured.append(c._replace(analysis=analyze(c.spec)))
@@ -514,14 +640,23 @@ def recommend(activation: str, depth: int, width: int, family: str = "plain",
     pool = [c for c in measured if c.meets_target] or measured
     best = min(pool, key=_measured_spread)
     if best is not measured[0] and measured[0] in pool:
-        reasons.append(f"Measurement overturned theory's first choice: {best.role} measured std ln s "
-                       f"{_measured_spread(best):.3g} against {_measured_spread(measured[0]):.3g} "
-                       f"for {measured[0].role}.")
+        reasons.append(
+            f"Measurement overturned theory's first choice: {best.role} measured std ln s "
+            f"{_measured_spread(best):.3g} against {_measured_spread(measured[0]):.3g} "
+            f"for {measured[0].role}."
+        )
     alternatives = tuple(c for c in measured if c is not best)
     why = tuple(_why_lost(c, best, target) for c in alternatives)
-    question = {"activation": get_activation(activation).name, "family": family, "depth": depth,
-                "width": width, "sigma_b": sigma_b, "target_spread": target, "draws": draws,
-                "seed": seed}
+    question = {
+        "activation": get_activation(activation).name,
+        "family": family,
+        "depth": depth,
+        "width": width,
+        "sigma_b": sigma_b,
+        "target_spread": target,
+        "draws": draws,
+        "seed": seed,
+    }
     return Recommendation(question, best, alternatives, why, tuple(reasons), plain_ok)
 
 
@@ -532,8 +667,11 @@ def _measured_spread(c: Candidate) -> float:
 
 def _why_lost(c: Candidate, best: Candidate, target: float) -> str:
     m, mb = _measured_spread(c), _measured_spread(best)
-    pred = (f"predicted std ln s {c.predicted_spread:.3g}" if _finite(c.predicted_spread)
-            else "no prediction")
+    pred = (
+        f"predicted std ln s {c.predicted_spread:.3g}"
+        if _finite(c.predicted_spread)
+        else "no prediction"
+    )
     parts = [f"{c.role}: measured std ln s {m:.3g} against {mb:.3g}"]
     if not c.meets_target:
         parts.append(f"{pred}, above the target {target:.3g}")

@@ -36,8 +36,16 @@ from isoscope.network import Network
 from isoscope.spec import MATRIX_FREE_WIDTH, Spec
 from isoscope.spectrum import Spectrum, quadrature_log_s
 
-__all__ = ["DEEP_DEPTH", "MATRIX_FREE_WIDTH", "RELIABLE_DIGITS", "Draw", "choose_route",
-           "measure_draw", "needs_deep", "PartialLogSpectra"]
+__all__ = [
+    "DEEP_DEPTH",
+    "MATRIX_FREE_WIDTH",
+    "RELIABLE_DIGITS",
+    "Draw",
+    "choose_route",
+    "measure_draw",
+    "needs_deep",
+    "PartialLogSpectra",
+]
 
 # Beyond this depth "auto" takes the deep route for a stack with per-layer structure: the
 # singular values of most designs then span more decades than a float64 SVD resolves, and
@@ -63,13 +71,17 @@ def choose_route(spec: Spec, has_layers: bool) -> tuple[str, str]:
     if a.route != "auto":
         return a.route, "set in the spec (analysis.route)"
     if n.width > MATRIX_FREE_WIDTH:
-        return "matrix-free", (f"auto: width {n.width} > {MATRIX_FREE_WIDTH}, where the dense "
-                               "Jacobian (N^2 numbers) and its SVD (N^3) cost more than Lanczos "
-                               "quadrature with J v and J^T u products")
+        return "matrix-free", (
+            f"auto: width {n.width} > {MATRIX_FREE_WIDTH}, where the dense "
+            "Jacobian (N^2 numbers) and its SVD (N^3) cost more than Lanczos "
+            "quadrature with J v and J^T u products"
+        )
     if has_layers and n.depth is not None and n.depth > DEEP_DEPTH:
-        return "deep", (f"auto: depth {n.depth} > {DEEP_DEPTH}, where singular values usually "
-                        "span more decades than a dense SVD resolves; the stabilised product "
-                        "keeps every ln s exact")
+        return "deep", (
+            f"auto: depth {n.depth} > {DEEP_DEPTH}, where singular values usually "
+            "span more decades than a dense SVD resolves; the stabilised product "
+            "keeps every ln s exact"
+        )
     return "dense", "auto: the dense Jacobian fits and its SVD resolves the spectrum"
 
 
@@ -82,8 +94,10 @@ def needs_deep(spectrum: Spectrum | None, fault: jac.Fault | None) -> str | None
     if spectrum is not None:
         digits = RELIABLE_DIGITS.get(spectrum.dtype, 13.0)
         if spectrum.log10_condition > digits:
-            return (f"the dense spectrum spans {spectrum.log10_condition:.1f} decades, more than "
-                    f"the {digits:.0f} an SVD in {spectrum.dtype} resolves")
+            return (
+                f"the dense spectrum spans {spectrum.log10_condition:.1f} decades, more than "
+                f"the {digits:.0f} an SVD in {spectrum.dtype} resolves"
+            )
     return None
 
 
@@ -118,32 +132,37 @@ class Draw(NamedTuple):
     seconds: dict[str, float]
 
 
-@functools.lru_cache(maxsize=None)
+@functools.cache
 def _svd_values():
     return jax.jit(lambda m: jnp.linalg.svd(m, compute_uv=False))
 
 
 def _fault(network: Network, params, x) -> jac.Fault:
     if network.layer is None:
-        return jac.forward_fault(network, params, x) or jac.Fault("jacobian", 0,
-                                                                  "the Jacobian is not finite")
-    return (jac.forward_fault(network, params, x) or jac.jacobian_fault(network, params, x)
-            or jac.Fault("jacobian", 0, "the Jacobian is not finite"))
+        return jac.forward_fault(network, params, x) or jac.Fault(
+            "jacobian", 0, "the Jacobian is not finite"
+        )
+    return (
+        jac.forward_fault(network, params, x)
+        or jac.jacobian_fault(network, params, x)
+        or jac.Fault("jacobian", 0, "the Jacobian is not finite")
+    )
 
 
 def _dense(network: Network, params, x, depths, spec: Spec, key) -> Draw:
     """J by forward mode (with the partial products at ``depths`` when given), then its SVD."""
     t = time.perf_counter()
     profiled = jac.profiled_jacobian(network, params, x, depths) if depths is not None else None
-    jmat = (profiled.jacobian if profiled is not None
-            else jac.dense_jacobian(network, params, x)).block_until_ready()
+    jmat = (
+        profiled.jacobian if profiled is not None else jac.dense_jacobian(network, params, x)
+    ).block_until_ready()
     seconds = {"jacobian": time.perf_counter() - t}
     if not bool(jnp.all(jnp.isfinite(jmat))):
         return Draw(None, _fault(network, params, x), None, None, seconds)
     t = time.perf_counter()
     if profiled is not None:
         partial = jac.partial_spectra(profiled)
-        s = partial.singular_values(-1)          # the last kept depth is the full depth
+        s = partial.singular_values(-1)  # the last kept depth is the full depth
         seconds["profile"] = time.perf_counter() - t
     else:
         partial, s = None, np.asarray(_svd_values()(jmat))
@@ -161,7 +180,9 @@ def _deep(network: Network, params, x, depths, spec: Spec, key) -> Draw:
     if depths is None:
         log_s = np.asarray(jac.stable_log_singular_values(network, params, x).log_s)
         return Draw(log_s, None, None, None, {"jacobian": time.perf_counter() - t})
-    rows = np.asarray(jac.stable_log_singular_values(network, params, x, depths=depths).partial_log_s)
+    rows = np.asarray(
+        jac.stable_log_singular_values(network, params, x, depths=depths).partial_log_s
+    )
     seconds = {"jacobian": time.perf_counter() - t}
     return Draw(rows[-1].copy(), None, PartialLogSpectra(np.asarray(depths), rows), None, seconds)
 
@@ -174,16 +195,25 @@ def _matrix_free(network: Network, params, x, depths, spec: Spec, key) -> Draw:
         return Draw(None, fault, None, None, {})
     t = time.perf_counter()
     a = spec.analysis
-    rule = matrix_free.lanczos_quadrature(network, params, x, key, probes=a.probes,
-                                          steps=a.lanczos_steps)
+    rule = matrix_free.lanczos_quadrature(
+        network, params, x, key, probes=a.probes, steps=a.lanczos_steps
+    )
     nodes, weights = np.asarray(rule.nodes, np.float64), np.asarray(rule.weights, np.float64)
     if not (np.all(np.isfinite(nodes)) and np.all(np.isfinite(weights))):
-        return Draw(None, jac.Fault("jacobian", 0, "the Lanczos quadrature is not finite "
-                                    f"in {np.asarray(x).dtype}"), None, None,
-                    {"jacobian": time.perf_counter() - t})
+        return Draw(
+            None,
+            jac.Fault(
+                "jacobian", 0, f"the Lanczos quadrature is not finite in {np.asarray(x).dtype}"
+            ),
+            None,
+            None,
+            {"jacobian": time.perf_counter() - t},
+        )
     out_dim = int(jax.eval_shape(network.apply, params, x).shape[0])
     n = min(network.width, out_dim)
-    log_s = quadrature_log_s(nodes, weights / weights.sum(axis=1, keepdims=True) / nodes.shape[0], n)
+    log_s = quadrature_log_s(
+        nodes, weights / weights.sum(axis=1, keepdims=True) / nodes.shape[0], n
+    )
     summary = matrix_free.quadrature_summary(rule)
     return Draw(log_s, None, None, summary, {"jacobian": time.perf_counter() - t})
 
@@ -203,4 +233,3 @@ def measure_draw(route: str, network: Network, params, x, depths, spec: Spec, ke
       key: the draw's PRNG key for the route's own randomness (Lanczos probe vectors).
     """
     return _ROUTES[route](network, params, x, depths, spec, key)
-

@@ -31,18 +31,36 @@ from scipy.special import logsumexp
 from isoscope.activations import get_activation
 from isoscope.spectrum import Spectrum
 
-__all__ = ["Score", "score_spectrum", "VERDICTS", "GAIN_LIMIT", "ISOMETRIC_SCORE", "Agreement",
-           "agreement", "ks_distance", "censored_log_stats", "KS_LIMIT", "Outlier",
-           "split_outliers", "length_mode_side", "tail_share", "atom_tolerance", "snap_to_atoms",
-           "judged_gain", "non_finite_score", "outlier_counts", "isometry_of_logs",
-           "predicted_isometry"]
+__all__ = [
+    "Score",
+    "score_spectrum",
+    "VERDICTS",
+    "GAIN_LIMIT",
+    "ISOMETRIC_SCORE",
+    "Agreement",
+    "agreement",
+    "ks_distance",
+    "censored_log_stats",
+    "KS_LIMIT",
+    "Outlier",
+    "split_outliers",
+    "length_mode_side",
+    "tail_share",
+    "atom_tolerance",
+    "snap_to_atoms",
+    "judged_gain",
+    "non_finite_score",
+    "outlier_counts",
+    "isometry_of_logs",
+    "predicted_isometry",
+]
 
-GAIN_LIMIT = 10.0      # convention, see module docstring
+GAIN_LIMIT = 10.0  # convention, see module docstring
 ISOMETRIC_SCORE = 0.8  # convention, see module docstring
 VERDICTS = {
     "isometric": "every direction keeps its length to within about 12% (isometry score >= 0.8)",
     "mis-scaled": "the singular values agree with each other but not with 1 (shape score >= 0.8): "
-                  "every direction is scaled alike; rescale sigma_w to bring the gain to 1",
+    "every direction is scaled alike; rescale sigma_w to bring the gain to 1",
     "spread": "gain near 1 but singular values spread: some directions are amplified, others lost",
     "vanishing": "mean squared singular value below 1/10: gradients shrink through the stack",
     "exploding": "mean squared singular value above 10: gradients grow through the stack",
@@ -79,9 +97,12 @@ def isometry_of_logs(log_lam: np.ndarray) -> float:
     return float(np.mean(np.exp(-np.abs(log_lam))))
 
 
-def score_spectrum(spectrum: Spectrum, depth: int | None,
-                   judged_gain: tuple[float, str] | None = None,
-                   scored: str = "all singular values") -> Score:
+def score_spectrum(
+    spectrum: Spectrum,
+    depth: int | None,
+    judged_gain: tuple[float, str] | None = None,
+    scored: str = "all singular values",
+) -> Score:
     """Score a measured spectrum.
 
     Moments are taken in logarithms (``ln m_k`` by log-sum-exp), so a gain that under- or
@@ -100,8 +121,9 @@ def score_spectrum(spectrum: Spectrum, depth: int | None,
     log_m1, log_m2 = spectrum.log_lambda_moment(1), spectrum.log_lambda_moment(2)
     isometry = isometry_of_logs(log_lam)
     shape = isometry_of_logs(log_lam - log_m1) if math.isfinite(log_m1) else 0.0
-    per_layer = math.exp(log_m1 / depth) if depth and math.isfinite(log_m1) else (
-        0.0 if depth else None)
+    per_layer = (
+        math.exp(log_m1 / depth) if depth and math.isfinite(log_m1) else (0.0 if depth else None)
+    )
     nvar = _exp(log_m2 - 2.0 * log_m1) - 1.0 if math.isfinite(log_m1) else math.nan
     basis = log_m1 if judged_gain is None else math.log(judged_gain[0])
     if basis < math.log(1.0 / GAIN_LIMIT):
@@ -115,12 +137,19 @@ def score_spectrum(spectrum: Spectrum, depth: int | None,
     else:
         verdict = "spread"
     reason = VERDICTS[verdict] + ("" if judged_gain is None else f" ({judged_gain[1]})")
-    return Score(isometry=isometry, shape_score=shape, gain=_exp(log_m1),
-                 log10_gain=log_m1 / math.log(10.0), gain_per_layer=per_layer,
-                 normalised_variance=nvar, log_s_std=spectrum.log_s_std,
-                 verdict=verdict, reason=reason,
-                 gain_basis="measured m1" if judged_gain is None else "predicted m1",
-                 scored=scored)
+    return Score(
+        isometry=isometry,
+        shape_score=shape,
+        gain=_exp(log_m1),
+        log10_gain=log_m1 / math.log(10.0),
+        gain_per_layer=per_layer,
+        normalised_variance=nvar,
+        log_s_std=spectrum.log_s_std,
+        verdict=verdict,
+        reason=reason,
+        gain_basis="measured m1" if judged_gain is None else "predicted m1",
+        scored=scored,
+    )
 
 
 def _exp(x: float) -> float:
@@ -131,8 +160,18 @@ def _exp(x: float) -> float:
 def non_finite_score(detail: str) -> Score:
     """The score of a measurement that overflowed: every number NaN, verdict ``non-finite``."""
     nan = math.nan
-    return Score(nan, nan, nan, nan, nan, nan, nan, "non-finite", f"{VERDICTS['non-finite']}: {detail}",
-                 "none")
+    return Score(
+        nan,
+        nan,
+        nan,
+        nan,
+        nan,
+        nan,
+        nan,
+        "non-finite",
+        f"{VERDICTS['non-finite']}: {detail}",
+        "none",
+    )
 
 
 # ---------------------------------------------------------------------------------------------
@@ -257,8 +296,8 @@ def censored_log_stats(density, floor_ell: float) -> tuple[float, float]:
     e, r = e[keep], r[keep]
 
     def part(k):
-        grid = float(np.trapezoid(r * e ** k, e)) if e.size >= 2 else 0.0
-        return grid + sum(w * la ** k for la, w in pts)
+        grid = float(np.trapezoid(r * e**k, e)) if e.size >= 2 else 0.0
+        return grid + sum(w * la**k for la, w in pts)
 
     mass = part(0)
     if mass <= 0:
@@ -316,8 +355,9 @@ def atom_tolerance(dtype: str, size: int, depth: int, log_s_max: float, log_s_at
     return 2.0 * rel
 
 
-def ks_distance(sample_log_lam: np.ndarray, density, floor_ell: float = -math.inf,
-                atom_tol: float = 0.0) -> float:
+def ks_distance(
+    sample_log_lam: np.ndarray, density, floor_ell: float = -math.inf, atom_tol: float = 0.0
+) -> float:
     """Kolmogorov-Smirnov distance between a sample of ``ln lambda`` and a predicted law.
 
     ``D = sup_{ell >= floor} |F_n(ell) - F(ell)|``.  Between two distinct sample values F_n is
@@ -338,12 +378,15 @@ def ks_distance(sample_log_lam: np.ndarray, density, floor_ell: float = -math.in
     Returns:
       D in [0, 1].
     """
-    x = np.sort(snap_to_atoms(sample_log_lam, density, atom_tol) if atom_tol > 0
-                else np.asarray(sample_log_lam, dtype=float))
+    x = np.sort(
+        snap_to_atoms(sample_log_lam, density, atom_tol)
+        if atom_tol > 0
+        else np.asarray(sample_log_lam, dtype=float)
+    )
     n = x.size
-    i0 = int(np.count_nonzero(~(x > floor_ell)))          # values in the lump at the floor
+    i0 = int(np.count_nonzero(~(x > floor_ell)))  # values in the lump at the floor
     v, first = np.unique(x[i0:], return_index=True)
-    last = np.append(first[1:], n - i0)                     # one past each tie group
+    last = np.append(first[1:], n - i0)  # one past each tie group
     right = np.abs((i0 + last) / n - _predicted_log_cdf(density, v))
     left = np.abs((i0 + first) / n - _predicted_log_cdf(density, v, strict=True))
     d = max(np.max(right, initial=0.0), np.max(left, initial=0.0))
@@ -385,16 +428,16 @@ def tail_share(density, k: int, count: int) -> float:
     total = float(logsumexp(logm))
     cum = np.cumsum(p)
     need = 1.0 / count
-    j = int(np.searchsorted(cum, need))          # cells fully above the quantile: 0..j-1
+    j = int(np.searchsorted(cum, need))  # cells fully above the quantile: 0..j-1
     if j >= p.size:
         return 1.0
     before = float(cum[j - 1]) if j else 0.0
-    frac = (need - before) / p[j] if p[j] > 0 else 0.0   # the part of cell j above Q
+    frac = (need - before) / p[j] if p[j] > 0 else 0.0  # the part of cell j above Q
     parts = list(logm[:j]) + ([math.log(frac) + logm[j]] if frac > 0 else [])
     if not parts:
         return 0.0
-    above = float(np.exp(logsumexp(parts) - total))               # E[lambda^k; lambda > Q]/m_k
-    level = float(np.exp(k * ell[j] - total)) * need              # Q^k P(lambda > Q)/m_k
+    above = float(np.exp(logsumexp(parts) - total))  # E[lambda^k; lambda > Q]/m_k
+    level = float(np.exp(k * ell[j] - total)) * need  # Q^k P(lambda > Q)/m_k
     return max(above - level, 0.0)
 
 
@@ -422,8 +465,7 @@ def _outlier_kinds(prediction) -> list[tuple[str, str, float]]:
         found.append(("mean mode", "top", math.nan))
     side = length_mode_side(prediction)
     if side is not None and not any(f[1] == side for f in found):
-        found.append(("input-length direction", side,
-                      _exp(float(prediction.log_length_mode_s))))
+        found.append(("input-length direction", side, _exp(float(prediction.log_length_mode_s))))
     return found
 
 
@@ -447,9 +489,17 @@ def split_outliers(spectrum: Spectrum, prediction) -> tuple[Spectrum, tuple[Outl
     found = [f for f in _outlier_kinds(prediction) if spectrum.size > 2]
     top = sum(f[1] == "top" for f in found)
     bottom = sum(f[1] == "bottom" for f in found)
-    outliers = tuple(Outlier(kind, where, float(np.exp(np.median(
-        spectrum.log_s[:, 0] if where == "top" else spectrum.log_s[:, -1]))), pred)
-        for kind, where, pred in found)
+    outliers = tuple(
+        Outlier(
+            kind,
+            where,
+            float(
+                np.exp(np.median(spectrum.log_s[:, 0] if where == "top" else spectrum.log_s[:, -1]))
+            ),
+            pred,
+        )
+        for kind, where, pred in found
+    )
     return (spectrum.trimmed(top, bottom) if found else spectrum), outliers
 
 
@@ -457,29 +507,35 @@ def _broken_assumption(prediction) -> str | None:
     """The prediction's own premise that this design breaks, as a phrase (or None)."""
     if prediction.family == "plain":
         if get_activation(prediction.activation).law_free_of_q:
-            return None    # phi'(h)^2 has one law at every q: the layers' variance is irrelevant
+            return None  # phi'(h)^2 has one law at every q: the layers' variance is irrelevant
         q, q_law = np.asarray(prediction.q_layers, dtype=float), prediction.q_law
         if q_law > 0 and q.size and float(np.max(np.abs(q - q_law))) > STEADY_RTOL * q_law:
             worst = int(np.argmax(np.abs(q - q_law)))
-            return (f"the inputs are not at the fixed point (layer {worst + 1} has q = "
-                    f"{q[worst]:.4g} against q* = {q_law:.4g}) while the prediction takes every "
-                    "layer at q*: feed steady-state inputs (analysis.input = \"steady-state\")")
+            return (
+                f"the inputs are not at the fixed point (layer {worst + 1} has q = "
+                f"{q[worst]:.4g} against q* = {q_law:.4g}) while the prediction takes every "
+                'layer at q*: feed steady-state inputs (analysis.input = "steady-state")'
+            )
     elif prediction.tau / prediction.depth > BLOCK_LIMIT:
-        return (f"each residual block contributes {prediction.tau / prediction.depth:.3g} > "
-                f"{BLOCK_LIMIT} to tau while the residual law assumes O(1/L) per block: scale "
-                "alpha^2 sigma_w^2 like 1/L")
+        return (
+            f"each residual block contributes {prediction.tau / prediction.depth:.3g} > "
+            f"{BLOCK_LIMIT} to tau while the residual law assumes O(1/L) per block: scale "
+            "alpha^2 sigma_w^2 like 1/L"
+        )
     return None
 
 
 def _out_of_range(prediction, spectrum: Spectrum) -> str | None:
     """A phrase when the predicted singular values lie below the dtype's range, so that the
     dense Jacobian underflows (its entries, products of L small factors, round to zero)."""
-    top = prediction.density.log_support[1] / 2.0      # ln s at the predicted upper edge
+    top = prediction.density.log_support[1] / 2.0  # ln s at the predicted upper edge
     tiny = math.log(float(np.finfo(np.dtype(spectrum.dtype)).tiny))
     if math.isfinite(top) and top < tiny + math.log(spectrum.size):
-        return (f"underflow: theory puts the largest singular value near e^{top:.4g}, below the "
-                f"{spectrum.dtype} range (e^{tiny:.4g}), so the dense Jacobian rounds to zero; "
-                "raise sigma_w towards the critical value or lower the depth")
+        return (
+            f"underflow: theory puts the largest singular value near e^{top:.4g}, below the "
+            f"{spectrum.dtype} range (e^{tiny:.4g}), so the dense Jacobian rounds to zero; "
+            "raise sigma_w towards the critical value or lower the depth"
+        )
     return None
 
 
@@ -513,27 +569,39 @@ def agreement(spectrum: Spectrum, prediction) -> Agreement:
     """
     density, moments, depth = prediction.density, prediction.moments, prediction.depth
     bulk, outliers = split_outliers(spectrum, prediction)
-    compared = ("all singular values" if not outliers else
-                "the bulk: " + "; ".join(f"the {'largest' if o.side == 'top' else 'smallest'} "
-                                         f"singular value of each draw ({o.kind}) is set apart"
-                                         for o in outliers))
+    compared = (
+        "all singular values"
+        if not outliers
+        else "the bulk: "
+        + "; ".join(
+            f"the {'largest' if o.side == 'top' else 'smallest'} "
+            f"singular value of each draw ({o.kind}) is set apart"
+            for o in outliers
+        )
+    )
     log_s, zero = bulk.log_s, bulk.zero_mask
     n_draws, width = log_s.shape
     log_s_max = float(np.median(log_s[:, 0]))
-    floor_ell = (2.0 * (math.log(spectrum.threshold) + log_s_max) if spectrum.threshold > 0
-                 else -math.inf)
+    floor_ell = (
+        2.0 * (math.log(spectrum.threshold) + log_s_max) if spectrum.threshold > 0 else -math.inf
+    )
     log_lam = np.where(zero, -np.inf, 2.0 * log_s).ravel()
     atoms = [la for la, _ in _atom_log_locations(density) if math.isfinite(la)]
-    tol = max((atom_tolerance(spectrum.dtype, spectrum.size, depth, log_s_max, la / 2.0)
-               for la in atoms), default=0.0)
+    tol = max(
+        (atom_tolerance(spectrum.dtype, spectrum.size, depth, log_s_max, la / 2.0) for la in atoms),
+        default=0.0,
+    )
     ks = ks_distance(log_lam, density, floor_ell, tol)
     lam_k = lambda k: float(logsumexp(2.0 * k * log_s.ravel()) - math.log(log_s.size))
     log_m1, log_m2 = lam_k(1), lam_k(2)
     m1_draws = logsumexp(2.0 * log_s, axis=1) - math.log(width)
-    m1_se = (float(np.std(np.exp(m1_draws - log_m1)) / math.sqrt(n_draws))
-             if n_draws > 1 and math.isfinite(log_m1) else math.nan)
+    m1_se = (
+        float(np.std(np.exp(m1_draws - log_m1)) / math.sqrt(n_draws))
+        if n_draws > 1 and math.isfinite(log_m1)
+        else math.nan
+    )
     kept = log_lam[np.isfinite(log_lam)] / 2.0
-    measured_stats = ((float(kept.mean()), float(kept.std())) if kept.size else (math.nan, math.nan))
+    measured_stats = (float(kept.mean()), float(kept.std())) if kept.size else (math.nan, math.nan)
     pm, ps = censored_log_stats(density, floor_ell)
     pred_zero = float(_predicted_log_cdf(density, np.array([floor_ell]))[0])
     meas_zero = float(np.mean(~np.isfinite(log_lam)))
@@ -545,52 +613,83 @@ def agreement(spectrum: Spectrum, prediction) -> Agreement:
     warnings = []
     for o in outliers:
         pred = "" if not math.isfinite(o.predicted_s) else f", predicted {o.predicted_s:.3g}"
-        warnings.append(f"{o.kind}: one singular value per draw (median s = {o.measured_s:.3g}"
-                        f"{pred}) lies {'above' if o.side == 'top' else 'below'} the bulk the law "
-                        "describes; it is reported separately and left out of the score and the "
-                        "comparison")
+        warnings.append(
+            f"{o.kind}: one singular value per draw (median s = {o.measured_s:.3g}"
+            f"{pred}) lies {'above' if o.side == 'top' else 'below'} the bulk the law "
+            "describes; it is reported separately and left out of the score and the "
+            "comparison"
+        )
     if not m1_ok:
-        warnings.append(f"heavy tail: the top 1/{width} of the predicted law carries "
-                        f"{100 * shares[0]:.1f}% of m1, so {width} singular values per draw "
-                        "cannot estimate the gain m1 (it is not compared); compare the mean of "
-                        "ln s instead: " + (f"measured {measured_stats[0]:.4g}, predicted "
-                                            f"{pm / 2.0:.4g}" if kept.size else
-                                            "but no measured value lies above the SVD floor"))
+        warnings.append(
+            f"heavy tail: the top 1/{width} of the predicted law carries "
+            f"{100 * shares[0]:.1f}% of m1, so {width} singular values per draw "
+            "cannot estimate the gain m1 (it is not compared); compare the mean of "
+            "ln s instead: "
+            + (
+                f"measured {measured_stats[0]:.4g}, predicted {pm / 2.0:.4g}"
+                if kept.size
+                else "but no measured value lies above the SVD floor"
+            )
+        )
     elif not m2_ok:
-        warnings.append(f"heavy tail: the top 1/{width} of the predicted law carries "
-                        f"{100 * shares[1]:.1f}% of m2, so m2 is not compared; compare the KS "
-                        "distance and the ln s statistics")
+        warnings.append(
+            f"heavy tail: the top 1/{width} of the predicted law carries "
+            f"{100 * shares[1]:.1f}% of m2, so m2 is not compared; compare the KS "
+            "distance and the ln s statistics"
+        )
     # a measurement with a floor (an SVD) loses values below it; one without (the deep route)
     # counts only exact zeros, the rank the layers' Jacobians leave
-    below = (f"lie below the SVD floor {_exp(floor_ell):.2g}" if math.isfinite(floor_ell) else
-             "are zero (a layer's Jacobian has lower rank at this width)")
+    below = (
+        f"lie below the SVD floor {_exp(floor_ell):.2g}"
+        if math.isfinite(floor_ell)
+        else "are zero (a layer's Jacobian has lower rank at this width)"
+    )
     lost = meas_zero - pred_zero > 0.01
     if lost:
-        warnings.append(f"{100 * meas_zero:.1f}% of the measured lambda {below} where theory puts "
-                        f"{100 * pred_zero:.1f}%: the ln s statistics cover only the rest")
+        warnings.append(
+            f"{100 * meas_zero:.1f}% of the measured lambda {below} where theory puts "
+            f"{100 * pred_zero:.1f}%: the ln s statistics cover only the rest"
+        )
     disagree = ks > KS_LIMIT or (m1_ok and math.isfinite(e1) and abs(e1) > MOMENT_LIMIT)
     cause = None
     if disagree:
         cause = _broken_assumption(prediction) or _out_of_range(prediction, spectrum)
         if cause is None and ratio > FINITE_WIDTH_LIMIT:
-            cause = (f"finite width (sqrt(L/N) = {ratio:.2f} > {FINITE_WIDTH_LIMIT}): widen the "
-                     "network or compare at a smaller depth")
+            cause = (
+                f"finite width (sqrt(L/N) = {ratio:.2f} > {FINITE_WIDTH_LIMIT}): widen the "
+                "network or compare at a smaller depth"
+            )
         if cause is None and lost:
-            cause = (f"measured values that {below}" + (" (use dtype = \"float64\")"
-                                                         if spectrum.dtype == "float32" else ""))
+            cause = f"measured values that {below}" + (
+                ' (use dtype = "float64")' if spectrum.dtype == "float32" else ""
+            )
         if cause is None:
             cause = "no known cause: the design lies outside what the theory was checked on"
-        warnings.append(f"measured and predicted spectra disagree (KS = {ks:.3f}"
-                        + (f", m1 off by {_pct(e1)}" if m1_ok and math.isfinite(e1) else "")
-                        + f"); the most likely cause is {cause}")
-    return Agreement(ks=ks, floor=_exp(floor_ell), compared=compared, m1_rel_error=e1,
-                     m2_rel_error=e2, m1_sampling_error=m1_se,
-                     log_s_mean=(pm / 2.0, measured_stats[0]),
-                     log_s_std=(ps / 2.0, measured_stats[1]),
-                     zero_fraction=(pred_zero, meas_zero), outliers=outliers,
-                     tail_share=shares, m1_reliable=m1_ok, m2_reliable=m2_ok,
-                     finite_width_ratio=ratio, atom_tolerance=tol, disagree=disagree,
-                     cause=cause, warnings=tuple(warnings))
+        warnings.append(
+            f"measured and predicted spectra disagree (KS = {ks:.3f}"
+            + (f", m1 off by {_pct(e1)}" if m1_ok and math.isfinite(e1) else "")
+            + f"); the most likely cause is {cause}"
+        )
+    return Agreement(
+        ks=ks,
+        floor=_exp(floor_ell),
+        compared=compared,
+        m1_rel_error=e1,
+        m2_rel_error=e2,
+        m1_sampling_error=m1_se,
+        log_s_mean=(pm / 2.0, measured_stats[0]),
+        log_s_std=(ps / 2.0, measured_stats[1]),
+        zero_fraction=(pred_zero, meas_zero),
+        outliers=outliers,
+        tail_share=shares,
+        m1_reliable=m1_ok,
+        m2_reliable=m2_ok,
+        finite_width_ratio=ratio,
+        atom_tolerance=tol,
+        disagree=disagree,
+        cause=cause,
+        warnings=tuple(warnings),
+    )
 
 
 def judged_gain(agree: Agreement, prediction, spectrum: Spectrum) -> tuple[float, str] | None:
@@ -605,17 +704,21 @@ def judged_gain(agree: Agreement, prediction, spectrum: Spectrum) -> tuple[float
     if agree.m1_reliable:
         return None
     pred_mean, meas_mean = agree.log_s_mean
-    per_draw = np.array([np.mean(r[np.isfinite(r)]) for r in spectrum.log_s
-                         if np.isfinite(r).any()])
+    per_draw = np.array(
+        [np.mean(r[np.isfinite(r)]) for r in spectrum.log_s if np.isfinite(r).any()]
+    )
     se = float(np.std(per_draw) / math.sqrt(per_draw.size)) if per_draw.size > 1 else 0.0
     log_m1 = prediction.moments.log_m1
     close = math.isfinite(pred_mean) and abs(meas_mean - pred_mean) <= max(LOG_MEAN_LIMIT, 3 * se)
     if not close or not math.isfinite(log_m1):
         return None
-    return (_exp(log_m1), f"judged by the predicted m1 = {_exp(log_m1):.4g}: the measured m1 "
-            f"cannot be estimated from {spectrum.size} values per draw (heavy tail), and the mean "
-            f"of ln s, which can, agrees with theory: measured {meas_mean:.4g}, predicted "
-            f"{pred_mean:.4g}")
+    return (
+        _exp(log_m1),
+        f"judged by the predicted m1 = {_exp(log_m1):.4g}: the measured m1 "
+        f"cannot be estimated from {spectrum.size} values per draw (heavy tail), and the mean "
+        f"of ln s, which can, agrees with theory: measured {meas_mean:.4g}, predicted "
+        f"{pred_mean:.4g}",
+    )
 
 
 def _rel_log(log_got: float, log_want: float) -> float:

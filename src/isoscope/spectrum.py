@@ -15,8 +15,13 @@ import math
 import numpy as np
 from scipy.special import logsumexp
 
-__all__ = ["Spectrum", "from_singular_values", "from_log_singular_values", "quadrature_log_s",
-           "zero_threshold"]
+__all__ = [
+    "Spectrum",
+    "from_singular_values",
+    "from_log_singular_values",
+    "quadrature_log_s",
+    "zero_threshold",
+]
 
 QUANTILES = (0.01, 0.05, 0.25, 0.5, 0.75, 0.95, 0.99)
 
@@ -130,15 +135,18 @@ class Spectrum:
         lo, hi = self.log_s_range
         return (hi - lo) / math.log(10.0)
 
-    def trimmed(self, top: int = 0, bottom: int = 0) -> "Spectrum":
+    def trimmed(self, top: int = 0, bottom: int = 0) -> Spectrum:
         """The same spectrum without the ``top`` largest and ``bottom`` smallest singular
         values of every draw (to set apart outliers that the bulk law does not describe: a
         residual stack's mean mode, a plain stack's input-length direction)."""
         if top < 0 or bottom < 0 or top + bottom >= self.size:
-            raise ValueError(f"cannot trim {top} + {bottom} of {self.size} singular values per draw")
+            raise ValueError(
+                f"cannot trim {top} + {bottom} of {self.size} singular values per draw"
+            )
         end = self.size - bottom
-        return dataclasses.replace(self, log_s=self.log_s[:, top:end],
-                                   zero_mask=self.zero_mask[:, top:end])
+        return dataclasses.replace(
+            self, log_s=self.log_s[:, top:end], zero_mask=self.zero_mask[:, top:end]
+        )
 
     @property
     def s_quantiles(self) -> dict[str, float]:
@@ -159,12 +167,14 @@ def from_singular_values(s: np.ndarray, dtype, method: str = "svd") -> Spectrum:
     zero = s <= thr * s[:, :1]
     with np.errstate(divide="ignore"):
         log_s = np.log(s)
-    return Spectrum(log_s=log_s, zero_mask=zero, threshold=thr, dtype=str(np.dtype(dtype)),
-                    method=method)
+    return Spectrum(
+        log_s=log_s, zero_mask=zero, threshold=thr, dtype=str(np.dtype(dtype)), method=method
+    )
 
 
-def from_log_singular_values(log_s: np.ndarray, dtype, method: str,
-                             threshold: float | None = None) -> Spectrum:
+def from_log_singular_values(
+    log_s: np.ndarray, dtype, method: str, threshold: float | None = None
+) -> Spectrum:
     """Build a :class:`Spectrum` from ``ln s`` of shape ``(draws, n)`` or ``(n,)``, for
     routes whose singular values need not fit in floating point (the deep route).
 
@@ -177,8 +187,9 @@ def from_log_singular_values(log_s: np.ndarray, dtype, method: str,
     log_s = -np.sort(-log_s, axis=1)
     thr = zero_threshold(log_s.shape[1], dtype) if threshold is None else float(threshold)
     zero = (log_s <= math.log(thr) + log_s[:, :1]) if thr > 0 else ~np.isfinite(log_s)
-    return Spectrum(log_s=log_s, zero_mask=zero, threshold=thr, dtype=str(np.dtype(dtype)),
-                    method=method)
+    return Spectrum(
+        log_s=log_s, zero_mask=zero, threshold=thr, dtype=str(np.dtype(dtype)), method=method
+    )
 
 
 def quadrature_log_s(nodes: np.ndarray, weights: np.ndarray, n: int) -> np.ndarray:

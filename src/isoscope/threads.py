@@ -62,9 +62,12 @@ def _count(environ: Mapping[str, str], name: str) -> int | None:
     except ValueError:
         value = 0
     if value < 1:
-        raise InputError(f"environment variable {name} = {raw!r} is not a thread count",
-                         expected="a whole number >= 1", key=name,
-                         hint=f"unset {name} to use isoscope's default")
+        raise InputError(
+            f"environment variable {name} = {raw!r} is not a thread count",
+            expected="a whole number >= 1",
+            key=name,
+            hint=f"unset {name} to use isoscope's default",
+        )
     return value
 
 
@@ -85,7 +88,7 @@ def thread_policy(environ: Mapping[str, str] | None = None) -> ThreadPolicy:
     env = os.environ if environ is None else environ
     blas, xla = _count(env, BLAS_ENV), _count(env, XLA_ENV)
     set_by = [name for name, v in ((BLAS_ENV, blas), (XLA_ENV, xla)) if v is not None]
-    source = ("default" if not set_by else "default, with " + ", ".join(set_by))
+    source = "default" if not set_by else "default, with " + ", ".join(set_by)
     return ThreadPolicy(blas=1 if blas is None else blas, xla=xla, source=source)
 
 

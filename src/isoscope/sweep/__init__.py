@@ -10,5 +10,14 @@ from isoscope.sweep.grid import Grid, Point, load_grid, parse_grid
 from isoscope.sweep.run import SweepSummary, run_sweep
 from isoscope.sweep.store import SCHEMA, Store, check_store
 
-__all__ = ["Grid", "Point", "load_grid", "parse_grid", "SweepSummary", "run_sweep", "SCHEMA",
-           "Store", "check_store"]
+__all__ = [
+    "Grid",
+    "Point",
+    "load_grid",
+    "parse_grid",
+    "SweepSummary",
+    "run_sweep",
+    "SCHEMA",
+    "Store",
+    "check_store",
+]

@@ -47,8 +47,15 @@ from typing import Any
 
 from isoscope.errors import InputError
 
-__all__ = ["measure_point", "available_cores", "worker_threads", "Schedule", "LocalWorkers",
-           "DaskWorkers", "Finished"]
+__all__ = [
+    "measure_point",
+    "available_cores",
+    "worker_threads",
+    "Schedule",
+    "LocalWorkers",
+    "DaskWorkers",
+    "Finished",
+]
 
 
 def available_cores() -> int:
@@ -89,12 +96,18 @@ def measure_point(spec_data: dict[str, Any], source: str | None = None) -> dict[
         result.pop("glossary", None)
         return {"status": "done", "result": result, "seconds": time.perf_counter() - t0}
     except (InputError, ValueError, ArithmeticError) as e:
-        return {"status": "failed", "error": f"{type(e).__name__}: {e}",
-                "seconds": time.perf_counter() - t0}
+        return {
+            "status": "failed",
+            "error": f"{type(e).__name__}: {e}",
+            "seconds": time.perf_counter() - t0,
+        }
     except Exception as e:  # a bug: keep the traceback with the point
         tb = "".join(traceback.format_exception(type(e), e, e.__traceback__)[-6:])
-        return {"status": "failed", "error": f"internal error {type(e).__name__}: {e}\n{tb}",
-                "seconds": time.perf_counter() - t0}
+        return {
+            "status": "failed",
+            "error": f"internal error {type(e).__name__}: {e}\n{tb}",
+            "seconds": time.perf_counter() - t0,
+        }
 
 
 _DRAWS: list = []
@@ -107,6 +120,7 @@ def _worker_draws() -> Iterator[None]:
     their unit draws; at most the cache's 1 GiB stays held)."""
     if not _DRAWS:
         from isoscope.initializers import reused_draws
+
         manager = reused_draws()
         manager.__enter__()
         _DRAWS.append(manager)
@@ -178,9 +192,14 @@ def _environment(values: dict[str, str]) -> Iterator[None]:
 def thread_environment(threads: int) -> dict[str, str]:
     """The environment of a worker with ``threads`` XLA threads and one BLAS thread
     (:mod:`isoscope.threads`; ``PJRT_NPROC`` is what XLA reads when it starts)."""
-    return {"PJRT_NPROC": str(threads), "ISOSCOPE_XLA_THREADS": str(threads),
-            "ISOSCOPE_BLAS_THREADS": "1", "OMP_NUM_THREADS": "1", "OPENBLAS_NUM_THREADS": "1",
-            "MKL_NUM_THREADS": "1"}
+    return {
+        "PJRT_NPROC": str(threads),
+        "ISOSCOPE_XLA_THREADS": str(threads),
+        "ISOSCOPE_BLAS_THREADS": "1",
+        "OMP_NUM_THREADS": "1",
+        "OPENBLAS_NUM_THREADS": "1",
+        "MKL_NUM_THREADS": "1",
+    }
 
 
 class WorkerStartError(RuntimeError):
@@ -202,10 +221,12 @@ class LocalWorkers:
         self.procs: dict[int, tuple[Any, subprocess.Popen]] = {}
 
     def describe(self) -> str:
-        return (f"local: {self.workers} worker process{'es' if self.workers > 1 else ''} x "
-                f"{self.threads} XLA thread{'s' if self.threads > 1 else ''}, 1 BLAS thread")
+        return (
+            f"local: {self.workers} worker process{'es' if self.workers > 1 else ''} x "
+            f"{self.threads} XLA thread{'s' if self.threads > 1 else ''}, 1 BLAS thread"
+        )
 
-    def __enter__(self) -> "LocalWorkers":
+    def __enter__(self) -> LocalWorkers:
         try:
             for i in range(self.workers):
                 self._start(i)
@@ -234,9 +255,12 @@ class LocalWorkers:
         mine, theirs = socket.socketpair()
         fd = theirs.fileno()
         env = {**os.environ, **thread_environment(self.threads)}
-        proc = subprocess.Popen([sys.executable, "-m", "isoscope.sweep.worker", str(fd),
-                                 str(os.getpid())], pass_fds=[fd], env=env,
-                                stdin=subprocess.DEVNULL)
+        proc = subprocess.Popen(
+            [sys.executable, "-m", "isoscope.sweep.worker", str(fd), str(os.getpid())],
+            pass_fds=[fd],
+            env=env,
+            stdin=subprocess.DEVNULL,
+        )
         theirs.close()
         self.procs[slot] = (Connection(mine.detach()), proc)
 
@@ -248,8 +272,10 @@ class LocalWorkers:
             hello = None
         if hello != "ready":
             code = proc.wait()
-            raise WorkerStartError(f"a sweep worker exited before it was ready (exit code {code}); "
-                                   "its error is printed above")
+            raise WorkerStartError(
+                f"a sweep worker exited before it was ready (exit code {code}); "
+                "its error is printed above"
+            )
 
     def run(self, points, source: str | None) -> Iterator[Finished]:
         """Run every point; yields as each finishes (in completion order)."""
@@ -273,9 +299,12 @@ class LocalWorkers:
                     outcome = conn.recv()
                 except (EOFError, OSError):
                     code = proc.wait()
-                    outcome = {"status": "failed", "seconds": None,
-                               "error": f"the worker process died (exit code {code}) while "
-                                        "measuring this point (out of memory, or killed)"}
+                    outcome = {
+                        "status": "failed",
+                        "seconds": None,
+                        "error": f"the worker process died (exit code {code}) while "
+                        "measuring this point (out of memory, or killed)",
+                    }
                     conn.close()
                     self._start(slot)
                     self._ready(slot)
@@ -289,9 +318,11 @@ def _dask():
     try:
         import distributed
     except ImportError:
-        raise InputError("--scheduler needs Dask's distributed package, which is not installed",
-                         expected="pip install 'isoscope[cluster]'",
-                         hint="or run without --scheduler to use local worker processes") from None
+        raise InputError(
+            "--scheduler needs Dask's distributed package, which is not installed",
+            expected="pip install 'isoscope[cluster]'",
+            hint="or run without --scheduler to use local worker processes",
+        ) from None
     return distributed
 
 
@@ -316,31 +347,40 @@ class DaskWorkers:
 
     def describe(self) -> str:
         if self.address == "local":
-            return (f"dask LocalCluster on 127.0.0.1: {self.workers} worker process"
-                    f"{'es' if self.workers > 1 else ''} x {worker_threads(self.workers)} XLA "
-                    "threads")
+            return (
+                f"dask LocalCluster on 127.0.0.1: {self.workers} worker process"
+                f"{'es' if self.workers > 1 else ''} x {worker_threads(self.workers)} XLA "
+                "threads"
+            )
         return f"dask scheduler {self.address}"
 
-    def __enter__(self) -> "DaskWorkers":
+    def __enter__(self) -> DaskWorkers:
         distributed = _dask()
         import logging
+
         logging.getLogger("distributed").setLevel(logging.ERROR)
         try:
             if self.address == "local":
                 with _environment(thread_environment(worker_threads(self.workers))):
                     self.cluster = distributed.LocalCluster(
-                        n_workers=self.workers, threads_per_worker=1, processes=True,
-                        host="127.0.0.1", dashboard_address="127.0.0.1:0", silence_logs=50)
+                        n_workers=self.workers,
+                        threads_per_worker=1,
+                        processes=True,
+                        host="127.0.0.1",
+                        dashboard_address="127.0.0.1:0",
+                        silence_logs=50,
+                    )
                 self.client = distributed.Client(self.cluster, timeout=self.timeout)
             else:
                 self.client = distributed.Client(self.address, timeout=self.timeout)
         except (OSError, TimeoutError, ValueError) as e:
             self.__exit__()
-            raise InputError(f"the Dask scheduler {self.address!r} does not answer ({e})",
-                             expected="the address of a running scheduler, e.g. "
-                                      "tcp://10.0.0.5:8786, or 'local'",
-                             hint="check the address and that the scheduler runs and is "
-                                  "reachable from here; nothing was written") from None
+            raise InputError(
+                f"the Dask scheduler {self.address!r} does not answer ({e})",
+                expected="the address of a running scheduler, e.g. tcp://10.0.0.5:8786, or 'local'",
+                hint="check the address and that the scheduler runs and is "
+                "reachable from here; nothing was written",
+            ) from None
         with contextlib.suppress(Exception):
             self.dashboard = self.client.dashboard_link
         return self
@@ -360,17 +400,25 @@ class DaskWorkers:
             order.append(p)
         futures = {}
         for rank, p in enumerate(order):
-            f = self.client.submit(measure_point, p.spec.to_dict(), source, pure=False,
-                                   priority=len(order) - rank, key=f"isoscope-point-{p.key[:20]}"
-                                   f"-{os.getpid()}-{time.monotonic_ns()}")
+            f = self.client.submit(
+                measure_point,
+                p.spec.to_dict(),
+                source,
+                pure=False,
+                priority=len(order) - rank,
+                key=f"isoscope-point-{p.key[:20]}-{os.getpid()}-{time.monotonic_ns()}",
+            )
             futures[f] = p
         for f in distributed.as_completed(futures):
             p = futures.pop(f)
             try:
                 outcome = f.result()
             except Exception as e:  # the task could not run (a worker died repeatedly, ...)
-                outcome = {"status": "failed", "seconds": None,
-                           "error": f"the cluster could not run this point: {type(e).__name__}: {e}"}
+                outcome = {
+                    "status": "failed",
+                    "seconds": None,
+                    "error": f"the cluster could not run this point: {type(e).__name__}: {e}",
+                }
             yield Finished(p, outcome, "dask")
 
 
@@ -379,4 +427,3 @@ def executor(workers: int, scheduler: str | None) -> Any:
     if scheduler is None:
         return LocalWorkers(workers)
     return DaskWorkers(scheduler, workers)
-

@@ -37,8 +37,16 @@ from typing import Any
 from isoscope.errors import InputError, did_you_mean
 from isoscope.spec import AnalysisSpec, InitSpec, NetworkSpec, Spec, parse_spec
 
-__all__ = ["Grid", "Point", "load_grid", "parse_grid", "grid_keys", "point_key", "flat_spec",
-           "MAX_POINTS"]
+__all__ = [
+    "Grid",
+    "Point",
+    "load_grid",
+    "parse_grid",
+    "grid_keys",
+    "point_key",
+    "flat_spec",
+    "MAX_POINTS",
+]
 
 MAX_POINTS = 100_000
 
@@ -92,15 +100,25 @@ class Point:
         """What a compiled function and a unit draw depend on: points of one shape share
         both (family, width, depth, activation, leaky slope, weights, dtype, draws, seed)."""
         n, a = self.spec.network, self.spec.analysis
-        return (n.family, n.width, n.depth, n.activation,
-                n.leaky_slope if n.activation == "leaky-relu" else None,
-                self.spec.init.weights, a.dtype, a.inputs, a.seed, a.input)
+        return (
+            n.family,
+            n.width,
+            n.depth,
+            n.activation,
+            n.leaky_slope if n.activation == "leaky-relu" else None,
+            self.spec.init.weights,
+            a.dtype,
+            a.inputs,
+            a.seed,
+            a.input,
+        )
 
     @property
     def cost(self) -> float:
         """Relative cost, the floating-point operations of the measurement
         (:func:`isoscope.budget.estimate`), used to start the expensive points first."""
         from isoscope.budget import estimate
+
         return estimate(self.spec, rate=1.0).flops
 
 
@@ -153,32 +171,57 @@ def _check_key(source, table: str, key: str) -> None:
         return
     top = key.split(".")[0]
     hint = did_you_mean(key, allowed) or (
-        "name and description are labels and cannot vary" if top in ("name", "description")
-        else "write the key as section.key, e.g. \"init.sigma_w\"")
-    raise _refuse(source, f"{table}.{key}", f"unknown grid key {key!r}",
-                  f"a dotted spec key: one of {', '.join(allowed)}", hint)
+        "name and description are labels and cannot vary"
+        if top in ("name", "description")
+        else 'write the key as section.key, e.g. "init.sigma_w"'
+    )
+    raise _refuse(
+        source,
+        f"{table}.{key}",
+        f"unknown grid key {key!r}",
+        f"a dotted spec key: one of {', '.join(allowed)}",
+        hint,
+    )
 
 
 def _check_values(source, table: str, key: str, values) -> list:
     where = f"{table}.{key}"
     if not isinstance(values, list):
-        raise _refuse(source, where, f"value {values!r} is not a list",
-                      "a list of values, e.g. [1.0, 1.2]",
-                      f"write {key!r} = [{values!r}] to hold it at one value, or set it in the "
-                      "spec's own section")
+        raise _refuse(
+            source,
+            where,
+            f"value {values!r} is not a list",
+            "a list of values, e.g. [1.0, 1.2]",
+            f"write {key!r} = [{values!r}] to hold it at one value, or set it in the "
+            "spec's own section",
+        )
     if not values:
-        raise _refuse(source, where, "the list is empty", "at least one value",
-                      "an empty list would make the grid empty; drop the key instead")
+        raise _refuse(
+            source,
+            where,
+            "the list is empty",
+            "at least one value",
+            "an empty list would make the grid empty; drop the key instead",
+        )
     seen = []
     for v in values:
         if isinstance(v, (dict, list)):
-            raise _refuse(source, where, f"value {v!r} is a {type(v).__name__}",
-                          "plain values (numbers, strings)")
+            raise _refuse(
+                source,
+                where,
+                f"value {v!r} is a {type(v).__name__}",
+                "plain values (numbers, strings)",
+            )
         if isinstance(v, float) and not math.isfinite(v):
             raise _refuse(source, where, f"value {v!r} is not finite", "finite numbers")
         if any(type(v) is type(s) and v == s for s in seen):
-            raise _refuse(source, where, f"value {v!r} appears twice", "distinct values",
-                          "each value gives one point; remove the repeat")
+            raise _refuse(
+                source,
+                where,
+                f"value {v!r} appears twice",
+                "distinct values",
+                "each value gives one point; remove the repeat",
+            )
         seen.append(v)
     return values
 
@@ -189,8 +232,12 @@ def _zipped_groups(source, raw) -> tuple[dict[str, list], ...]:
     for i, g in enumerate(groups):
         table = "grid.zip" if not isinstance(raw, list) else f"grid.zip[{i}]"
         if not isinstance(g, dict) or not g:
-            raise _refuse(source, table, f"expected a table of keys and lists, received {g!r}",
-                          "[grid.zip] with two or more dotted keys, each a list of one length")
+            raise _refuse(
+                source,
+                table,
+                f"expected a table of keys and lists, received {g!r}",
+                "[grid.zip] with two or more dotted keys, each a list of one length",
+            )
         flat = _flatten(g)
         for k, v in flat.items():
             _check_key(source, table, k)
@@ -198,10 +245,14 @@ def _zipped_groups(source, raw) -> tuple[dict[str, list], ...]:
         lengths = {k: len(v) for k, v in flat.items()}
         if len(set(lengths.values())) > 1:
             listed = ", ".join(f"{k} has {n}" for k, n in lengths.items())
-            raise _refuse(source, table, f"the zipped lists differ in length ({listed})",
-                          "lists of one length (their i-th values form one point)",
-                          "make every list in the group as long as the others, or move a key "
-                          "to [grid] to vary it independently")
+            raise _refuse(
+                source,
+                table,
+                f"the zipped lists differ in length ({listed})",
+                "lists of one length (their i-th values form one point)",
+                "make every list in the group as long as the others, or move a key "
+                "to [grid] to vary it independently",
+            )
         out.append(flat)
     return tuple(out)
 
@@ -227,10 +278,13 @@ def parse_grid(data: dict[str, Any], source: str | None = None, text: str = "") 
     data = dict(data)
     raw = data.pop("grid", None)
     if not isinstance(raw, dict):
-        raise _refuse(source, "grid", "no [grid] table" if raw is None else
-                      f"grid is {raw!r}, not a table", "a [grid] table of dotted spec keys and "
-                      "lists, e.g. \"init.sigma_w\" = [1.0, 1.2]",
-                      "use `isoscope analyze` for a single design")
+        raise _refuse(
+            source,
+            "grid",
+            "no [grid] table" if raw is None else f"grid is {raw!r}, not a table",
+            'a [grid] table of dotted spec keys and lists, e.g. "init.sigma_w" = [1.0, 1.2]',
+            "use `isoscope analyze` for a single design",
+        )
     raw = dict(raw)
     zipped = _zipped_groups(source, raw.pop("zip")) if "zip" in raw else ()
     axes = _flatten(raw)
@@ -240,20 +294,36 @@ def parse_grid(data: dict[str, Any], source: str | None = None, text: str = "") 
     keys = list(axes) + [k for g in zipped for k in g]
     twice = sorted({k for k in keys if keys.count(k) > 1})
     if twice:
-        raise _refuse(source, f"grid.{twice[0]}", f"key {twice[0]!r} is varied more than once",
-                      "each key in [grid] or in one zipped group, once")
+        raise _refuse(
+            source,
+            f"grid.{twice[0]}",
+            f"key {twice[0]!r} is varied more than once",
+            "each key in [grid] or in one zipped group, once",
+        )
     if not keys:
-        raise _refuse(source, "grid", "the [grid] table varies no key",
-                      "at least one dotted key with a list of values")
-    count = math.prod(len(v) for v in axes.values()) * math.prod(len(next(iter(g.values())))
-                                                                  for g in zipped)
+        raise _refuse(
+            source,
+            "grid",
+            "the [grid] table varies no key",
+            "at least one dotted key with a list of values",
+        )
+    count = math.prod(len(v) for v in axes.values()) * math.prod(
+        len(next(iter(g.values()))) for g in zipped
+    )
     if count > MAX_POINTS:
-        raise _refuse(source, "grid", f"the grid has {count} points", f"at most {MAX_POINTS}",
-                      "split it into several grid files over the same store")
+        raise _refuse(
+            source,
+            "grid",
+            f"the grid has {count} points",
+            f"at most {MAX_POINTS}",
+            "split it into several grid files over the same store",
+        )
     base = parse_spec(data, source=source)
     factors = [[{k: v} for v in vals] for k, vals in axes.items()]
-    factors += [[{k: vals[i] for k, vals in g.items()} for i in range(len(next(iter(g.values()))))]
-                for g in zipped]
+    factors += [
+        [{k: vals[i] for k, vals in g.items()} for i in range(len(next(iter(g.values()))))]
+        for g in zipped
+    ]
     points = []
     for index, combo in enumerate(itertools.product(*factors)):
         given = {k: v for part in combo for k, v in part.items()}
@@ -264,17 +334,20 @@ def parse_grid(data: dict[str, Any], source: str | None = None, text: str = "") 
     seen: dict[str, Point] = {}
     for p in points:
         if p.key in seen:
-            raise _refuse(source, "grid", f"points {_label(seen[p.key].values)} and "
-                          f"{_label(p.values)} are the same design",
-                          "values that give distinct designs",
-                          "a key that does not apply (alpha of a plain stack) or two values "
-                          "that resolve alike (1 and 1.0) give the same point")
+            raise _refuse(
+                source,
+                "grid",
+                f"points {_label(seen[p.key].values)} and {_label(p.values)} are the same design",
+                "values that give distinct designs",
+                "a key that does not apply (alpha of a plain stack) or two values "
+                "that resolve alike (1 and 1.0) give the same point",
+            )
         seen[p.key] = p
     return Grid(base, {k: list(v) for k, v in axes.items()}, zipped, tuple(points), source, text)
 
 
 def _point_spec(base: Spec, data: dict, given: dict[str, Any], source) -> Spec:
-    point = json.loads(json.dumps({k: v for k, v in data.items()}))   # a deep copy
+    point = json.loads(json.dumps({k: v for k, v in data.items()}))  # a deep copy
     for k, v in given.items():
         _set(point, k, v)
     label = _label(given)
@@ -283,8 +356,13 @@ def _point_spec(base: Spec, data: dict, given: dict[str, Any], source) -> Spec:
         return parse_spec(point, source=source)
     except InputError as e:
         key = e.key if e.key in given else next(iter(given))
-        raise InputError(f"grid point {label}: {e.message}", expected=e.expected, hint=e.hint,
-                         file=source, key=f"grid.{key}") from None
+        raise InputError(
+            f"grid point {label}: {e.message}",
+            expected=e.expected,
+            hint=e.hint,
+            file=source,
+            key=f"grid.{key}",
+        ) from None
 
 
 def load_grid(path: str | Path) -> Grid:
@@ -298,19 +376,29 @@ def load_grid(path: str | Path) -> Grid:
     if path.is_dir():
         raise InputError(f"grid path {str(path)!r} is a folder", expected="a .toml grid file")
     if not path.is_file():
-        raise InputError(f"grid file {str(path)!r} does not exist", expected="a .toml grid file",
-                         hint="a grid file is a spec with a [grid] table (see docs/sweep.md)")
+        raise InputError(
+            f"grid file {str(path)!r} does not exist",
+            expected="a .toml grid file",
+            hint="a grid file is a spec with a [grid] table (see docs/sweep.md)",
+        )
     try:
         text = path.read_text(encoding="utf-8")
     except UnicodeDecodeError:
-        raise InputError("the file is not UTF-8 text", expected="a TOML text file",
-                         file=str(path)) from None
+        raise InputError(
+            "the file is not UTF-8 text", expected="a TOML text file", file=str(path)
+        ) from None
     except OSError as e:
-        raise InputError(f"grid file {str(path)!r} cannot be read ({e.strerror or e})",
-                         expected="a readable .toml file") from None
+        raise InputError(
+            f"grid file {str(path)!r} cannot be read ({e.strerror or e})",
+            expected="a readable .toml file",
+        ) from None
     try:
         data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as e:
-        raise InputError(f"malformed TOML ({e})", expected="a TOML document", file=str(path),
-                         hint="fix the syntax at the line and column named") from None
+        raise InputError(
+            f"malformed TOML ({e})",
+            expected="a TOML document",
+            file=str(path),
+            hint="fix the syntax at the line and column named",
+        ) from None
     return parse_grid(data, source=str(path), text=text)

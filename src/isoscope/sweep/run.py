@@ -53,8 +53,11 @@ class SweepSummary:
 def plan(grid: Grid, statuses: dict[str, str], retry_failed: bool = False) -> list:
     """The grid's points that still need measuring: not in the store, or failed there when
     ``retry_failed``."""
-    return [p for p in grid.points
-            if p.key not in statuses or (retry_failed and statuses[p.key] == "failed")]
+    return [
+        p
+        for p in grid.points
+        if p.key not in statuses or (retry_failed and statuses[p.key] == "failed")
+    ]
 
 
 def _check_memory(points, concurrent: int) -> None:
@@ -72,13 +75,19 @@ def _check_memory(points, concurrent: int) -> None:
             f"({worst.spec.name}) need about {budget._size(need)} of memory, but "
             f"{budget._size(avail)} is available",
             expected="an estimated peak below the available memory",
-            hint="use fewer --workers, or smaller widths and depths in the grid")
+            hint="use fewer --workers, or smaller widths and depths in the grid",
+        )
 
 
-def run_sweep(grid: Grid, store_path: str | Path, workers: int | None = None,
-              scheduler: str | None = None, retry_failed: bool = False,
-              on_point: Callable[[Finished, int, int], None] | None = None,
-              on_start: Callable[[str, int, int], None] | None = None) -> SweepSummary:
+def run_sweep(
+    grid: Grid,
+    store_path: str | Path,
+    workers: int | None = None,
+    scheduler: str | None = None,
+    retry_failed: bool = False,
+    on_point: Callable[[Finished, int, int], None] | None = None,
+    on_start: Callable[[str, int, int], None] | None = None,
+) -> SweepSummary:
     """Measure every point of ``grid`` not yet in the store at ``store_path``.
 
     Args:
@@ -100,12 +109,17 @@ def run_sweep(grid: Grid, store_path: str | Path, workers: int | None = None,
     cores = available_cores()
     workers = cores if workers is None else workers
     if isinstance(workers, bool) or not isinstance(workers, int) or workers < 1:
-        raise InputError(f"--workers {workers!r} is not a positive whole number",
-                         expected="an integer >= 1 (default: the cores)", key="--workers")
+        raise InputError(
+            f"--workers {workers!r} is not a positive whole number",
+            expected="an integer >= 1 (default: the cores)",
+            key="--workers",
+        )
     warnings = []
     if scheduler in (None, "local") and workers > cores:
-        warnings.append(f"{workers} workers on {cores} cores: they share the cores, so each runs "
-                        f"slower than alone (use --workers {cores} or fewer)")
+        warnings.append(
+            f"{workers} workers on {cores} cores: they share the cores, so each runs "
+            f"slower than alone (use --workers {cores} or fewer)"
+        )
     store_path = Path(store_path)
     with lock(store_path):
         statuses = stored_statuses(store_path)
@@ -115,8 +129,13 @@ def run_sweep(grid: Grid, store_path: str | Path, workers: int | None = None,
             _check_memory(todo, min(workers, max(len(todo), 1)))
         computed = failed = 0
         failures = []
-        pool = (None if not todo else LocalWorkers(min(workers, len(todo))) if scheduler is None
-                else DaskWorkers(scheduler, workers))
+        pool = (
+            None
+            if not todo
+            else LocalWorkers(min(workers, len(todo)))
+            if scheduler is None
+            else DaskWorkers(scheduler, workers)
+        )
         description = "nothing to run" if pool is None else pool.describe()
         with pool if pool is not None else contextlib.nullcontext():
             if pool is not None and getattr(pool, "dashboard", None):
@@ -134,14 +153,23 @@ def run_sweep(grid: Grid, store_path: str | Path, workers: int | None = None,
                                 computed += 1
                             else:
                                 failed += 1
-                                failures.append((finished.point.spec.name,
-                                                 finished.outcome.get("error") or ""))
+                                failures.append(
+                                    (finished.point.spec.name, finished.outcome.get("error") or "")
+                                )
                             if on_point is not None:
                                 on_point(finished, done, len(todo))
                     status = "finished"
                 finally:
                     store.end_run(run, computed, skipped, failed, status)
                 stored = len(store.statuses())
-    return SweepSummary(len(grid.points), computed, skipped, failed, stored, description,
-                        time.perf_counter() - t0, tuple(failures), tuple(warnings))
-
+    return SweepSummary(
+        len(grid.points),
+        computed,
+        skipped,
+        failed,
+        stored,
+        description,
+        time.perf_counter() - t0,
+        tuple(failures),
+        tuple(warnings),
+    )

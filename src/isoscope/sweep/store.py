@@ -46,12 +46,19 @@ from typing import Any
 
 from isoscope.errors import InputError
 
-__all__ = ["SCHEMA", "Store", "StoredPoint", "check_store", "flat_numbers", "lock",
-           "stored_statuses"]
+__all__ = [
+    "SCHEMA",
+    "Store",
+    "StoredPoint",
+    "check_store",
+    "flat_numbers",
+    "lock",
+    "stored_statuses",
+]
 
 SCHEMA = "isoscope.sweep/1"
 _HEADER = b"SQLite format 3\x00"
-_INT64 = 2 ** 63
+_INT64 = 2**63
 
 _TABLES = """
 CREATE TABLE meta (key TEXT PRIMARY KEY, value TEXT NOT NULL);
@@ -132,8 +139,12 @@ def flat_numbers(result: dict[str, Any], prefix: str = "") -> dict[str, Any]:
 
 
 def _refuse(path: Path, message: str, hint: str) -> InputError:
-    return InputError(f"store {str(path)!r} {message}", expected=f"an isoscope sweep store "
-                      f"(schema {SCHEMA}) or a path where a new one can be created", hint=hint)
+    return InputError(
+        f"store {str(path)!r} {message}",
+        expected=f"an isoscope sweep store "
+        f"(schema {SCHEMA}) or a path where a new one can be created",
+        hint=hint,
+    )
 
 
 def check_store(path: str | Path) -> bool:
@@ -149,38 +160,58 @@ def check_store(path: str | Path) -> bool:
         raise _refuse(path, "is a folder", "name a file, e.g. --store sweep.sqlite")
     if not path.exists():
         if not path.parent.is_dir():
-            raise _refuse(path, f"is in {str(path.parent)!r}, which does not exist",
-                          "create the folder first or choose another path")
+            raise _refuse(
+                path,
+                f"is in {str(path.parent)!r}, which does not exist",
+                "create the folder first or choose another path",
+            )
         if not os.access(path.parent, os.W_OK | os.X_OK):
-            raise _refuse(path, f"cannot be created: {str(path.parent)!r} is not writable",
-                          "choose a folder you may write")
+            raise _refuse(
+                path,
+                f"cannot be created: {str(path.parent)!r} is not writable",
+                "choose a folder you may write",
+            )
         return False
     try:
         with open(path, "rb") as f:
             head = f.read(len(_HEADER))
     except OSError as e:
-        raise _refuse(path, f"cannot be read ({e.strerror or e})", "check its permissions") from None
+        raise _refuse(
+            path, f"cannot be read ({e.strerror or e})", "check its permissions"
+        ) from None
     if head == b"":
         return False
     if head != _HEADER:
-        raise _refuse(path, "is not an SQLite database", "choose another --store path; isoscope "
-                      "never writes into a file it did not create")
+        raise _refuse(
+            path,
+            "is not an SQLite database",
+            "choose another --store path; isoscope never writes into a file it did not create",
+        )
     try:
         con = sqlite3.connect(f"{path.resolve().as_uri()}?mode=ro", uri=True)
         try:
-            rows = dict(con.execute("SELECT key, value FROM meta WHERE key IN "
-                                    "('schema', 'isoscope')").fetchall())
+            rows = dict(
+                con.execute(
+                    "SELECT key, value FROM meta WHERE key IN ('schema', 'isoscope')"
+                ).fetchall()
+            )
         finally:
             con.close()
     except sqlite3.DatabaseError as e:
-        raise _refuse(path, f"is an SQLite database but not an isoscope sweep store ({e})",
-                      "choose another --store path") from None
+        raise _refuse(
+            path,
+            f"is an SQLite database but not an isoscope sweep store ({e})",
+            "choose another --store path",
+        ) from None
     schema = rows.get("schema")
     if schema != SCHEMA:
         written = f" by isoscope {rows['isoscope']}" if "isoscope" in rows else ""
-        raise _refuse(path, f"was written with schema {schema!r}{written}; this isoscope reads "
-                      f"{SCHEMA!r} only", "use the isoscope version that wrote it, or a new "
-                      "--store path (the store was not changed)")
+        raise _refuse(
+            path,
+            f"was written with schema {schema!r}{written}; this isoscope reads {SCHEMA!r} only",
+            "use the isoscope version that wrote it, or a new "
+            "--store path (the store was not changed)",
+        )
     return True
 
 
@@ -194,9 +225,15 @@ def _create(path: Path) -> None:
         con = sqlite3.connect(tmp)
         try:
             con.executescript(_TABLES)
-            con.executemany("INSERT INTO meta VALUES (?, ?)", [
-                ("schema", SCHEMA), ("created", _now()), ("isoscope", __version__),
-                ("glossary", json.dumps(GLOSSARY))])
+            con.executemany(
+                "INSERT INTO meta VALUES (?, ?)",
+                [
+                    ("schema", SCHEMA),
+                    ("created", _now()),
+                    ("isoscope", __version__),
+                    ("glossary", json.dumps(GLOSSARY)),
+                ],
+            )
             con.commit()
             con.execute("PRAGMA journal_mode = WAL")
         finally:
@@ -226,7 +263,7 @@ class Store:
     # ---------------------------------------------------------------- opening
     @classmethod
     @contextlib.contextmanager
-    def writer(cls, path: str | Path) -> Iterator["Store"]:
+    def writer(cls, path: str | Path) -> Iterator[Store]:
         """Open the store at ``path`` for writing, creating it if absent.  The caller holds
         :func:`lock` on the path (one sweep at a time).
 
@@ -247,7 +284,7 @@ class Store:
 
     @classmethod
     @contextlib.contextmanager
-    def reader(cls, path: str | Path) -> Iterator["Store"]:
+    def reader(cls, path: str | Path) -> Iterator[Store]:
         """Open an existing store read-only (never waits for a running sweep).
 
         Raises:
@@ -255,8 +292,11 @@ class Store:
         """
         path = Path(path)
         if not check_store(path):
-            raise _refuse(path, "does not exist or is empty", "give the --store file of a "
-                          "sweep (`isoscope sweep GRID.toml --store FILE.sqlite`)")
+            raise _refuse(
+                path,
+                "does not exist or is empty",
+                "give the --store file of a sweep (`isoscope sweep GRID.toml --store FILE.sqlite`)",
+            )
         con = sqlite3.connect(f"{path.resolve().as_uri()}?mode=ro", uri=True)
         try:
             yield cls(path, con)
@@ -272,15 +312,19 @@ class Store:
             self.con.execute("UPDATE runs SET status = 'killed' WHERE status = 'running'")
             cur = self.con.execute(
                 "INSERT INTO runs (started, grid_file, grid_text, executor, status) "
-                "VALUES (?, ?, ?, ?, 'running')", (_now(), grid_file, grid_text, executor))
+                "VALUES (?, ?, ?, ?, 'running')",
+                (_now(), grid_file, grid_text, executor),
+            )
         return int(cur.lastrowid)
 
     def end_run(self, run: int, computed: int, skipped: int, failed: int, status: str) -> None:
         """Record how a sweep ended (``finished`` or ``interrupted``) and its counts."""
         with self._transaction():
-            self.con.execute("UPDATE runs SET finished = ?, computed = ?, skipped = ?, failed = ?, "
-                             "status = ? WHERE id = ?",
-                             (_now(), computed, skipped, failed, status, run))
+            self.con.execute(
+                "UPDATE runs SET finished = ?, computed = ?, skipped = ?, failed = ?, "
+                "status = ? WHERE id = ?",
+                (_now(), computed, skipped, failed, status, run),
+            )
 
     # ---------------------------------------------------------------- points
     def statuses(self) -> dict[str, str]:
@@ -296,8 +340,9 @@ class Store:
         result = outcome.get("result")
         settings = flat_spec(point.spec)
         with self._transaction():
-            old = self.con.execute("SELECT id, status FROM points WHERE point_key = ?",
-                                   (point.key,)).fetchone()
+            old = self.con.execute(
+                "SELECT id, status FROM points WHERE point_key = ?", (point.key,)
+            ).fetchone()
             if old is not None:
                 if old[1] == "done":
                     return
@@ -305,18 +350,31 @@ class Store:
             cur = self.con.execute(
                 "INSERT INTO points (point_key, name, status, error, seed, point_values, spec, "
                 "versions, result, seconds, run_id, finished) VALUES (?,?,?,?,?,?,?,?,?,?,?,?)",
-                (point.key, point.spec.name, outcome["status"], outcome.get("error"),
-                 str(point.spec.analysis.seed), json.dumps(point.values),
-                 json.dumps(point.spec.to_dict()),
-                 None if result is None else json.dumps(result.get("environment")),
-                 None if result is None else json.dumps(result, allow_nan=False),
-                 outcome.get("seconds"), run, _now()))
+                (
+                    point.key,
+                    point.spec.name,
+                    outcome["status"],
+                    outcome.get("error"),
+                    str(point.spec.analysis.seed),
+                    json.dumps(point.values),
+                    json.dumps(point.spec.to_dict()),
+                    None if result is None else json.dumps(result.get("environment")),
+                    None if result is None else json.dumps(result, allow_nan=False),
+                    outcome.get("seconds"),
+                    run,
+                    _now(),
+                ),
+            )
             pid = cur.lastrowid
-            self.con.executemany("INSERT INTO settings VALUES (?, ?, ?)",
-                                 [(pid, k, _sql(v)) for k, v in settings.items()])
+            self.con.executemany(
+                "INSERT INTO settings VALUES (?, ?, ?)",
+                [(pid, k, _sql(v)) for k, v in settings.items()],
+            )
             if result is not None:
-                self.con.executemany("INSERT INTO numbers VALUES (?, ?, ?)",
-                                     [(pid, k, _sql(v)) for k, v in flat_numbers(result).items()])
+                self.con.executemany(
+                    "INSERT INTO numbers VALUES (?, ?, ?)",
+                    [(pid, k, _sql(v)) for k, v in flat_numbers(result).items()],
+                )
 
     def points(self) -> list[StoredPoint]:
         """Every stored point with its settings and numbers, in the order they were stored."""
@@ -326,11 +384,23 @@ class Store:
         numbers: dict[int, dict[str, Any]] = {}
         for pid, k, v in self.con.execute("SELECT point_id, name, value FROM numbers"):
             numbers.setdefault(pid, {})[k] = v
-        rows = self.con.execute("SELECT id, point_key, name, status, error, point_values, seconds "
-                                "FROM points ORDER BY id").fetchall()
-        return [StoredPoint(key, name, status, error, settings.get(pid, {}), json.loads(values),
-                            numbers.get(pid, {}), seconds)
-                for pid, key, name, status, error, values, seconds in rows]
+        rows = self.con.execute(
+            "SELECT id, point_key, name, status, error, point_values, seconds "
+            "FROM points ORDER BY id"
+        ).fetchall()
+        return [
+            StoredPoint(
+                key,
+                name,
+                status,
+                error,
+                settings.get(pid, {}),
+                json.loads(values),
+                numbers.get(pid, {}),
+                seconds,
+            )
+            for pid, key, name, status, error, values, seconds in rows
+        ]
 
     def result(self, key: str) -> dict[str, Any] | None:
         """The full ``result.json`` of a stored point (without the glossary), or ``None``."""
@@ -343,8 +413,10 @@ class Store:
 
     def runs(self) -> list[dict[str, Any]]:
         """Every recorded sweep of this store, oldest first."""
-        cur = self.con.execute("SELECT id, started, finished, grid_file, executor, computed, "
-                               "skipped, failed, status FROM runs ORDER BY id")
+        cur = self.con.execute(
+            "SELECT id, started, finished, grid_file, executor, computed, "
+            "skipped, failed, status FROM runs ORDER BY id"
+        )
         names = [d[0] for d in cur.description]
         return [dict(zip(names, row)) for row in cur.fetchall()]
 
@@ -371,17 +443,22 @@ def lock(path: str | Path) -> Iterator[None]:
         try:
             fd = os.open(lock, os.O_RDWR | os.O_CREAT, 0o644)
         except OSError as e:
-            raise _refuse(path, f"cannot be locked ({lock}: {e.strerror or e})",
-                          "choose a folder you may write") from None
+            raise _refuse(
+                path,
+                f"cannot be locked ({lock}: {e.strerror or e})",
+                "choose a folder you may write",
+            ) from None
         try:
             fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
         except BlockingIOError:
             holder = os.pread(fd, 64, 0).decode("ascii", "replace").strip() or "another process"
             os.close(fd)
-            raise InputError(f"store {str(path)!r} is being written by another sweep ({holder})",
-                             expected="one sweep at a time per store",
-                             hint="wait for it to finish, or sweep into another --store; "
-                                  "`isoscope show` can read the store meanwhile") from None
+            raise InputError(
+                f"store {str(path)!r} is being written by another sweep ({holder})",
+                expected="one sweep at a time per store",
+                hint="wait for it to finish, or sweep into another --store; "
+                "`isoscope show` can read the store meanwhile",
+            ) from None
         try:
             same = os.stat(lock).st_ino == os.fstat(fd).st_ino
         except FileNotFoundError:

@@ -31,21 +31,49 @@ import numpy as np
 
 from isoscope.errors import InputError, TheoryError
 
-__all__ = ["SHOW_SCHEMA", "DEFAULT_METRIC", "PHASE_METRICS", "MAX_FACETS", "MAX_LINES",
-           "SIGMA_W", "SIGMA_B", "DEPTH", "Table", "Facet", "Matrix", "Curve", "CriticalCurve",
-           "RidgeRow", "varied_keys", "setting_keys", "metric_names", "check_key", "check_metric",
-           "select", "default_axes", "points_table", "metric_matrix", "metric_curves",
-           "critical_curve", "ridge", "best_point", "View", "build_view", "csv_table", "show_dict"]
+__all__ = [
+    "SHOW_SCHEMA",
+    "DEFAULT_METRIC",
+    "PHASE_METRICS",
+    "MAX_FACETS",
+    "MAX_LINES",
+    "SIGMA_W",
+    "SIGMA_B",
+    "DEPTH",
+    "Table",
+    "Facet",
+    "Matrix",
+    "Curve",
+    "CriticalCurve",
+    "RidgeRow",
+    "varied_keys",
+    "setting_keys",
+    "metric_names",
+    "check_key",
+    "check_metric",
+    "select",
+    "default_axes",
+    "points_table",
+    "metric_matrix",
+    "metric_curves",
+    "critical_curve",
+    "ridge",
+    "best_point",
+    "View",
+    "build_view",
+    "csv_table",
+    "show_dict",
+]
 
 SHOW_SCHEMA = "isoscope.show/1"
 DEFAULT_METRIC = "score.isometry"
 PHASE_METRICS = ("score.isometry", "score.log10_gain", "score.log_s_std")
-MAX_FACETS = 6      # rows of a phase diagram before it stops being readable (convention)
-MAX_LINES = 12      # lines on one curve figure (convention)
+MAX_FACETS = 6  # rows of a phase diagram before it stops being readable (convention)
+MAX_LINES = 12  # lines on one curve figure (convention)
 SIGMA_W, SIGMA_B, DEPTH = "init.sigma_w", "init.sigma_b", "network.depth"
-CRITICAL_SAMPLES = 25   # sigma_b values at which the critical line is solved
+CRITICAL_SAMPLES = 25  # sigma_b values at which the critical line is solved
 
-_LABELS = ("name", "description")   # settings that label a point without changing a number
+_LABELS = ("name", "description")  # settings that label a point without changing a number
 
 
 class Table(NamedTuple):
@@ -124,8 +152,11 @@ def setting_keys(points) -> list[str]:
 def varied_keys(points) -> list[str]:
     """The settings whose values differ across ``points`` (labels ``name`` and ``description``
     left out), grid keys first in the order the grid gave them, then the rest sorted."""
-    distinct = {k for k in setting_keys(points) if k not in _LABELS
-                and len({repr(p.settings.get(k)) for p in points}) > 1}
+    distinct = {
+        k
+        for k in setting_keys(points)
+        if k not in _LABELS and len({repr(p.settings.get(k)) for p in points}) > 1
+    }
     first = [k for p in points for k in p.values if k in distinct]
     ordered = list(dict.fromkeys(first))
     return ordered + sorted(distinct - set(ordered))
@@ -149,9 +180,11 @@ def check_key(points, key: str, flag: str) -> str:
     """
     keys = setting_keys(points)
     if key not in keys:
-        raise InputError(f"{flag} {key!r} is not a setting of the stored points",
-                         expected=f"a dotted spec key ({_nearest(key, keys)})",
-                         hint="the varied ones are " + (", ".join(varied_keys(points)) or "none"))
+        raise InputError(
+            f"{flag} {key!r} is not a setting of the stored points",
+            expected=f"a dotted spec key ({_nearest(key, keys)})",
+            hint="the varied ones are " + (", ".join(varied_keys(points)) or "none"),
+        )
     return key
 
 
@@ -163,25 +196,29 @@ def check_metric(points, metric: str, numeric: bool = True) -> str:
         saying that the metric is text (``score.verdict``) where a number is needed.
     """
     names = metric_names(points)
-    if names and metric not in names:   # no done point at all: every cell is empty, not an error
-        raise InputError(f"--metric {metric!r} is not stored",
-                         expected=f"a number name of result.json ({_nearest(metric, names)})",
-                         hint="e.g. score.isometry, score.log10_gain, score.log_s_std, "
-                              "measured.log_s.std, agreement.ks")
+    if names and metric not in names:  # no done point at all: every cell is empty, not an error
+        raise InputError(
+            f"--metric {metric!r} is not stored",
+            expected=f"a number name of result.json ({_nearest(metric, names)})",
+            hint="e.g. score.isometry, score.log10_gain, score.log_s_std, "
+            "measured.log_s.std, agreement.ks",
+        )
     if numeric:
         values = [p.numbers.get(metric) for p in points]
         if any(isinstance(v, str) for v in values):
-            raise InputError(f"--metric {metric!r} is text (e.g. {next(v for v in values if isinstance(v, str))!r})",
-                             expected="a numeric metric for a matrix or a curve",
-                             hint="the points table shows score.verdict in every row; choose a number "
-                                  "for the matrix, e.g. score.isometry")
+            raise InputError(
+                f"--metric {metric!r} is text (e.g. {next(v for v in values if isinstance(v, str))!r})",
+                expected="a numeric metric for a matrix or a curve",
+                hint="the points table shows score.verdict in every row; choose a number "
+                "for the matrix, e.g. score.isometry",
+            )
     return metric
 
 
 def _parse_like(raw: str, stored: Any) -> Any:
     """``raw`` read as the type of ``stored``: int, float or text (booleans are stored as
     0/1, so ``true``/``false`` read as 1/0 against an integer)."""
-    if isinstance(stored, int):   # bool included
+    if isinstance(stored, int):  # bool included
         low = raw.strip().lower()
         if low in ("true", "false"):
             return int(low == "true")
@@ -212,15 +249,20 @@ def select(points, where: Sequence[str]) -> list:
         key, eq, raw = term.partition("=")
         key = key.strip()
         if not eq or not key:
-            raise InputError(f"--where {term!r} is not KEY=VALUE",
-                             expected="a dotted spec key, '=', a value (e.g. network.depth=16)")
+            raise InputError(
+                f"--where {term!r} is not KEY=VALUE",
+                expected="a dotted spec key, '=', a value (e.g. network.depth=16)",
+            )
         check_key(points, key, "--where")
-        kept = [p for p in shown if _parse_like(raw.strip(), p.settings.get(key)) == p.settings.get(key)]
+        kept = [
+            p for p in shown if _parse_like(raw.strip(), p.settings.get(key)) == p.settings.get(key)
+        ]
         if not kept:
             values = sorted({p.settings.get(key) for p in shown}, key=_order)
-            raise InputError(f"--where {term!r} matches none of the {len(shown)} points",
-                             expected=f"one of the stored values of {key}: "
-                                      + ", ".join(map(str, values)))
+            raise InputError(
+                f"--where {term!r} matches none of the {len(shown)} points",
+                expected=f"one of the stored values of {key}: " + ", ".join(map(str, values)),
+            )
         shown = kept
     return shown
 
@@ -253,8 +295,16 @@ def points_table(points, metrics: Sequence[str]) -> Table:
     (``None`` where a point has no such number)."""
     varied = varied_keys(points)
     cols = ("name", "status", "error", *varied, *metrics)
-    rows = tuple((p.name, p.status, p.error, *(p.settings.get(k) for k in varied),
-                  *(p.numbers.get(m) for m in metrics)) for p in points)
+    rows = tuple(
+        (
+            p.name,
+            p.status,
+            p.error,
+            *(p.settings.get(k) for k in varied),
+            *(p.numbers.get(m) for m in metrics),
+        )
+        for p in points
+    )
     return Table(cols, rows)
 
 
@@ -267,10 +317,12 @@ def _combinations(points, keys: Sequence[str]) -> list[dict[str, Any]]:
 def _too_many(what: str, count: int, limit: int, keys: Sequence[str], points) -> InputError:
     example = keys[0] if keys else "KEY"
     value = points[0].settings.get(example) if points else "VALUE"
-    return InputError(f"the {what} would need {count} {'rows' if what == 'phase diagram' else 'lines'}, "
-                      f"one per combination of {', '.join(keys)}",
-                      expected=f"at most {limit}",
-                      hint=f"fix some of them with --where, e.g. --where {example}={value}")
+    return InputError(
+        f"the {what} would need {count} {'rows' if what == 'phase diagram' else 'lines'}, "
+        f"one per combination of {', '.join(keys)}",
+        expected=f"at most {limit}",
+        hint=f"fix some of them with --where, e.g. --where {example}={value}",
+    )
 
 
 def metric_matrix(points, x: str, y: str, metric: str) -> Matrix:
@@ -318,9 +370,14 @@ def metric_curves(points, along: str, metric: str) -> list[Curve]:
         raise _too_many("curve figure", len(combos), MAX_LINES, others, points)
     curves = []
     for fixed in combos:
-        pts = sorted(((p.settings.get(along), _number(p.numbers.get(metric))) for p in points
-                      if all(p.settings.get(k) == v for k, v in fixed.items())),
-                     key=lambda t: _order(t[0]))
+        pts = sorted(
+            (
+                (p.settings.get(along), _number(p.numbers.get(metric)))
+                for p in points
+                if all(p.settings.get(k) == v for k, v in fixed.items())
+            ),
+            key=lambda t: _order(t[0]),
+        )
         pts = [(a, v) for a, v in pts if math.isfinite(v)]
         curves.append(Curve(fixed, np.array([a for a, _ in pts]), np.array([v for _, v in pts])))
     return curves
@@ -380,7 +437,7 @@ def ridge(matrix: Matrix, curve: CriticalCurve) -> list[RidgeRow]:
     sbs = matrix.y if sw_on_x else matrix.x
     out = []
     for facet in matrix.facets:
-        grid = facet.values if sw_on_x else facet.values.T   # rows: sigma_b, columns: sigma_w
+        grid = facet.values if sw_on_x else facet.values.T  # rows: sigma_b, columns: sigma_w
         for i, sb in enumerate(sbs):
             row = grid[i]
             if not np.isfinite(row).any() or not curve.sigma_b[0] <= sb <= curve.sigma_b[-1]:
@@ -433,8 +490,14 @@ class View(NamedTuple):
     notes: tuple[str, ...]
 
 
-def build_view(points, store: str, where: Sequence[str] = (), x: str | None = None,
-               y: str | None = None, metric: str = DEFAULT_METRIC) -> View:
+def build_view(
+    points,
+    store: str,
+    where: Sequence[str] = (),
+    x: str | None = None,
+    y: str | None = None,
+    metric: str = DEFAULT_METRIC,
+) -> View:
     """Select the points (:func:`select`), check the axes and the metric, and compute the
     matrices (``x`` and ``y``), or the curves along ``x`` (``x`` alone), with the depth curves
     and the critical line where they apply.  No axes: the table only.
@@ -444,8 +507,11 @@ def build_view(points, store: str, where: Sequence[str] = (), x: str | None = No
         nothing, ``y`` without ``x``, a text metric where a number is needed, too many facets.
     """
     if y is not None and x is None:
-        raise InputError(f"--y {y!r} without --x", expected="--x KEY, or --x and --y together",
-                         hint="give --x for the columns (a curve when --y is left out)")
+        raise InputError(
+            f"--y {y!r} without --x",
+            expected="--x KEY, or --x and --y together",
+            hint="give --x for the columns (a curve when --y is left out)",
+        )
     for key, flag in ((x, "--x"), (y, "--y")):
         if key is not None:
             check_key(points, key, flag)
@@ -456,8 +522,11 @@ def build_view(points, store: str, where: Sequence[str] = (), x: str | None = No
     rows: list[RidgeRow] = []
     notes: list[str] = []
     if x is not None and y is not None:
-        names = [m for m in dict.fromkeys((*PHASE_METRICS, metric)) if m == metric
-                 or m in metric_names(chosen)]
+        names = [
+            m
+            for m in dict.fromkeys((*PHASE_METRICS, metric))
+            if m == metric or m in metric_names(chosen)
+        ]
         matrices = {m: metric_matrix(chosen, x, y, m) for m in names}
         critical = critical_curve(chosen, x, y)
         if critical is not None and DEFAULT_METRIC in matrices:
@@ -469,8 +538,21 @@ def build_view(points, store: str, where: Sequence[str] = (), x: str | None = No
             depth = metric_curves(chosen, DEPTH, metric)
         except InputError as e:
             notes.append(f"depth curves left out: {e.message}; fix keys with --where to see them")
-    return View(store, tuple(where), chosen, varied, x, y, metric, matrices, curves, depth,
-                critical, rows, tuple(notes))
+    return View(
+        store,
+        tuple(where),
+        chosen,
+        varied,
+        x,
+        y,
+        metric,
+        matrices,
+        curves,
+        depth,
+        critical,
+        rows,
+        tuple(notes),
+    )
 
 
 def csv_table(points) -> Table:
@@ -487,8 +569,12 @@ def _values(a: np.ndarray) -> list:
 def _curves(curves: list[Curve] | None, along: str | None) -> dict[str, Any] | None:
     if curves is None:
         return None
-    return {"along": along, "lines": [{"fixed": c.fixed, "x": c.x.tolist(), "values": _values(c.values)}
-                                      for c in curves]}
+    return {
+        "along": along,
+        "lines": [
+            {"fixed": c.fixed, "x": c.x.tolist(), "values": _values(c.values)} for c in curves
+        ],
+    }
 
 
 def show_dict(view: View) -> dict[str, Any]:
@@ -500,22 +586,49 @@ def show_dict(view: View) -> dict[str, Any]:
     best = best_point(view.points)
     m = None if view.matrices is None else view.matrices[view.metric]
     return {
-        "schema": SHOW_SCHEMA, "store": view.store, "where": list(view.where),
-        "varied": view.varied, "axes": {"x": view.x, "y": view.y}, "metric": view.metric,
-        "points": [{"name": p.name, "status": p.status, "error": p.error, "key": p.key,
-                    "settings": {k: p.settings.get(k) for k in view.varied}, "numbers": p.numbers}
-                   for p in view.points],
-        "matrix": None if m is None else {
-            "x": list(m.x), "y": list(m.y),
-            "facets": [{"fixed": f.fixed, "values": [_values(r) for r in f.values]} for f in m.facets]},
+        "schema": SHOW_SCHEMA,
+        "store": view.store,
+        "where": list(view.where),
+        "varied": view.varied,
+        "axes": {"x": view.x, "y": view.y},
+        "metric": view.metric,
+        "points": [
+            {
+                "name": p.name,
+                "status": p.status,
+                "error": p.error,
+                "key": p.key,
+                "settings": {k: p.settings.get(k) for k in view.varied},
+                "numbers": p.numbers,
+            }
+            for p in view.points
+        ],
+        "matrix": None
+        if m is None
+        else {
+            "x": list(m.x),
+            "y": list(m.y),
+            "facets": [
+                {"fixed": f.fixed, "values": [_values(r) for r in f.values]} for f in m.facets
+            ],
+        },
         "curves": _curves(view.curves, view.x),
         "depth_curves": _curves(view.depth_curves, DEPTH),
-        "critical_line": None if view.critical is None else {
-            "activation": view.critical.activation, "sigma_b": view.critical.sigma_b.tolist(),
-            "sigma_w": view.critical.sigma_w.tolist()},
+        "critical_line": None
+        if view.critical is None
+        else {
+            "activation": view.critical.activation,
+            "sigma_b": view.critical.sigma_b.tolist(),
+            "sigma_w": view.critical.sigma_w.tolist(),
+        },
         "ridge": [r._asdict() for r in view.ridge],
-        "best": None if best is None else {"name": best.name, "metric": DEFAULT_METRIC,
-                                           "value": best.numbers.get(DEFAULT_METRIC),
-                                           "settings": {k: best.settings.get(k) for k in view.varied}},
+        "best": None
+        if best is None
+        else {
+            "name": best.name,
+            "metric": DEFAULT_METRIC,
+            "value": best.numbers.get(DEFAULT_METRIC),
+            "settings": {k: best.settings.get(k) for k in view.varied},
+        },
         "notes": list(view.notes),
     }

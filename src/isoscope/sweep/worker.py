@@ -20,9 +20,10 @@ def _die_with_parent(parent: int) -> bool:
     if sys.platform.startswith("linux"):
         import ctypes
         import ctypes.util
+
         try:
             libc = ctypes.CDLL(ctypes.util.find_library("c") or "libc.so.6", use_errno=True)
-            libc.prctl(1, signal.SIGKILL, 0, 0, 0)   # PR_SET_PDEATHSIG = 1
+            libc.prctl(1, signal.SIGKILL, 0, 0, 0)  # PR_SET_PDEATHSIG = 1
         except (OSError, AttributeError):
             pass
     return os.getppid() == parent
@@ -33,7 +34,7 @@ def main(argv: list[str]) -> int:
     from multiprocessing.connection import Connection
 
     fd, parent = int(argv[0]), int(argv[1])
-    signal.signal(signal.SIGINT, signal.SIG_IGN)    # Ctrl-C is the coordinator's to handle
+    signal.signal(signal.SIGINT, signal.SIG_IGN)  # Ctrl-C is the coordinator's to handle
     conn = Connection(fd)
     if not _die_with_parent(parent):
         return 0

@@ -48,10 +48,21 @@ from isoscope.theory.mean_field import _SOFT_BREAKS
 from isoscope.theory.quadrature import normal_rule
 
 __all__ = [
-    "WEIGHT_KINDS", "DerivativeLaw", "derivative_law", "LambdaMoments", "moments_from_logs",
-    "plain_moments", "NARROW_SPREAD",
-    "Density", "plain_density", "residual_tau", "derivative_means", "residual_moments", "residual_edges",
-    "residual_density", "plain_limit_edges",
+    "WEIGHT_KINDS",
+    "DerivativeLaw",
+    "derivative_law",
+    "LambdaMoments",
+    "moments_from_logs",
+    "plain_moments",
+    "NARROW_SPREAD",
+    "Density",
+    "plain_density",
+    "residual_tau",
+    "derivative_means",
+    "residual_moments",
+    "residual_edges",
+    "residual_density",
+    "plain_limit_edges",
 ]
 
 WEIGHT_KINDS = ("gaussian", "orthogonal")
@@ -78,8 +89,8 @@ MAX_CHANGE = 1.0
 # Largest change of a logarithm in one step even on a pure power law (keeps exp() finite).
 MAX_LOG_STEP = 100.0
 _EPS = float(np.finfo(float).eps)
-_LOG_TINY = math.log(float(np.finfo(float).tiny))   # ln of the smallest normal float64, -708.4
-_LOG_HUGE = math.log(float(np.finfo(float).max))    # 709.78
+_LOG_TINY = math.log(float(np.finfo(float).tiny))  # ln of the smallest normal float64, -708.4
+_LOG_HUGE = math.log(float(np.finfo(float).max))  # 709.78
 # Near-isometric limit: when the predicted relative spread of lambda, r = sqrt(m2/m1^2 - 1), is
 # below NARROW_SPREAD, plain_density returns the semicircle of the predicted m1, m2 (see
 # _narrow_density).  Why 1e-3: the continuation stops at y = ETA lambda, which leaves a smeared
@@ -96,6 +107,7 @@ _LENGTH_SHARE = 0.1
 # ----------------------------------------------------------------------------------------
 # The law of d = phi'(h)^2
 # ----------------------------------------------------------------------------------------
+
 
 @dataclasses.dataclass(frozen=True, eq=False)
 class DerivativeLaw:
@@ -196,20 +208,22 @@ class DerivativeLaw:
         den = 1.0 / (xx + yy)
         xd = x * den
         both, ad = self._sums
-        re1, re2 = (xd @ both).T                 # Re sum a r, Re sum a d r
+        re1, re2 = (xd @ both).T  # Re sum a r, Re sum a d r
         im1, im2 = (den @ both).T
         im1, im2 = -w.imag * im1, -w.imag * im2  # Im sum a r, Im sum a d r
         m = re2 + 1j * im2
         g = re1 + 1j * im1
         one_m = self.zero_weight + w * g
         # r^2 = (x^2 - y^2) den^2 - 2 i x y den^2, each term formed per point before summing
-        re3 = ((xx - yy) * (den * den)) @ ad     # Re sum a d r^2
+        re3 = ((xx - yy) * (den * den)) @ ad  # Re sum a d r^2
         im3 = -2.0 * w.imag * ((xd * den) @ ad)  # Im sum a d r^2
         return m, one_m, -(re3 + 1j * im3)
+
 
 # ----------------------------------------------------------------------------------------
 # Argument checks (one place; every public function goes through these)
 # ----------------------------------------------------------------------------------------
+
 
 def _real(name: str, value, *, positive: bool, what: str) -> float:
     """A finite float, > 0 (positive) or >= 0, else TheoryError naming what it should be."""
@@ -218,8 +232,9 @@ def _real(name: str, value, *, positive: bool, what: str) -> float:
     except (TypeError, ValueError):
         raise TheoryError(f"{name} must be a number, received {value!r}; {what}") from None
     if not math.isfinite(x) or (x <= 0 if positive else x < 0):
-        raise TheoryError(f"{name} must be finite and {'> 0' if positive else '>= 0'}, "
-                          f"received {value!r}; {what}")
+        raise TheoryError(
+            f"{name} must be finite and {'> 0' if positive else '>= 0'}, received {value!r}; {what}"
+        )
     return x
 
 
@@ -231,13 +246,15 @@ def _integer(name: str, value, minimum: int, what: str) -> int:
 
 
 def _check_q(q) -> float:
-    return _real("variance q", q, positive=False,
-                 what="pass the mean-field fixed point q* (a variance)")
+    return _real(
+        "variance q", q, positive=False, what="pass the mean-field fixed point q* (a variance)"
+    )
 
 
 def _check_tau(tau) -> float:
-    return _real("tau", tau, positive=False,
-                 what="it is a sum of alpha^2 sigma_w^2 E[phi'^2] over layers")
+    return _real(
+        "tau", tau, positive=False, what="it is a sum of alpha^2 sigma_w^2 E[phi'^2] over layers"
+    )
 
 
 def _check_sigma(sigma_w) -> float:
@@ -251,13 +268,17 @@ def _check_points(points) -> int:
 def _check_stack(law, weights, sigma_w, depth) -> tuple[str, float, int]:
     """Checks shared by :func:`plain_moments` and :func:`plain_density`."""
     if not isinstance(law, DerivativeLaw):
-        raise TheoryError(f"law must be a DerivativeLaw (from derivative_law(activation, q)), "
-                          f"received {type(law).__name__}")
+        raise TheoryError(
+            f"law must be a DerivativeLaw (from derivative_law(activation, q)), "
+            f"received {type(law).__name__}"
+        )
     kind = str(weights).lower() if isinstance(weights, str) else weights
     if kind not in WEIGHT_KINDS:
-        raise TheoryError(f"unknown weights kind {weights!r}; expected one of "
-                          f"{', '.join(WEIGHT_KINDS)} (uniform weights: use 'gaussian', their "
-                          "spectrum has the same infinite-width limit)")
+        raise TheoryError(
+            f"unknown weights kind {weights!r}; expected one of "
+            f"{', '.join(WEIGHT_KINDS)} (uniform weights: use 'gaussian', their "
+            "spectrum has the same infinite-width limit)"
+        )
     sigma = _check_sigma(sigma_w)
     depth = _integer("depth", depth, 1, "the number of weight layers")
     return kind, sigma, depth
@@ -273,8 +294,9 @@ def _piece_probability(a: float, b: float, s: float) -> float:
     return 0.5 * (special.erf(b / r2) + special.erf(-a / r2))
 
 
-def _grouped(log_values: np.ndarray, weights: np.ndarray, exact: bool, name: str,
-             q: float) -> DerivativeLaw:
+def _grouped(
+    log_values: np.ndarray, weights: np.ndarray, exact: bool, name: str, q: float
+) -> DerivativeLaw:
     """Merge equal values of ``ln d`` (``-inf`` for d = 0) into one point each."""
     keep = weights > 0
     log_values, weights = log_values[keep], weights[keep]
@@ -327,9 +349,11 @@ def derivative_law(activation: str | Activation, q: float) -> DerivativeLaw:
     log_d = act.numpy_log_dphi_sq()
     if q == 0.0:
         if any(k == 0.0 for k in act.kinks):
-            raise TheoryError(f"q = 0 with {act.name}: phi' jumps at h = 0, so phi'(0)^2 is not "
-                              "defined; the law of phi'(h)^2 is that of any q > 0 when phi is "
-                              "positively homogeneous (linear, ReLU, leaky ReLU): take q = 1")
+            raise TheoryError(
+                f"q = 0 with {act.name}: phi' jumps at h = 0, so phi'(0)^2 is not "
+                "defined; the law of phi'(h)^2 is that of any q > 0 when phi is "
+                "positively homogeneous (linear, ReLU, leaky ReLU): take q = 1"
+            )
         return _grouped(log_d(np.zeros(1)), np.array([1.0]), True, act.name, q)
     s = math.sqrt(q)
     if act.derivative_values is not None:
@@ -344,8 +368,11 @@ def derivative_law(activation: str | Activation, q: float) -> DerivativeLaw:
                 mid = a + 1.0
             else:
                 mid = 0.5 * (a + b)
-            vals.append(2.0 * math.log(abs(float(dphi(np.array([mid]))[0])))
-                        if float(dphi(np.array([mid]))[0]) != 0.0 else -math.inf)
+            vals.append(
+                2.0 * math.log(abs(float(dphi(np.array([mid]))[0])))
+                if float(dphi(np.array([mid]))[0]) != 0.0
+                else -math.inf
+            )
             ws.append(_piece_probability(a, b, s))
         return _grouped(np.array(vals), np.array(ws), True, act.name, q)
     # the same breaks as the mean-field rules (kinks and the soft breaks in h), so that
@@ -358,6 +385,7 @@ def derivative_law(activation: str | Activation, q: float) -> DerivativeLaw:
 # ----------------------------------------------------------------------------------------
 # Moments by Lagrange inversion (truncated power series)
 # ----------------------------------------------------------------------------------------
+
 
 class LambdaMoments(NamedTuple):
     """Moments ``m_k = tr (J J^T)^k`` (N -> infinity), k = 1..4, and their natural logarithms.
@@ -391,8 +419,10 @@ class LambdaMoments(NamedTuple):
 def moments_from_logs(logs: Sequence[float]) -> LambdaMoments:
     """:class:`LambdaMoments` from ``ln m1 .. ln m4`` (``-inf`` for a zero moment)."""
     logs = [float(x) for x in logs]
-    vals = [0.0 if x == -math.inf else (math.exp(x) if _LOG_TINY <= x <= _LOG_HUGE else None)
-            for x in logs]
+    vals = [
+        0.0 if x == -math.inf else (math.exp(x) if _LOG_TINY <= x <= _LOG_HUGE else None)
+        for x in logs
+    ]
     return LambdaMoments(*vals, *logs)
 
 
@@ -408,7 +438,7 @@ def _sinv(a: np.ndarray) -> np.ndarray:
     out = np.zeros(_ORDER)
     out[0] = 1.0 / a[0]
     for n in range(1, _ORDER):
-        out[n] = -np.dot(a[1:n + 1], out[n - 1::-1][:n]) / a[0]
+        out[n] = -np.dot(a[1 : n + 1], out[n - 1 :: -1][:n]) / a[0]
     return out
 
 
@@ -417,7 +447,7 @@ def _slog(a: np.ndarray) -> np.ndarray:
     da = np.arange(1, _ORDER) * a[1:]
     ratio = _smul(np.append(da, 0.0), _sinv(a))
     out = np.zeros(_ORDER)
-    out[1:] = ratio[:_ORDER - 1] / np.arange(1, _ORDER)
+    out[1:] = ratio[: _ORDER - 1] / np.arange(1, _ORDER)
     return out
 
 
@@ -427,7 +457,7 @@ def _sexp(a: np.ndarray) -> np.ndarray:
     out[0] = 1.0
     da = np.arange(1, _ORDER) * a[1:]
     for n in range(1, _ORDER):
-        out[n] = np.dot(da[:n], out[n - 1::-1][:n]) / n
+        out[n] = np.dot(da[:n], out[n - 1 :: -1][:n]) / n
     return out
 
 
@@ -456,11 +486,12 @@ def _inverse_s_series(law: DerivativeLaw, kind: str) -> tuple[float, np.ndarray]
     # formed in logs (E[exp(k (ln d - ln mu1))]), so a tiny mu1 (saturated phi) cannot overflow
     log_mu1 = law.log_mu1
     psi = np.zeros(_ORDER)
-    psi[1:] = [float(np.dot(law.weights, np.exp(k * (law.log_values - log_mu1))))
-               for k in (1, 2, 3, 4)]
-    chi = _srevert(psi)                            # chi(z) = mu1 * psi^{-1}(z)
-    chi_over_z = chi[1:]                           # starts with 1
-    inv_s = _sinv(np.append(chi_over_z, 0.0))      # z/chi(z), normalised
+    psi[1:] = [
+        float(np.dot(law.weights, np.exp(k * (law.log_values - log_mu1)))) for k in (1, 2, 3, 4)
+    ]
+    chi = _srevert(psi)  # chi(z) = mu1 * psi^{-1}(z)
+    chi_over_z = chi[1:]  # starts with 1
+    inv_s = _sinv(np.append(chi_over_z, 0.0))  # z/chi(z), normalised
     inv_s = _smul(inv_s, _sinv(np.array([1.0, 1.0, 0, 0, 0])))  # / (1 + z)
     if kind == "gaussian":
         inv_s = _smul(inv_s, np.array([1.0, 1.0, 0, 0, 0]))
@@ -519,6 +550,7 @@ def plain_moments(law: DerivativeLaw, weights: str, sigma_w: float, depth: int) 
 # The continuation solver
 # ----------------------------------------------------------------------------------------
 
+
 def _log_upper(x: np.ndarray) -> np.ndarray:
     """log of a number in the closed upper half-plane (argument held in [0, pi])."""
     return np.log(np.abs(x)) + 1j * np.arctan2(np.maximum(x.imag, 0.0), x.real)
@@ -568,8 +600,9 @@ class _PlainProblem:
             f = log_z + (1 - L) * lm - l1m - L * (self.log_s2 + lw)
             df = (1 - L) * dm / m - dm / one_m - L / w
         # rounding floor of f: a sum of terms as large as L |log|
-        floor = _EPS * (np.abs(log_z) + L * (np.abs(lm) + np.abs(l1m) + np.abs(lw)
-                                            + abs(self.log_s2) + 1.0))
+        floor = _EPS * (
+            np.abs(log_z) + L * (np.abs(lm) + np.abs(l1m) + np.abs(lw) + abs(self.log_s2) + 1.0)
+        )
         return f, df, (m, one_m, dm, floor)
 
     @staticmethod
@@ -615,8 +648,9 @@ class _ExponentialProblem:
         lm, l1m = _log_lower(m), _log_lower(one_m)
         f = log_z + lm + self.a - self.c * m - l1m
         df = 1.0 / m - self.c - 1.0 / one_m
-        floor = _EPS * (np.abs(log_z) + np.abs(lm) + np.abs(l1m) + abs(self.a)
-                        + self.c * np.abs(m) + 1.0)
+        floor = _EPS * (
+            np.abs(log_z) + np.abs(lm) + np.abs(l1m) + abs(self.a) + self.c * np.abs(m) + 1.0
+        )
         return f, df, (m, one_m, floor)
 
     @staticmethod
@@ -660,16 +694,18 @@ def _newton(problem, u, log_z, max_iter=40, tol=1e-12, state=None):
             break
         step = -f[idx] / df[idx]
         change = np.max(np.abs(problem.relative_change(u[idx], step, _take(aux, idx))), axis=0)
-        small = ((change < tol[idx])
-                 | (np.abs(f[idx]) <= 4.0 * aux[-1][idx]))
+        small = (change < tol[idx]) | (np.abs(f[idx]) <= 4.0 * aux[-1][idx])
         t = np.ones(idx.size)
         pending = np.arange(idx.size)
         for _ in range(30):
             pi = idx[pending]
             trial = u[pi] + t[pending] * step[pending]
             ft, dft, auxt = problem.evaluate(trial, log_z[pi])
-            ok = problem.valid(trial) & np.isfinite(ft) & (
-                (np.abs(ft) <= (1.0 - 0.25 * t[pending]) * np.abs(f[pi])) | small[pending])
+            ok = (
+                problem.valid(trial)
+                & np.isfinite(ft)
+                & ((np.abs(ft) <= (1.0 - 0.25 * t[pending]) * np.abs(f[pi])) | small[pending])
+            )
             gi = pi[ok]
             u[gi], f[gi], df[gi] = trial[ok], ft[ok], dft[ok]
             for a, at in zip(aux, auxt):
@@ -684,8 +720,9 @@ def _newton(problem, u, log_z, max_iter=40, tol=1e-12, state=None):
     return u, (f, df, aux), done
 
 
-def _continue(problem, ell: np.ndarray, s_top: np.ndarray, eta: float = ETA,
-              max_rounds: int = 3000):
+def _continue(
+    problem, ell: np.ndarray, s_top: np.ndarray, eta: float = ETA, max_rounds: int = 3000
+):
     """Follow ``z = lambda + i y`` from ``y = e^{s_top}`` down to ``y = eta lambda``.
 
     Every point has its own step in ``ln y``: an Euler predictor applied to ``log u``, a Newton
@@ -708,7 +745,7 @@ def _continue(problem, ell: np.ndarray, s_top: np.ndarray, eta: float = ETA,
     u, (f, df, aux), ok = _newton(problem, problem.initial(log_z), log_z)
     failed = ~ok
     h = np.ones(n)
-    rate = None      # d(log quantities)/d(ln y) at the start of the last accepted step
+    rate = None  # d(log quantities)/d(ln y) at the start of the last accepted step
     for _ in range(max_rounds):
         idx = np.flatnonzero((s > s_end) & ~failed)
         if idx.size == 0:
@@ -719,8 +756,9 @@ def _continue(problem, ell: np.ndarray, s_top: np.ndarray, eta: float = ETA,
         du = -(lz_new - log_z[idx] + f[idx]) / df[idx]
         # changes of the logarithms of u, M, 1 + M, and of log z itself (which turns from
         # -1 per unit of ln y to 0 where y passes lambda)
-        inc = np.concatenate([problem.relative_change(u[idx], du, _take(aux, idx)),
-                              (lz_new - log_z[idx])[None]])
+        inc = np.concatenate(
+            [problem.relative_change(u[idx], du, _take(aux, idx)), (lz_new - log_z[idx])[None]]
+        )
         if rate is None:
             rate = np.zeros((inc.shape[0], n), dtype=complex)
         # The predictor is linear in log u, exact where u, M and 1 + M follow powers of z (far
@@ -729,8 +767,9 @@ def _continue(problem, ell: np.ndarray, s_top: np.ndarray, eta: float = ETA,
         dev = np.max(np.abs(inc - rate[:, idx] * hstep), axis=0)
         rel = np.maximum(dev, np.max(np.abs(inc[:-1]), axis=0) / MAX_LOG_STEP)
         big = ~(rel <= MAX_CHANGE)
-        h[idx[big]] *= np.maximum(0.7 * MAX_CHANGE / np.where(np.isfinite(rel[big]), rel[big], 1e300),
-                                  1e-3)
+        h[idx[big]] *= np.maximum(
+            0.7 * MAX_CHANGE / np.where(np.isfinite(rel[big]), rel[big], 1e300), 1e-3
+        )
         go = np.flatnonzero(~big)
         if go.size:
             gi = idx[go]
@@ -760,6 +799,7 @@ def _continue(problem, ell: np.ndarray, s_top: np.ndarray, eta: float = ETA,
 # ----------------------------------------------------------------------------------------
 # Densities: the result type, the grid, the plain-stack pieces
 # ----------------------------------------------------------------------------------------
+
 
 @dataclasses.dataclass(frozen=True, eq=False)
 class Density:
@@ -809,11 +849,17 @@ class Density:
     def __post_init__(self):
         if self.log_support is None:
             with np.errstate(divide="ignore"):
-                object.__setattr__(self, "log_support", tuple(
-                    math.log(v) if v > 0 else -math.inf for v in self.support))
+                object.__setattr__(
+                    self,
+                    "log_support",
+                    tuple(math.log(v) if v > 0 else -math.inf for v in self.support),
+                )
         if self.log_atoms is None:
-            object.__setattr__(self, "log_atoms", tuple(
-                (math.log(a) if a > 0 else -math.inf, w) for a, w in self.atoms))
+            object.__setattr__(
+                self,
+                "log_atoms",
+                tuple((math.log(a) if a > 0 else -math.inf, w) for a, w in self.atoms),
+            )
 
     @property
     def in_float_range(self) -> bool:
@@ -836,7 +882,7 @@ class Density:
 
     def moment(self, k: int) -> float:
         """``E[lambda^k]`` (atoms included), trapezoid in ``ln lambda`` on the grid."""
-        atoms = sum(w * a ** k for a, w in self.atoms if a > 0 or k == 0)
+        atoms = sum(w * a**k for a, w in self.atoms if a > 0 or k == 0)
         if self.log_x.size < 2:
             return float(atoms)
         top = float(np.max(k * self.log_x))
@@ -851,11 +897,16 @@ class Density:
         for a, w in self.atoms:
             out += w * (lam >= a)
         if self.log_x.size >= 2:
-            cum = np.concatenate([[0.0], np.cumsum(0.5 * (self.rho_log[1:] + self.rho_log[:-1])
-                                                   * np.diff(self.log_x))])
+            cum = np.concatenate(
+                [
+                    [0.0],
+                    np.cumsum(0.5 * (self.rho_log[1:] + self.rho_log[:-1]) * np.diff(self.log_x)),
+                ]
+            )
             with np.errstate(divide="ignore"):
-                out += np.interp(np.log(np.maximum(lam, 0.0)), self.log_x, cum, left=0.0,
-                                 right=cum[-1])
+                out += np.interp(
+                    np.log(np.maximum(lam, 0.0)), self.log_x, cum, left=0.0, right=cum[-1]
+                )
         return out
 
 
@@ -898,7 +949,7 @@ def _plain_upper_edge(law, kind, sigma, depth) -> tuple[float, bool]:
     from scipy import optimize
 
     top = float(law.values[-1])
-    t = np.linspace(30.0, -36.0, 331)          # w = top (1 + e^t)
+    t = np.linspace(30.0, -36.0, 331)  # w = top (1 + e^t)
     lz_scan, g = _plain_log_z_real(law, kind, sigma, depth, top * (1.0 + np.exp(t)))
     neg = np.flatnonzero(g < 0)
     if neg.size == 0 or neg[0] == 0:
@@ -919,7 +970,7 @@ def _plain_upper_edge(law, kind, sigma, depth) -> tuple[float, bool]:
     return float(lz[0]), True
 
 
-@functools.lru_cache(maxsize=None)
+@functools.cache
 def _log_d_slope(act: Activation):
     """NumPy callable ``d/dh ln phi'(h)^2 = 2 phi''/phi'`` by ``jax.grad`` of the registry's
     tail-accurate ``ln phi'^2`` (finite where phi' itself underflows)."""
@@ -968,8 +1019,15 @@ class _Pushforward:
         for i in change:
             if h[i] in kinks or h[i + 1] in kinks:
                 continue
-            breaks.append(optimize.brentq(lambda x: float(self.slope(np.array([x]))[0]),
-                                          h[i], h[i + 1], xtol=1e-15, rtol=4 * _EPS))
+            breaks.append(
+                optimize.brentq(
+                    lambda x: float(self.slope(np.array([x]))[0]),
+                    h[i],
+                    h[i + 1],
+                    xtol=1e-15,
+                    rtol=4 * _EPS,
+                )
+            )
         # zeros of phi' (ln d -> -inf) also separate monotone pieces
         for i in np.flatnonzero(p1[1:] * p1[:-1] < 0):
             breaks.append(0.5 * (h[i] + h[i + 1]))
@@ -1001,7 +1059,7 @@ class _Pushforward:
                 continue
             t = target[inside]
             k = np.clip(np.searchsorted(ll, t), 1, ll.size - 1)
-            lo, hi = hh[k - 1], hh[k]             # ln d(lo) <= t <= ln d(hi), lo < hi or not
+            lo, hi = hh[k - 1], hh[k]  # ln d(lo) <= t <= ln d(hi), lo < hi or not
             x = np.interp(t, ll, hh)
             for _ in range(60):
                 g = self.logd(x) - t
@@ -1034,8 +1092,9 @@ def _pushforward_atoms(law: DerivativeLaw, push: _Pushforward, sigma: float):
     return atoms
 
 
-def _solved(problem, ell: np.ndarray, s_top: np.ndarray, atoms, what: str,
-            strict: bool = True) -> np.ndarray:
+def _solved(
+    problem, ell: np.ndarray, s_top: np.ndarray, atoms, what: str, strict: bool = True
+) -> np.ndarray:
     """``rho_log`` on a grid of ``ln lambda`` by continuation, nonzero atoms subtracted.
 
     With ``strict=False`` points where the solve failed come back as NaN (the caller decides
@@ -1062,7 +1121,8 @@ def _solved(problem, ell: np.ndarray, s_top: np.ndarray, atoms, what: str,
         raise SolverError(
             f"the {what} master equation did not converge at {int(failed.sum())} of {ell.size} "
             f"points (lambda = {span}); try a smaller depth, a variance q further from 0 or a "
-            "chi_1 closer to 1, and report the case if it persists")
+            "chi_1 closer to 1, and report the case if it persists"
+        )
     out[failed] = np.nan
     return out
 
@@ -1090,7 +1150,9 @@ def _curvature(e: np.ndarray, f: np.ndarray) -> np.ndarray:
     slope = np.diff(f) / h
     second = np.abs(2.0 * np.diff(slope) / (h[1:] + h[:-1]))
     c = np.concatenate([[second[0]], second, [second[-1]]])
-    return np.maximum(c, np.maximum(np.concatenate([[0.0], c[:-1]]), np.concatenate([c[1:], [0.0]])))
+    return np.maximum(
+        c, np.maximum(np.concatenate([[0.0], c[:-1]]), np.concatenate([c[1:], [0.0]]))
+    )
 
 
 def _monitor_cdf(e: np.ndarray, curv: np.ndarray, norm: float, width: float) -> np.ndarray:
@@ -1108,9 +1170,14 @@ def _monitor_cdf(e: np.ndarray, curv: np.ndarray, norm: float, width: float) -> 
     return np.concatenate([[0.0], np.cumsum(0.5 * (m[1:] + m[:-1]) * np.diff(e))])
 
 
-def _tabulate(rho_log: Callable[..., np.ndarray], ell_top: float, mass: float, span: float,
-              points: int, ell_bottom: float | None = None,
-              ) -> tuple[np.ndarray, np.ndarray, list[tuple[float, float]]]:
+def _tabulate(
+    rho_log: Callable[..., np.ndarray],
+    ell_top: float,
+    mass: float,
+    span: float,
+    points: int,
+    ell_bottom: float | None = None,
+) -> tuple[np.ndarray, np.ndarray, list[tuple[float, float]]]:
     """Choose the grid of ``ln lambda`` and tabulate ``rho_log`` on it.
 
     1. Scan ``[ell_top - span, ell_top]``, half the points uniform, half geometric towards the
@@ -1128,6 +1195,7 @@ def _tabulate(rho_log: Callable[..., np.ndarray], ell_top: float, mass: float, s
     Returns:
       ``(ell, rho_log, intervals)`` with intervals as pairs of ``ln lambda``.
     """
+
     def gathered(lo, hi, n, low_too):
         width = hi - lo
         parts = [np.linspace(lo, hi, n), hi - np.geomspace(1e-7 * max(1.0, width), width, n)]
@@ -1158,13 +1226,17 @@ def _tabulate(rho_log: Callable[..., np.ndarray], ell_top: float, mass: float, s
     bad = ~np.isfinite(rl)
     positive = np.flatnonzero(rl > 0)
     if positive.size == 0:
-        raise SolverError("the solved density vanishes everywhere on the scanned range; the "
-                          "spectrum may be a point mass, or the solve is off its branch")
-    if bad[positive[0]:].any():
-        k = np.flatnonzero(bad[positive[0]:])[0] + positive[0]
-        raise SolverError(f"the master equation did not converge at lambda = "
-                          f"{math.exp(ell[k]):.6g}, inside the spectrum; try a smaller depth or "
-                          "a chi_1 closer to 1, and report the case if it persists")
+        raise SolverError(
+            "the solved density vanishes everywhere on the scanned range; the "
+            "spectrum may be a point mass, or the solve is off its branch"
+        )
+    if bad[positive[0] :].any():
+        k = np.flatnonzero(bad[positive[0] :])[0] + positive[0]
+        raise SolverError(
+            f"the master equation did not converge at lambda = "
+            f"{math.exp(ell[k]):.6g}, inside the spectrum; try a smaller depth or "
+            "a chi_1 closer to 1, and report the case if it persists"
+        )
     rl = np.where(bad, 0.0, rl)
     thr = max(THRESHOLD * float(rl.max()), FLOOR)
     pos = rl > thr
@@ -1221,16 +1293,16 @@ def _tabulate(rho_log: Callable[..., np.ndarray], ell_top: float, mass: float, s
             total = max(sum(float(np.trapezoid(f, e)) for f, (e, _) in zip(fk, segs)), 1e-300)
             for j, (e, _) in enumerate(segs):
                 curv[j] = curv[j] + _curvature(e, fk[j]) / total
-        norm = max(sum(float(np.trapezoid(np.cbrt(c), e)) for c, (e, _) in zip(curv, segs)),
-                   1e-300)
+        norm = max(sum(float(np.trapezoid(np.cbrt(c), e)) for c, (e, _) in zip(curv, segs)), 1e-300)
         cums = [_monitor_cdf(e, c, norm, width) for (e, _), c in zip(segs, curv)]
         shares = np.array([c[-1] for c in cums])
         alloc = np.maximum(12, np.floor(shares / shares.sum() * n_total)).astype(int)
         while alloc.sum() > n_total and alloc.max() > 12:
             alloc[np.argmax(alloc)] -= 1
         alloc[np.argmax(shares)] += max(0, n_total - int(alloc.sum()))
-        out = [np.interp(_chebyshev(int(n)), c / c[-1], e)
-               for (e, _), c, n in zip(segs, cums, alloc)]
+        out = [
+            np.interp(_chebyshev(int(n)), c / c[-1], e) for (e, _), c, n in zip(segs, cums, alloc)
+        ]
         return np.concatenate(out)
 
     for n_round in (60, 120):
@@ -1268,10 +1340,13 @@ def _make_density(ell, rl, atoms, intervals, regime) -> Density:
         log_support = (min(nonzero), max(nonzero)) if nonzero else (-math.inf, -math.inf)
     # an edge outside the normal float64 range has no faithful lambda form: NaN (JSON null),
     # never a silent 0.0 or inf; log_support holds it
-    support = tuple(0.0 if v == -math.inf else (math.exp(v) if _LOG_TINY <= v <= _LOG_HUGE
-                                                else math.nan) for v in log_support)
-    return Density(x, rho, ell, rl, float(zero), atom_list, support, iv, regime,
-                   log_support, log_atoms)
+    support = tuple(
+        0.0 if v == -math.inf else (math.exp(v) if _LOG_TINY <= v <= _LOG_HUGE else math.nan)
+        for v in log_support
+    )
+    return Density(
+        x, rho, ell, rl, float(zero), atom_list, support, iv, regime, log_support, log_atoms
+    )
 
 
 MASS_RTOL = 1e-2
@@ -1285,14 +1360,17 @@ def _mass_error(ell, rl, mass) -> float:
 def _check_mass(ell, rl, mass, what):
     got = float(np.trapezoid(rl, ell))
     if abs(got - mass) > MASS_RTOL * max(mass, 1e-3):
-        raise SolverError(f"solver limit: the {what} density integrates to {got:.6g} on its grid "
-                          f"of {np.size(ell)} points where {mass:.6g} was expected (the grid did "
-                          "not resolve part of the spectrum); this is a limit of the density "
-                          "solver, not of the design; the moments are unaffected")
+        raise SolverError(
+            f"solver limit: the {what} density integrates to {got:.6g} on its grid "
+            f"of {np.size(ell)} points where {mass:.6g} was expected (the grid did "
+            "not resolve part of the spectrum); this is a limit of the density "
+            "solver, not of the design; the moments are unaffected"
+        )
 
 
-def plain_density(law: DerivativeLaw, weights: str, sigma_w: float, depth: int,
-                  points: int = 400) -> Density:
+def plain_density(
+    law: DerivativeLaw, weights: str, sigma_w: float, depth: int, points: int = 400
+) -> Density:
     """Spectral density of ``J J^T`` for a plain stack with every layer at variance q.
 
     Solves the master equation ``z M S_{JJ^T}(M) = 1 + M`` (``G = (1 + M)/z``,
@@ -1327,16 +1405,19 @@ def plain_density(law: DerivativeLaw, weights: str, sigma_w: float, depth: int,
     points = _check_points(points)
     atoms = _plain_atoms(law, kind, sigma, depth)
     if kind == "orthogonal" and depth == 1 and not law.exact:
-        atoms = [a for a in atoms if not math.isfinite(a[0])]   # nodes are not atoms
+        atoms = [a for a in atoms if not math.isfinite(a[0])]  # nodes are not atoms
     mass = 1.0 - sum(w for _, w in atoms)
-    regime = (f"N -> infinity, q^l = q = {law.q:.6g} for every layer (the fixed point q*), "
-              f"{kind} weights, sigma_w = {sigma:.6g}, L = {depth}")
+    regime = (
+        f"N -> infinity, q^l = q = {law.q:.6g} for every layer (the fixed point q*), "
+        f"{kind} weights, sigma_w = {sigma:.6g}, L = {depth}"
+    )
     if mass <= 1e-10 or law.positive_weight <= 0:
         return _make_density([], [], atoms, [], regime)
     spread = law.relative_variance()
-    if kind == "orthogonal" and not atoms and depth * spread < NARROW_SPREAD ** 2:
-        return _narrow_density(depth * 2.0 * math.log(sigma) + depth * law.log_mu1,
-                               depth * spread, points, regime)
+    if kind == "orthogonal" and not atoms and depth * spread < NARROW_SPREAD**2:
+        return _narrow_density(
+            depth * 2.0 * math.log(sigma) + depth * law.log_mu1, depth * spread, points, regime
+        )
     if kind == "gaussian" or law.zero_weight > 0:
         # the density reaches down to lambda = 0 like a power: ln lambda spreads ~ 16 L
         span = 40.0 + 20.0 * depth * (spread + (1.0 if kind == "gaussian" else 0.0))
@@ -1398,13 +1479,15 @@ def _narrow_density(log_m1: float, rel_var: float, points: int, regime: str) -> 
     relative order ``sqrt(rel_var)`` < 1e-3.  Built in logs: ``ln lambda = ln m1 + log1p(R cos t)``.
     """
     r = 2.0 * math.sqrt(max(rel_var, 0.0))
-    regime = (f"{regime}; near-isometric limit: predicted relative spread "
-              f"sqrt(m2/m1^2 - 1) = {math.sqrt(max(rel_var, 0.0)):.3g} < {NARROW_SPREAD:g}, below "
-              "what the density solver resolves: semicircle with the predicted m1 and m2 "
-              "(free central limit)")
+    regime = (
+        f"{regime}; near-isometric limit: predicted relative spread "
+        f"sqrt(m2/m1^2 - 1) = {math.sqrt(max(rel_var, 0.0)):.3g} < {NARROW_SPREAD:g}, below "
+        "what the density solver resolves: semicircle with the predicted m1 and m2 "
+        "(free central limit)"
+    )
     if r == 0.0:
         return _make_density([], [], [(log_m1, 1.0)], [], regime)
-    t = np.pi * (points - 0.5 - np.arange(points)) / points   # from pi to 0: lambda increasing
+    t = np.pi * (points - 0.5 - np.arange(points)) / points  # from pi to 0: lambda increasing
     u = np.cos(t)
     ell = log_m1 + np.log1p(r * u)
     # rho_log d ell = rho_u du, du = lambda/m1 d ell: rho_log = (1 + r u) rho_u
@@ -1420,8 +1503,10 @@ def _narrow_density(log_m1: float, rel_var: float, points: int, regime: str) -> 
 # Residual stacks and the large-depth orthogonal law
 # ----------------------------------------------------------------------------------------
 
-def residual_tau(activation: str | Activation, sigma_w: float, q_trajectory: Sequence[float],
-                 alpha: float = 1.0) -> float:
+
+def residual_tau(
+    activation: str | Activation, sigma_w: float, q_trajectory: Sequence[float], alpha: float = 1.0
+) -> float:
     """``tau = sum_l alpha^2 sigma_w^2 E[phi'(h^l)^2]``, ``h^l ~ N(0, q^l)``, of a residual stack.
 
     The residual block is ``x' = x + alpha phi(W x + b)``; tau is accumulated along the actual
@@ -1446,11 +1531,15 @@ def residual_tau(activation: str | Activation, sigma_w: float, q_trajectory: Seq
         qs = np.asarray(q_trajectory, dtype=float).reshape(-1)
         alpha = float(alpha)
     except (TypeError, ValueError):
-        raise TheoryError(f"q_trajectory must be a sequence of variances and alpha a number, "
-                          f"received {q_trajectory!r}, {alpha!r}") from None
+        raise TheoryError(
+            f"q_trajectory must be a sequence of variances and alpha a number, "
+            f"received {q_trajectory!r}, {alpha!r}"
+        ) from None
     if qs.size == 0 or not np.all(np.isfinite(qs)) or np.any(qs <= 0):
-        raise TheoryError(f"q_trajectory must hold one positive finite variance per block, "
-                          f"received {qs.size} values with min {qs.min() if qs.size else None}")
+        raise TheoryError(
+            f"q_trajectory must hold one positive finite variance per block, "
+            f"received {qs.size} values with min {qs.min() if qs.size else None}"
+        )
     if not math.isfinite(alpha):
         raise TheoryError(f"alpha must be finite, received {alpha!r}")
     return float(alpha * alpha * sigma * sigma * np.sum(derivative_means(act, qs)))
@@ -1478,8 +1567,11 @@ def derivative_means(activation: str | Activation, q_trajectory: Sequence[float]
     act = get_activation(activation)
     qs = np.asarray(q_trajectory, dtype=float).reshape(-1)
     if not np.all(np.isfinite(qs)) or np.any(qs < 0):
-        raise TheoryError(f"variances must be finite and >= 0, received min {qs.min()} and "
-                          f"max {qs.max()}" if qs.size else "no variances were given")
+        raise TheoryError(
+            f"variances must be finite and >= 0, received min {qs.min()} and max {qs.max()}"
+            if qs.size
+            else "no variances were given"
+        )
     distinct, where = np.unique(qs, return_inverse=True)
     positive = distinct[distinct > 0]
     if act.kinks or act.derivative_values is not None:
@@ -1487,9 +1579,13 @@ def derivative_means(activation: str | Activation, q_trajectory: Sequence[float]
     else:
         dphi_sq = act.numpy_dphi_sq()
         z, w = normal_rule()
-        mu1 = (np.asarray(dphi_sq((np.sqrt(positive)[:, None] * z).ravel()))
-               .reshape(positive.size, z.size) @ w)
-    if distinct.size > positive.size:   # q = 0 sorts first
+        mu1 = (
+            np.asarray(dphi_sq((np.sqrt(positive)[:, None] * z).ravel())).reshape(
+                positive.size, z.size
+            )
+            @ w
+        )
+    if distinct.size > positive.size:  # q = 0 sorts first
         mu1 = np.concatenate([[mf.derivative_moments(act, 0.0, 1)[0]], mu1])
     return np.asarray(mu1, dtype=float)[where.reshape(-1)]
 
@@ -1543,7 +1639,7 @@ def residual_edges(tau: float) -> tuple[float, float]:
     tau = _check_tau(tau)
     if tau == 0.0:
         return 1.0, 1.0
-    lo, hi = _exp_law_edges(2.0 * tau)    # S = e^{-tau} exp(-2 tau z): shift ln lambda by tau
+    lo, hi = _exp_law_edges(2.0 * tau)  # S = e^{-tau} exp(-2 tau z): shift ln lambda by tau
     return math.exp(lo + tau), math.exp(min(hi + tau, 709.78))
 
 
@@ -1589,8 +1685,10 @@ def residual_density(tau: float, points: int = 400) -> Density:
     """
     tau = _check_tau(tau)
     points = _check_points(points)
-    regime = (f"N -> infinity, L -> infinity with tau = sum_l alpha^2 sigma_w^2 E[phi'(h^l)^2] "
-              f"= {tau:.6g} fixed (branch variance O(1/L) per block)")
+    regime = (
+        f"N -> infinity, L -> infinity with tau = sum_l alpha^2 sigma_w^2 E[phi'(h^l)^2] "
+        f"= {tau:.6g} fixed (branch variance O(1/L) per block)"
+    )
     if tau == 0.0:
         return _make_density([], [], [(0.0, 1.0)], [], regime)
     lo, hi = _exp_law_edges(2.0 * tau)
@@ -1599,9 +1697,9 @@ def residual_density(tau: float, points: int = 400) -> Density:
 
     def evaluate(ell, strict):
         ell = np.asarray(ell, dtype=float)
-        return _solved(problem, ell, math.log(START) + np.maximum(ell, hi), [], "residual",
-                       strict)
+        return _solved(problem, ell, math.log(START) + np.maximum(ell, hi), [], "residual", strict)
 
-    ell, rl, intervals = _tabulate_checked(evaluate, hi, 1.0, hi - lo, points, "residual",
-                                           ell_bottom=lo)
+    ell, rl, intervals = _tabulate_checked(
+        evaluate, hi, 1.0, hi - lo, points, "residual", ell_bottom=lo
+    )
     return _make_density(ell, rl, [], intervals, regime)

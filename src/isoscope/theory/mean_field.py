@@ -58,10 +58,24 @@ from isoscope.errors import InputError, SolverError, TheoryError
 from isoscope.theory.quadrature import expect_bivariate, normal_rule
 
 __all__ = [
-    "PHASE_TOL", "CRITICAL_TOL", "Q_MAX", "MeanField", "CriticalPoint", "CriticalLine",
-    "length_map", "length_map_slope", "fixed_point", "derivative_moments", "chi1",
-    "correlation_map", "correlation_slope", "correlation_fixed_point", "mean_field",
-    "q_trajectory", "critical_point", "critical_line",
+    "PHASE_TOL",
+    "CRITICAL_TOL",
+    "Q_MAX",
+    "MeanField",
+    "CriticalPoint",
+    "CriticalLine",
+    "length_map",
+    "length_map_slope",
+    "fixed_point",
+    "derivative_moments",
+    "chi1",
+    "correlation_map",
+    "correlation_slope",
+    "correlation_fixed_point",
+    "mean_field",
+    "q_trajectory",
+    "critical_point",
+    "critical_line",
 ]
 
 PHASE_TOL = 1e-9
@@ -74,19 +88,20 @@ Q_MAX = 1e16
 """Largest variance searched for a fixed point; beyond it q is treated as growing without bound."""
 
 _SOFT_BREAKS = (0.0, -0.5, 0.5, -2.0, 2.0, -8.0, 8.0, -32.0, 32.0)  # see _rule and the module doc
-_SIGN_RTOL = 1e-11       # |V(q) - q| <= _SIGN_RTOL q + _SIGN_ATOL sqrt(q) counts as zero: quadrature
-_SIGN_ATOL = 1e-13       # noise, plus phi's own rounding (~1e-16 absolute) times |h| ~ sqrt(q)
+_SIGN_RTOL = 1e-11  # |V(q) - q| <= _SIGN_RTOL q + _SIGN_ATOL sqrt(q) counts as zero: quadrature
+_SIGN_ATOL = 1e-13  # noise, plus phi's own rounding (~1e-16 absolute) times |h| ~ sqrt(q)
 _FIXED_POINT_RTOL = 1e-6  # how close q must be to V(q) to be accepted as "the fixed point"
-_HERMITE_TERMS = 48      # Mehler-series terms used only to seed the c* solve
+_HERMITE_TERMS = 48  # Mehler-series terms used only to seed the c* solve
 _CRITICAL_SB2_SPAN = 1.0  # default critical line: up to sigma_b^2 = 1
-_NEAR_ONE_PERP = 0.2      # sqrt(1 - c^2) below which kinked 2-D rules get extra breaks (_bivariate)
+_NEAR_ONE_PERP = 0.2  # sqrt(1 - c^2) below which kinked 2-D rules get extra breaks (_bivariate)
 _NEAR_ONE_STEPS = (-8.0, -2.0, -0.5, 0.5, 2.0, 8.0)
-_CHUNK = 8192           # evaluation chunk (see _padded): a 1-D rule fits in one, a 2-D rule in ~25
+_CHUNK = 8192  # evaluation chunk (see _padded): a 1-D rule fits in one, a 2-D rule in ~25
 
 
 # ---------------------------------------------------------------------------------------------
 # Result types
 # ---------------------------------------------------------------------------------------------
+
 
 class MeanField(NamedTuple):
     """Mean-field summary of a plain stack at one (sigma_w, sigma_b).
@@ -141,6 +156,7 @@ class CriticalLine(NamedTuple):
 # Validation and quadrature plumbing (private)
 # ---------------------------------------------------------------------------------------------
 
+
 def _act(activation: str | Activation) -> Activation:
     return get_activation(activation)
 
@@ -149,12 +165,17 @@ def _scale(name: str, value: float) -> float:
     try:
         v = float(value)
     except (TypeError, ValueError):
-        raise InputError(f"{name} = {value!r} is not a number", expected="a finite real >= 0",
-                         hint=f"pass {name} as a float scale (standard deviation), e.g. 1.0") from None
+        raise InputError(
+            f"{name} = {value!r} is not a number",
+            expected="a finite real >= 0",
+            hint=f"pass {name} as a float scale (standard deviation), e.g. 1.0",
+        ) from None
     if not math.isfinite(v) or v < 0:
-        raise InputError(f"{name} = {value!r} is out of range", expected="a finite real >= 0",
-                         hint=f"{name} is a scale (standard deviation), not a variance; pass its "
-                              f"absolute value")
+        raise InputError(
+            f"{name} = {value!r} is out of range",
+            expected="a finite real >= 0",
+            hint=f"{name} is a scale (standard deviation), not a variance; pass its absolute value",
+        )
     return v
 
 
@@ -162,11 +183,17 @@ def _variance(q: float, name: str = "q") -> float:
     try:
         v = float(q)
     except (TypeError, ValueError):
-        raise InputError(f"{name} = {q!r} is not a number", expected="a finite variance >= 0",
-                         hint="pass the pre-activation variance as a float") from None
+        raise InputError(
+            f"{name} = {q!r} is not a number",
+            expected="a finite variance >= 0",
+            hint="pass the pre-activation variance as a float",
+        ) from None
     if not math.isfinite(v) or v < 0:
-        raise InputError(f"{name} = {q!r} is out of range", expected="a finite variance >= 0",
-                         hint="pass a pre-activation variance, e.g. q* from fixed_point()")
+        raise InputError(
+            f"{name} = {q!r} is out of range",
+            expected="a finite variance >= 0",
+            hint="pass a pre-activation variance, e.g. q* from fixed_point()",
+        )
     return v
 
 
@@ -174,11 +201,17 @@ def _correlation(c: float) -> float:
     try:
         v = float(c)
     except (TypeError, ValueError):
-        raise InputError(f"c = {c!r} is not a number", expected="a correlation in [-1, 1]",
-                         hint="pass the correlation between two inputs' pre-activations") from None
+        raise InputError(
+            f"c = {c!r} is not a number",
+            expected="a correlation in [-1, 1]",
+            hint="pass the correlation between two inputs' pre-activations",
+        ) from None
     if not -1.0 <= v <= 1.0:
-        raise InputError(f"c = {c!r} is out of range", expected="a correlation in [-1, 1]",
-                         hint="a correlation is a covariance divided by the variance q")
+        raise InputError(
+            f"c = {c!r} is out of range",
+            expected="a correlation in [-1, 1]",
+            hint="a correlation is a covariance divided by the variance q",
+        )
     return v
 
 
@@ -224,8 +257,9 @@ _LIMITS: dict[Activation, _Integrand] = {}
 def _integrand(act: Activation) -> _Integrand:
     if act not in _INTEGRANDS:
         phi, dphi = act.numpy_pair()
-        _INTEGRANDS[act] = _Integrand(_padded(phi), _padded(dphi), tuple(act.kinks),
-                                      _padded(act.numpy_dphi_sq()))
+        _INTEGRANDS[act] = _Integrand(
+            _padded(phi), _padded(dphi), tuple(act.kinks), _padded(act.numpy_dphi_sq())
+        )
     return _INTEGRANDS[act]
 
 
@@ -252,8 +286,7 @@ def _limit_integrand(act: Activation) -> _Integrand:
         def dpsi(h: np.ndarray) -> np.ndarray:
             return np.where(h > 0, a, b) + 0.0 * h
 
-        _LIMITS[act] = _Integrand(psi, dpsi, (0.0,) if a != b else (),
-                                  lambda h: dpsi(h) ** 2)
+        _LIMITS[act] = _Integrand(psi, dpsi, (0.0,) if a != b else (), lambda h: dpsi(h) ** 2)
     return _LIMITS[act]
 
 
@@ -321,6 +354,7 @@ def _residual_g(act: Activation, sw2: float, sb2: float, q: float) -> float:
 # ---------------------------------------------------------------------------------------------
 # Length map and fixed point
 # ---------------------------------------------------------------------------------------------
+
 
 def length_map(activation: str | Activation, sigma_w: float, sigma_b: float, q: float) -> float:
     """One step of the variance (length) map.
@@ -416,7 +450,7 @@ def fixed_point(activation: str | Activation, sigma_w: float, sigma_b: float) ->
     if v0 > 0.0:
         # Double until g is *clearly* negative: a marginal map (ReLU at sigma_w^2 = 2 with a bias,
         # V(q) - q = sigma_b^2 + O(1e-16) q) must not produce a spurious root at q ~ 1e14.
-        pos, hi = 0.0, v0                    # g(pos) > 0 throughout
+        pos, hi = 0.0, v0  # g(pos) > 0 throughout
         while (g_hi := g(hi)) >= -_noise(hi):
             if g_hi > 0.0:
                 pos = hi
@@ -433,12 +467,12 @@ def fixed_point(activation: str | Activation, sigma_w: float, sigma_b: float) ->
         val = g(q)
         noise = _noise(q)
         if val < -noise:
-            return 0.0                       # attracted back to 0 from above
+            return 0.0  # attracted back to 0 from above
         if val > noise:
-            break                            # 0 repels: look for the attracting fixed point above
+            break  # 0 repels: look for the attracting fixed point above
         q *= 2.0
         if q > Q_MAX:
-            return 0.0                       # V(q) = q for all q (homogeneous phi at its critical point)
+            return 0.0  # V(q) = q for all q (homogeneous phi at its critical point)
     lo, hi = q, 2.0 * q
     while g(hi) > 0.0:
         lo, hi = hi, 2.0 * hi
@@ -456,26 +490,32 @@ def _brent(f: Callable[[float], float], lo: float, hi: float) -> float:
     try:
         return float(optimize.brentq(f, lo, hi, xtol=1e-300, rtol=1e-15, maxiter=500))
     except (RuntimeError, ValueError) as exc:  # pragma: no cover - bracket was verified
-        raise SolverError(f"root finding did not converge on [{lo:.6g}, {hi:.6g}]: {exc}; "
-                          "try a slightly different sigma_w or sigma_b") from exc
+        raise SolverError(
+            f"root finding did not converge on [{lo:.6g}, {hi:.6g}]: {exc}; "
+            "try a slightly different sigma_w or sigma_b"
+        ) from exc
 
 
 def _raise_unbounded(act: Activation, sw: float, sb: float) -> None:
     growth = sw * sw * _mean_square(act, Q_MAX) / Q_MAX
-    hint = ("for ReLU-like phi (E[phi(sqrt(q) z)^2] ~ k q at large q) the variance stays finite only "
-            "when sigma_w^2 k < 1, or sigma_w^2 k = 1 with sigma_b = 0 (ReLU: sigma_w^2 = 2, He "
-            "initialization); lower sigma_w, set sigma_b = 0 at the critical sigma_w, use a bounded "
-            "activation (tanh, erf), or a residual stack with a small branch scale")
+    hint = (
+        "for ReLU-like phi (E[phi(sqrt(q) z)^2] ~ k q at large q) the variance stays finite only "
+        "when sigma_w^2 k < 1, or sigma_w^2 k = 1 with sigma_b = 0 (ReLU: sigma_w^2 = 2, He "
+        "initialization); lower sigma_w, set sigma_b = 0 at the critical sigma_w, use a bounded "
+        "activation (tanh, erf), or a residual stack with a small branch scale"
+    )
     raise TheoryError(
         f"no finite stable fixed point of the length map for {act.name} at sigma_w = {sw:g} "
         f"(sigma_w^2 = {sw * sw:g}), sigma_b = {sb:g}: V(q) > q for every q up to {Q_MAX:g} "
         f"(V(q)/q -> {growth:.6g} there), so the pre-activation variance grows without bound with "
-        f"depth; {hint}")
+        f"depth; {hint}"
+    )
 
 
 # ---------------------------------------------------------------------------------------------
 # Derivative moments and chi_1
 # ---------------------------------------------------------------------------------------------
+
 
 def derivative_moments(activation: str | Activation, q: float, kmax: int = 4) -> np.ndarray:
     """Moments of the squared derivative, ``mu_k = E[phi'(sqrt(q) z)^{2k}]`` for k = 1..kmax.
@@ -498,8 +538,11 @@ def derivative_moments(activation: str | Activation, q: float, kmax: int = 4) ->
     act = _act(activation)
     q = _variance(q)
     if isinstance(kmax, bool) or not isinstance(kmax, (int, np.integer)) or kmax < 1:
-        raise InputError(f"kmax = {kmax!r} is invalid", expected="an integer >= 1",
-                         hint="ask for at least the first moment, e.g. kmax=4")
+        raise InputError(
+            f"kmax = {kmax!r} is invalid",
+            expected="an integer >= 1",
+            hint="ask for at least the first moment, e.g. kmax=4",
+        )
     fn, qe = _at(act, q)
     h, w = _rule(fn, qe)
     d2 = fn.dphi_sq(h)
@@ -534,6 +577,7 @@ def chi1(activation: str | Activation, sigma_w: float, q: float) -> float:
 # Correlation map
 # ---------------------------------------------------------------------------------------------
 
+
 def _bivariate(fn: _Integrand, which: str, form: str, q: float, c: float) -> float:
     """``E[F(u1, u2)]``, u1, u2 ~ N(0, q) with correlation c, by quadrature.expect_bivariate.
 
@@ -544,7 +588,7 @@ def _bivariate(fn: _Integrand, which: str, form: str, q: float, c: float) -> flo
 
     def f(u1: np.ndarray, u2: np.ndarray) -> np.ndarray:
         vals = g(np.concatenate([u1, u2]))
-        a, b = vals[: u1.size], vals[u1.size:]
+        a, b = vals[: u1.size], vals[u1.size :]
         return a * b if form == "product" else (a - b) ** 2
 
     kinks = fn.kinks
@@ -569,8 +613,9 @@ def _fp_map(act: Activation, sw2: float, q: float, c: float) -> float:
     return 1.0 - sw2 * _bivariate(fn, "phi", "square", qe, c) / (2.0 * qe)
 
 
-def correlation_map(activation: str | Activation, sigma_w: float, sigma_b: float, q: float,
-                    c: float) -> float:
+def correlation_map(
+    activation: str | Activation, sigma_w: float, sigma_b: float, q: float, c: float
+) -> float:
     """The correlation map at variance q: ``C(c) = (sigma_w^2 E[phi(u1) phi(u2)] + sigma_b^2)/q``.
 
     ``u1 = sqrt(q) z1``, ``u2 = sqrt(q) (c z1 + sqrt(1 - c^2) z2)``, z1, z2 independent N(0, 1);
@@ -598,8 +643,12 @@ def correlation_map(activation: str | Activation, sigma_w: float, sigma_b: float
       docs/theory-mean-field.md.
     """
     act = _act(activation)
-    sw, sb, q, c = (_scale("sigma_w", sigma_w), _scale("sigma_b", sigma_b), _variance(q),
-                    _correlation(c))
+    sw, sb, q, c = (
+        _scale("sigma_w", sigma_w),
+        _scale("sigma_b", sigma_b),
+        _variance(q),
+        _correlation(c),
+    )
     sw2, sb2 = sw * sw, sb * sb
     if q == 0.0:
         v0 = sw2 * _mean_square(act, 0.0) + sb2
@@ -607,7 +656,8 @@ def correlation_map(activation: str | Activation, sigma_w: float, sigma_b: float
             raise InputError(
                 f"correlation_map at q = 0 for {act.name}, sigma_w = {sw:g}, sigma_b = {sb:g}",
                 expected="q > 0, or q = 0 only where it is a fixed point (V(0) = 0)",
-                hint=f"V(0) = {v0:.6g} > 0 here; pass q = fixed_point(...)")
+                hint=f"V(0) = {v0:.6g} > 0 here; pass q = fixed_point(...)",
+            )
         return _fp_map(act, sw2, 0.0, c)
     return (sw2 * _bivariate(_integrand(act), "phi", "product", q, c) + sb2) / q
 
@@ -654,8 +704,9 @@ def _hermite_coefficients(act: Activation, q: float, terms: int) -> np.ndarray:
     return out
 
 
-def correlation_fixed_point(activation: str | Activation, sigma_w: float, sigma_b: float,
-                            q: float) -> float:
+def correlation_fixed_point(
+    activation: str | Activation, sigma_w: float, sigma_b: float, q: float
+) -> float:
     """The stable fixed point c* of the correlation map at the fixed point variance q = q*.
 
     ``C`` is convex on [0, 1] (its Mehler series has non-negative coefficients), ``C(1) = 1`` and
@@ -697,7 +748,7 @@ def correlation_fixed_point(activation: str | Activation, sigma_w: float, sigma_
     fn, _ = _at(act, q)
     h, w = _rule(fn, qe)
     total = float(np.dot(w, fn.phi(h) ** 2))
-    c_ser = lambda c: 1.0 - sw2 * (total - float(np.dot(b2, c ** ks))) / qe  # noqa: E731
+    c_ser = lambda c: 1.0 - sw2 * (total - float(np.dot(b2, c**ks))) / qe  # noqa: E731
     dc_ser = lambda c: sw2 * float(np.dot(ks[1:] * b2[1:], c ** (ks[1:] - 1))) / qe  # noqa: E731
     top = 1.0 - 1e-9
 
@@ -713,8 +764,9 @@ def correlation_fixed_point(activation: str | Activation, sigma_w: float, sigma_
     return _newton_c(act, sw2, q, seed, dc_ser)
 
 
-def _newton_c(act: Activation, sw2: float, q: float, seed: float,
-              dc_ser: Callable[[float], float]) -> float:
+def _newton_c(
+    act: Activation, sw2: float, q: float, seed: float, dc_ser: Callable[[float], float]
+) -> float:
     lo, hi = 0.0, 1.0
     c = seed
     for _ in range(40):
@@ -735,7 +787,8 @@ def _newton_c(act: Activation, sw2: float, q: float, seed: float,
         c = new
     raise SolverError(  # pragma: no cover - Newton with bisection safeguard converges
         f"correlation fixed point did not converge for {act.name} (last c = {c:.15g}); "
-        "try a sigma_w further from the critical point")
+        "try a sigma_w further from the critical point"
+    )
 
 
 def _require_fixed_point(act: Activation, sw: float, sb: float, q: float) -> None:
@@ -745,12 +798,14 @@ def _require_fixed_point(act: Activation, sw: float, sb: float, q: float) -> Non
             f"q = {q!r} is not a fixed point of the length map of {act.name} at sigma_w = {sw:g}, "
             f"sigma_b = {sb:g} (V(q) = {v:.12g})",
             expected=f"q with |V(q) - q| <= {_FIXED_POINT_RTOL:g} q",
-            hint="pass q = fixed_point(activation, sigma_w, sigma_b)")
+            hint="pass q = fixed_point(activation, sigma_w, sigma_b)",
+        )
 
 
 # ---------------------------------------------------------------------------------------------
 # Summary
 # ---------------------------------------------------------------------------------------------
+
 
 def _depth_scale(slope: float) -> float:
     """``-1/ln|slope|``: inf within PHASE_TOL of 1, 0 for slope 0."""
@@ -760,8 +815,10 @@ def _depth_scale(slope: float) -> float:
     if s == 0.0:
         return 0.0
     if s > 1.0:
-        raise SolverError(f"slope {slope:.12g} > 1 at a fixed point that should be stable; "
-                          "this is a bug or a fixed point the root finder misclassified")
+        raise SolverError(
+            f"slope {slope:.12g} > 1 at a fixed point that should be stable; "
+            "this is a bug or a fixed point the root finder misclassified"
+        )
     return -1.0 / math.log(s)
 
 
@@ -826,8 +883,16 @@ def _mean_field(act: Activation, sw: float, sb: float) -> MeanField:
 # Trajectories
 # ---------------------------------------------------------------------------------------------
 
-def q_trajectory(activation: str | Activation, sigma_w: float, sigma_b: float, q0: float,
-                 depth: int, family: str = "plain", alpha: float = 1.0) -> np.ndarray:
+
+def q_trajectory(
+    activation: str | Activation,
+    sigma_w: float,
+    sigma_b: float,
+    q0: float,
+    depth: int,
+    family: str = "plain",
+    alpha: float = 1.0,
+) -> np.ndarray:
     """Pre-activation variances ``q^1..q^depth`` of a wide stack fed an input of mean square q0.
 
     The input x^0 has ``|x^0|^2/N = q0`` and zero mean over units.  In both families
@@ -875,19 +940,27 @@ def q_trajectory(activation: str | Activation, sigma_w: float, sigma_b: float, q
     act = _act(activation)
     sw, sb, q0 = _scale("sigma_w", sigma_w), _scale("sigma_b", sigma_b), _variance(q0, "q0")
     if isinstance(depth, bool) or not isinstance(depth, (int, np.integer)) or depth < 1:
-        raise InputError(f"depth = {depth!r} is invalid", expected="an integer >= 1",
-                         hint="depth counts weight layers")
+        raise InputError(
+            f"depth = {depth!r} is invalid",
+            expected="an integer >= 1",
+            hint="depth counts weight layers",
+        )
     if family not in ("plain", "residual"):
-        raise InputError(f"family = {family!r} is not supported by q_trajectory",
-                         expected="'plain' or 'residual'",
-                         hint="convolution stacks with delta-orthogonal kernels follow 'plain'")
+        raise InputError(
+            f"family = {family!r} is not supported by q_trajectory",
+            expected="'plain' or 'residual'",
+            hint="convolution stacks with delta-orthogonal kernels follow 'plain'",
+        )
     try:
         a = float(alpha)
     except (TypeError, ValueError):
         a = math.nan
     if not math.isfinite(a):
-        raise InputError(f"alpha = {alpha!r} is invalid", expected="a finite real branch scale",
-                         hint="use alpha = 1.0 for the default residual block")
+        raise InputError(
+            f"alpha = {alpha!r} is invalid",
+            expected="a finite real branch scale",
+            hint="use alpha = 1.0 for the default residual block",
+        )
     sw2, sb2 = sw * sw, sb * sb
     fn = _integrand(act)
     if family == "plain" and sb2 == 0.0 and _homogeneous(act):
@@ -898,9 +971,11 @@ def q_trajectory(activation: str | Activation, sigma_w: float, sigma_b: float, q
         q = sw2 * big_q + sb2
         out[layer] = q
         if not math.isfinite(q):
-            raise SolverError(f"variance overflowed at layer {layer + 1} of {depth} "
-                              f"({act.name}, sigma_w = {sw:g}, sigma_b = {sb:g}); "
-                              "lower sigma_w or the depth")
+            raise SolverError(
+                f"variance overflowed at layer {layer + 1} of {depth} "
+                f"({act.name}, sigma_w = {sw:g}, sigma_b = {sb:g}); "
+                "lower sigma_w or the depth"
+            )
         if q == 0.0:
             mu = _phi0(act)
             nu = mu * mu
@@ -916,8 +991,9 @@ def q_trajectory(activation: str | Activation, sigma_w: float, sigma_b: float, q
     return out
 
 
-def _geometric_trajectory(act: Activation, fn: _Integrand, sw: float, q1: float,
-                          depth: int) -> np.ndarray:
+def _geometric_trajectory(
+    act: Activation, fn: _Integrand, sw: float, q1: float, depth: int
+) -> np.ndarray:
     """``q^l = q^1 f^{l-1}`` for a positively homogeneous phi without bias: ``E[phi(sqrt(q) z)^2]
     = q E[phi(z)^2]``, so the length map is linear, ``V(q) = f q`` with ``f = sigma_w^2
     E[phi(z)^2]`` (ReLU: sigma_w^2/2), and the trajectory is geometric (one quadrature, not one
@@ -929,14 +1005,17 @@ def _geometric_trajectory(act: Activation, fn: _Integrand, sw: float, q1: float,
         out = q1 * np.power(f, np.arange(depth, dtype=float))
     bad = np.flatnonzero(~np.isfinite(out))
     if bad.size:
-        raise SolverError(f"variance overflowed at layer {int(bad[0]) + 1} of {depth} "
-                          f"({act.name}, sigma_w = {sw:g}, sigma_b = 0); lower sigma_w or the depth")
+        raise SolverError(
+            f"variance overflowed at layer {int(bad[0]) + 1} of {depth} "
+            f"({act.name}, sigma_w = {sw:g}, sigma_b = 0); lower sigma_w or the depth"
+        )
     return out
 
 
 # ---------------------------------------------------------------------------------------------
 # Criticality
 # ---------------------------------------------------------------------------------------------
+
 
 def _line_point(act: Activation, q: float, slope: bool = True) -> tuple[float, float, float]:
     """(sigma_w^2, sigma_b^2, V'(q)) of the critical-line point at fixed point q.
@@ -1014,7 +1093,8 @@ def critical_point(activation: str | Activation, sigma_b: float) -> CriticalPoin
             f"chi_1 = sigma_w^2 E[phi'^2] = {k:.6g} sigma_w^2 whatever q is, chi_1 = 1 forces "
             f"sigma_w^2 = {sw2:.6g}, and there V(q) = q + sigma_b^2 > q: the variance grows without "
             f"bound. Use sigma_b = 0 (sigma_w^2 = {sw2:.6g}), or a bounded activation (tanh, erf) "
-            "if a bias is needed")
+            "if a bias is needed"
+        )
 
     def f(q: float) -> float:
         return _line_point(act, q, slope=False)[1] - sb2
@@ -1043,31 +1123,39 @@ def critical_point(activation: str | Activation, sigma_b: float) -> CriticalPoin
         raise TheoryError(
             f"{act.name} has no stable critical point at sigma_b = {sb:g}: chi_1 = 1 is reached only "
             f"at {'; '.join(rejected)}. A network initialised there does not stay at that q*. Try a "
-            "larger sigma_b (see critical_line for the stable part of the line)")
+            "larger sigma_b (see critical_line for the stable part of the line)"
+        )
     lo_sb2 = _line_min_sb2(act)
     raise TheoryError(
         f"{act.name} has no critical point at sigma_b = {sb:g}: no fixed point q* in "
         f"[0, {Q_MAX:g}] has chi_1 = 1 and sigma_b^2 = {sb2:g} (the smallest sigma_b^2 on the "
         f"critical line for q* in [1e-6, 1e4] is {lo_sb2:.6g}). Choose another sigma_b or "
-        "activation")
+        "activation"
+    )
 
 
 def _accept(act: Activation, q: float, sb: float, rejected: list[str]) -> CriticalPoint | None:
     sw2, _, slope = _line_point(act, q)
     sw = math.sqrt(sw2)
     if slope > 1.0 + PHASE_TOL:
-        rejected.append(f"q* = {q:.6g}, sigma_w^2 = {sw2:.6g}, an unstable fixed point "
-                        f"(V'(q*) = {slope:.6g} > 1)")
+        rejected.append(
+            f"q* = {q:.6g}, sigma_w^2 = {sw2:.6g}, an unstable fixed point "
+            f"(V'(q*) = {slope:.6g} > 1)"
+        )
         return None
     try:
         q_found = fixed_point(act, sw, sb)
     except TheoryError:
-        rejected.append(f"q* = {q:.6g}, sigma_w^2 = {sw2:.6g}, where the variance runs away "
-                        "from every fixed point")
+        rejected.append(
+            f"q* = {q:.6g}, sigma_w^2 = {sw2:.6g}, where the variance runs away "
+            "from every fixed point"
+        )
         return None
     if abs(q_found - q) > 1e-7 * max(q, 1e-300) + 1e-14:
-        rejected.append(f"q* = {q:.6g}, sigma_w^2 = {sw2:.6g}, a fixed point not reached from small "
-                        f"variances (the stable one there is q* = {q_found:.6g})")
+        rejected.append(
+            f"q* = {q:.6g}, sigma_w^2 = {sw2:.6g}, a fixed point not reached from small "
+            f"variances (the stable one there is q* = {q_found:.6g})"
+        )
         return None
     return CriticalPoint(sw, sw2, sb, sb * sb, q)
 
@@ -1085,8 +1173,9 @@ def _line_min_sb2(act: Activation) -> float:
     return float(min(_line_point(act, float(q), slope=False)[1] for q in qs))
 
 
-def critical_line(activation: str | Activation, q_max: float | None = None,
-                  points: int = 200) -> CriticalLine:
+def critical_line(
+    activation: str | Activation, q_max: float | None = None, points: int = 200
+) -> CriticalLine:
     """The critical line chi_1 = 1 in the (sigma_w^2, sigma_b^2) plane, parametrised by q*.
 
     For each q* >= 0: ``sigma_w^2 = 1/E[phi'(sqrt(q*) z)^2]``,
@@ -1115,8 +1204,9 @@ def critical_line(activation: str | Activation, q_max: float | None = None,
     """
     act = _act(activation)
     if isinstance(points, bool) or not isinstance(points, (int, np.integer)) or points < 2:
-        raise InputError(f"points = {points!r} is invalid", expected="an integer >= 2",
-                         hint="the default is 200")
+        raise InputError(
+            f"points = {points!r} is invalid", expected="an integer >= 2", hint="the default is 200"
+        )
     if _homogeneous(act):
         sw2, _ = _homogeneous_point(act)
         return CriticalLine(np.array([sw2]), np.array([0.0]), np.array([0.0]))
@@ -1126,8 +1216,10 @@ def critical_line(activation: str | Activation, q_max: float | None = None,
 
     q_lo = 0.0 if sb2_of(0.0) >= 0.0 else _first_crossing(sb2_of, 0.0)
     if q_lo is None:
-        raise TheoryError(f"the critical line of {act.name} has sigma_b^2 < 0 for every "
-                          f"q* <= {Q_MAX:g}: no (sigma_w, sigma_b) is critical")
+        raise TheoryError(
+            f"the critical line of {act.name} has sigma_b^2 < 0 for every "
+            f"q* <= {Q_MAX:g}: no (sigma_w, sigma_b) is critical"
+        )
     if q_max is None:
         q_hi = _first_crossing(sb2_of, _CRITICAL_SB2_SPAN, start=max(q_lo, 1e-14))
         if q_hi is None:
@@ -1135,8 +1227,10 @@ def critical_line(activation: str | Activation, q_max: float | None = None,
     else:
         q_hi = _variance(q_max, "q_max")
         if q_hi <= q_lo:
-            raise TheoryError(f"the critical line of {act.name} has sigma_b^2 < 0 for q* <= q_max "
-                              f"= {q_hi:g}; it starts at q* = {q_lo:.6g}: pass a larger q_max")
+            raise TheoryError(
+                f"the critical line of {act.name} has sigma_b^2 < 0 for q* <= q_max "
+                f"= {q_hi:g}; it starts at q* = {q_lo:.6g}: pass a larger q_max"
+            )
     qs = np.linspace(q_lo, q_hi, int(points))
     rows = np.array([_line_point(act, float(q)) for q in qs])
     if abs(rows[0, 1]) <= 1e-12 * max(1.0, q_lo):
@@ -1146,13 +1240,17 @@ def critical_line(activation: str | Activation, q_max: float | None = None,
         # marginal (V'(q*) = 1, e.g. q* = 0 for GELU/SiLU): keep only if q* is actually reached
         keep[i] = _reached(act, float(rows[i, 0]), float(rows[i, 1]), float(qs[i]))
     if not keep.any():
-        raise TheoryError(f"no point of the critical line of {act.name} with q* in [{q_lo:.6g}, "
-                          f"{q_hi:.6g}] has sigma_b^2 >= 0 and a stable fixed point; "
-                          "pass a larger q_max")
+        raise TheoryError(
+            f"no point of the critical line of {act.name} with q* in [{q_lo:.6g}, "
+            f"{q_hi:.6g}] has sigma_b^2 >= 0 and a stable fixed point; "
+            "pass a larger q_max"
+        )
     return CriticalLine(rows[keep, 0].copy(), rows[keep, 1].copy(), qs[keep].copy())
 
 
-def _first_crossing(f: Callable[[float], float], level: float, start: float = 1e-14) -> float | None:
+def _first_crossing(
+    f: Callable[[float], float], level: float, start: float = 1e-14
+) -> float | None:
     """Smallest q >= start (geometric scan, then Brent) where f(q) rises through level."""
     q_prev = None
     q = max(start, 1e-14)

@@ -117,16 +117,17 @@ def log_lambda_stats(density: fp.Density) -> tuple[float, float]:
         return math.nan, math.nan
 
     def moment(k: int) -> float:
-        total = sum(float(np.trapezoid(rr * ee ** k, ee)) for ee, rr in parts)
-        return (total + sum(w * la ** k for la, w in atoms)) / mass
+        total = sum(float(np.trapezoid(rr * ee**k, ee)) for ee, rr in parts)
+        return (total + sum(w * la**k for la, w in atoms)) / mass
 
     mean = moment(1)
     var = max(moment(2) - mean * mean, 0.0)
     return mean, math.sqrt(var)
 
 
-def _steady_variance(act, sigma_w: float, sigma_b: float, q_star: float,
-                     q_layers: np.ndarray) -> float:
+def _steady_variance(
+    act, sigma_w: float, sigma_b: float, q_star: float, q_layers: np.ndarray
+) -> float:
     """The variance for the plain-stack law: q*, or the layers' own variance when the length
     map is marginal (V(q) = q for every q: ReLU at sigma_w^2 = 2, linear at sigma_w = 1, no
     bias), where q* = 0 says nothing about the layers (1.0 if the trajectory is 0 too)."""
@@ -136,9 +137,17 @@ def _steady_variance(act, sigma_w: float, sigma_b: float, q_star: float,
     return float(q_star)
 
 
-def predict(activation, weights: str, sigma_w: float, sigma_b: float, depth: int,
-            family: str = "plain", alpha: float = 1.0, input_variance: float | None = None,
-            points: int = 400) -> Prediction:
+def predict(
+    activation,
+    weights: str,
+    sigma_w: float,
+    sigma_b: float,
+    depth: int,
+    family: str = "plain",
+    alpha: float = 1.0,
+    input_variance: float | None = None,
+    points: int = 400,
+) -> Prediction:
     """Predict the spectrum of ``J J^T`` at infinite width for one design.
 
     Plain stacks: q* and the phase from :func:`~isoscope.theory.mean_field.mean_field`; the law of
@@ -195,21 +204,36 @@ def predict(activation, weights: str, sigma_w: float, sigma_b: float, depth: int
     asked = str(weights).lower() if isinstance(weights, str) else weights
     kind = "gaussian" if asked == "uniform" else asked
     if kind not in fp.WEIGHT_KINDS:
-        raise TheoryError(f"no prediction for weights = {weights!r}; theory covers "
-                          f"{', '.join(fp.WEIGHT_KINDS)} (and uniform, as Gaussian)")
+        raise TheoryError(
+            f"no prediction for weights = {weights!r}; theory covers "
+            f"{', '.join(fp.WEIGHT_KINDS)} (and uniform, as Gaussian)"
+        )
     if family == "residual":
-        p = _predict_residual(act, kind, sigma_w, sigma_b, depth, alpha,
-                              1.0 if input_variance is None else input_variance, points)
+        p = _predict_residual(
+            act,
+            kind,
+            sigma_w,
+            sigma_b,
+            depth,
+            alpha,
+            1.0 if input_variance is None else input_variance,
+            points,
+        )
         return _finish(p, act, asked)
     if family != "plain":
-        raise TheoryError(f"no prediction for family = {family!r}; theory covers plain and residual")
+        raise TheoryError(
+            f"no prediction for family = {family!r}; theory covers plain and residual"
+        )
     try:
         summary = mf.mean_field(act, sigma_w, sigma_b)
     except TheoryError:
         if not act.law_free_of_q:
             raise
-        return _finish(_predict_unbounded(act, kind, sigma_w, sigma_b, depth, input_variance,
-                                          points), act, asked)
+        return _finish(
+            _predict_unbounded(act, kind, sigma_w, sigma_b, depth, input_variance, points),
+            act,
+            asked,
+        )
     q_star = summary.q_star
     notes: list[str] = []
     factor = math.nan
@@ -221,7 +245,7 @@ def predict(activation, weights: str, sigma_w: float, sigma_b: float, depth: int
         factor = mf.length_map(act, sigma_w, 0.0, q_law) / q_law
         if abs(factor - 1.0) > 1e-12:
             notes.append(_decay_note(act, factor, q_layers, q_law))
-    elif input_variance is None:   # steady state: every layer at q* (or at 1.0 on a marginal map)
+    elif input_variance is None:  # steady state: every layer at q* (or at 1.0 on a marginal map)
         q_law = _steady_variance(act, sigma_w, sigma_b, q_star, np.ones(1))
         q_layers = np.full(int(depth), q_law)
     else:
@@ -231,42 +255,63 @@ def predict(activation, weights: str, sigma_w: float, sigma_b: float, depth: int
         off = np.abs(q_layers - q_law) / max(q_law, 1e-300) if q_law > 0 else q_layers
         if np.max(off) > _STEADY_RTOL:
             worst = int(np.argmax(off))
-            notes.append(f"inputs are not at the fixed point: layer {worst + 1} has q = "
-                         f"{q_layers[worst]:.4g} against q* = {q_law:.4g}; the prediction takes "
-                         "every layer at q* (feed steady-state inputs for a like-for-like "
-                         "comparison)")
-    at = (f"every layer at q = {q_law:.6g}" if q_law == q_star or factor != factor else
-          f"the law of phi'(h)^2 taken at q = {q_law:.6g} (the same at every q > 0 for "
-          f"{act.label}; q* = 0)")
-    regime = (f"N -> infinity with L = {depth} fixed; {at}; {_ensemble_text(asked)} free of "
-              "the diagonal factors")
-    p = _plain_prediction(act, kind, sigma_w, sigma_b, depth, points, summary, q_layers,
-                          q_law, _log_length_mode(act, sigma_w, q_law, depth), regime,
-                          tuple(notes))
+            notes.append(
+                f"inputs are not at the fixed point: layer {worst + 1} has q = "
+                f"{q_layers[worst]:.4g} against q* = {q_law:.4g}; the prediction takes "
+                "every layer at q* (feed steady-state inputs for a like-for-like "
+                "comparison)"
+            )
+    at = (
+        f"every layer at q = {q_law:.6g}"
+        if q_law == q_star or factor != factor
+        else f"the law of phi'(h)^2 taken at q = {q_law:.6g} (the same at every q > 0 for "
+        f"{act.label}; q* = 0)"
+    )
+    regime = (
+        f"N -> infinity with L = {depth} fixed; {at}; {_ensemble_text(asked)} free of "
+        "the diagonal factors"
+    )
+    p = _plain_prediction(
+        act,
+        kind,
+        sigma_w,
+        sigma_b,
+        depth,
+        points,
+        summary,
+        q_layers,
+        q_law,
+        _log_length_mode(act, sigma_w, q_law, depth),
+        regime,
+        tuple(notes),
+    )
     return _finish(dataclasses.replace(p, length_factor=factor), act, asked)
 
 
 def _ensemble_text(asked: str) -> str:
     if asked == "uniform":
-        return ("uniform weights (predicted as Gaussian: same variance, same infinite-width "
-                "limit)")
+        return "uniform weights (predicted as Gaussian: same variance, same infinite-width limit)"
     return f"{asked} weights"
 
 
 def _decay_note(act, factor: float, q_layers: np.ndarray, q_law: float) -> str:
     """How the length evolves when q* = 0 (or grows) for a homogeneous phi."""
     tiny = float(np.finfo(np.float64).tiny)
-    text = (f"the length map's fixed point is q* = 0: without a bias the pre-activation "
-            f"variance changes by the factor sigma_w^2 E[phi(h)^2]/q = {factor:.6g} per layer "
-            f"(q^1 = {q_layers[0]:.4g}, q^L = {q_layers[-1]:.4g}); phi' of {act.label} has the "
-            f"same law at every q > 0, so the Jacobian spectrum does not depend on the input's "
-            f"scale and the prediction is taken at q = {q_law:.6g}")
+    text = (
+        f"the length map's fixed point is q* = 0: without a bias the pre-activation "
+        f"variance changes by the factor sigma_w^2 E[phi(h)^2]/q = {factor:.6g} per layer "
+        f"(q^1 = {q_layers[0]:.4g}, q^L = {q_layers[-1]:.4g}); phi' of {act.label} has the "
+        f"same law at every q > 0, so the Jacobian spectrum does not depend on the input's "
+        f"scale and the prediction is taken at q = {q_law:.6g}"
+    )
     if factor < 1.0:
         n = math.log(tiny / q_law) / math.log(factor)
         if n < q_layers.size:
-            text += (f"; the forward pass itself falls below the float64 range after about "
-                     f"{n:.0f} layers (float32: {math.log(1.18e-38 / q_law) / math.log(factor):.0f}), "
-                     "where a measured Jacobian loses its sign pattern")
+            text += (
+                f"; the forward pass itself falls below the float64 range after about "
+                f"{n:.0f} layers (float32: {math.log(1.18e-38 / q_law) / math.log(factor):.0f}), "
+                "where a measured Jacobian loses its sign pattern"
+            )
     return text
 
 
@@ -293,38 +338,74 @@ def _finish(p: Prediction, act, asked: str) -> Prediction:
     notes = list(p.notes)
     bad = p.moments.unrepresentable()
     if bad:
-        logs = ", ".join(f"ln {k} = {v:.6g}" for k, v in zip(("m1", "m2", "m3", "m4"),
-                                                             p.moments.logs)
-                         if f"{k}" in bad)
-        notes.append(f"{', '.join(bad)} lie outside the float64 range and are reported as null "
-                     f"({logs}): read lambda_moments in logs (log_m1 .. log_m4)")
+        logs = ", ".join(
+            f"ln {k} = {v:.6g}"
+            for k, v in zip(("m1", "m2", "m3", "m4"), p.moments.logs)
+            if f"{k}" in bad
+        )
+        notes.append(
+            f"{', '.join(bad)} lie outside the float64 range and are reported as null "
+            f"({logs}): read lambda_moments in logs (log_m1 .. log_m4)"
+        )
     outside = _mass_outside_float_range(p.density)
     if outside > _OUTSIDE_NOTE:
         lo, hi = p.density.log_support
-        notes.append(f"{100 * outside:.3g}% of the law of lambda lies outside the float64 range "
-                     f"(ln lambda from {lo:.6g} to {hi:.6g}): the density is reported in ln lambda "
-                     "(log_x, rho_log, log_support); its lambda form (x, rho, support) is not "
-                     "faithful outside 1e-308 .. 1e308")
+        notes.append(
+            f"{100 * outside:.3g}% of the law of lambda lies outside the float64 range "
+            f"(ln lambda from {lo:.6g} to {hi:.6g}): the density is reported in ln lambda "
+            "(log_x, rho_log, log_support); its lambda form (x, rho, support) is not "
+            "faithful outside 1e-308 .. 1e308"
+        )
     regime = p.regime
     if asked == "uniform" and "gaussian weights" in regime:
         regime = regime.replace("gaussian weights", _ensemble_text(asked))
-    return dataclasses.replace(p, weights=asked, ensemble=p.weights, slope=act.slope,
-                               notes=tuple(notes), regime=regime)
+    return dataclasses.replace(
+        p, weights=asked, ensemble=p.weights, slope=act.slope, notes=tuple(notes), regime=regime
+    )
 
 
-def _plain_prediction(act, kind, sigma_w, sigma_b, depth, points, summary, q_layers, q_law,
-                      log_length_mode, regime, notes) -> Prediction:
+def _plain_prediction(
+    act,
+    kind,
+    sigma_w,
+    sigma_b,
+    depth,
+    points,
+    summary,
+    q_layers,
+    q_law,
+    log_length_mode,
+    regime,
+    notes,
+) -> Prediction:
     """Law of phi'(h)^2 at ``q_law`` -> moments, density and ln s statistics -> Prediction."""
     law = fp.derivative_law(act, 1.0 if math.isnan(q_law) else q_law)
     moments = fp.plain_moments(law, kind, sigma_w, depth)
     density = fp.plain_density(law, kind, sigma_w, depth, points)
     mean, std = log_lambda_stats(density)
-    length_mode = (math.exp(log_length_mode) if abs(log_length_mode) <= fp._LOG_HUGE
-                   else math.nan)
-    return Prediction("plain", act.name, kind, float(sigma_w), float(sigma_b), int(depth), 1.0,
-                      summary, q_layers, q_law, math.nan, moments, density, mean / 2.0,
-                      std / 2.0, length_mode, False, regime, notes,
-                      log_length_mode_s=log_length_mode)
+    length_mode = math.exp(log_length_mode) if abs(log_length_mode) <= fp._LOG_HUGE else math.nan
+    return Prediction(
+        "plain",
+        act.name,
+        kind,
+        float(sigma_w),
+        float(sigma_b),
+        int(depth),
+        1.0,
+        summary,
+        q_layers,
+        q_law,
+        math.nan,
+        moments,
+        density,
+        mean / 2.0,
+        std / 2.0,
+        length_mode,
+        False,
+        regime,
+        notes,
+        log_length_mode_s=log_length_mode,
+    )
 
 
 def _predict_unbounded(act, kind, sigma_w, sigma_b, depth, input_variance, points) -> Prediction:
@@ -333,15 +414,31 @@ def _predict_unbounded(act, kind, sigma_w, sigma_b, depth, input_variance, point
     point, with the law taken at q = 1 (``q_law`` NaN) and a note that the forward pass grows."""
     q0 = 1.0 if input_variance is None else float(input_variance)
     q_layers = mf.q_trajectory(act, sigma_w, sigma_b, q0, depth)
-    notes = (f"no finite fixed point of the length map: the pre-activation variance grows "
-             f"without bound, from q^1 = {q_layers[0]:.4g} to q^L = {q_layers[-1]:.4g}, but phi' of "
-             f"{act.label} has the same law at every variance, so the Jacobian spectrum does not "
-             "depend on it and the prediction stands; the forward pass itself may overflow in "
-             "float32 at large depth",)
-    regime = (f"N -> infinity with L = {depth} fixed; the law of phi'(h)^2 is the same at every "
-              f"q^l; {kind} weights free of the diagonal factors")
-    return _plain_prediction(act, kind, sigma_w, sigma_b, depth, points, None, q_layers,
-                             math.nan, math.nan, regime, notes)
+    notes = (
+        f"no finite fixed point of the length map: the pre-activation variance grows "
+        f"without bound, from q^1 = {q_layers[0]:.4g} to q^L = {q_layers[-1]:.4g}, but phi' of "
+        f"{act.label} has the same law at every variance, so the Jacobian spectrum does not "
+        "depend on it and the prediction stands; the forward pass itself may overflow in "
+        "float32 at large depth",
+    )
+    regime = (
+        f"N -> infinity with L = {depth} fixed; the law of phi'(h)^2 is the same at every "
+        f"q^l; {kind} weights free of the diagonal factors"
+    )
+    return _plain_prediction(
+        act,
+        kind,
+        sigma_w,
+        sigma_b,
+        depth,
+        points,
+        None,
+        q_layers,
+        math.nan,
+        math.nan,
+        regime,
+        notes,
+    )
 
 
 def _log_length_mode(act, sigma_w: float, q: float, depth: int) -> float:
@@ -359,19 +456,43 @@ def _predict_residual(act, kind, sigma_w, sigma_b, depth, alpha, q0, points) -> 
     per_block = tau / depth
     notes = []
     if per_block > 0.1:
-        notes.append(f"each block contributes alpha^2 sigma_w^2 E[phi'^2] = {per_block:.3g} to tau; "
-                     "the residual law assumes O(1/L) per block (L large), so expect the measured "
-                     "spread to differ (scale sigma_w^2 or alpha^2 like 1/L)")
+        notes.append(
+            f"each block contributes alpha^2 sigma_w^2 E[phi'^2] = {per_block:.3g} to tau; "
+            "the residual law assumes O(1/L) per block (L large), so expect the measured "
+            "spread to differ (scale sigma_w^2 or alpha^2 like 1/L)"
+        )
     mean_phi = float(np.dot(*_mean_phi(act, q_layers[0])))
     mean_mode = abs(mean_phi) > 1e-8 * math.sqrt(q_layers[0])
     if mean_mode:
-        notes.append(f"E[phi(h)] = {mean_phi:.3g} != 0: the stack grows a mean mode, one outlier "
-                     "singular value per draw far above the bulk; the law describes the bulk only")
-    regime = (f"N -> infinity and L -> infinity with tau = {tau:.6g} fixed (O(1/L) branch "
-              f"variance per block); {kind} weights; q^l from input variance {q0:.6g}")
-    return Prediction("residual", act.name, kind, float(sigma_w), float(sigma_b), int(depth),
-                      float(alpha), None, q_layers, math.nan, tau, moments, density,
-                      mean / 2.0, std / 2.0, math.nan, mean_mode, regime, tuple(notes))
+        notes.append(
+            f"E[phi(h)] = {mean_phi:.3g} != 0: the stack grows a mean mode, one outlier "
+            "singular value per draw far above the bulk; the law describes the bulk only"
+        )
+    regime = (
+        f"N -> infinity and L -> infinity with tau = {tau:.6g} fixed (O(1/L) branch "
+        f"variance per block); {kind} weights; q^l from input variance {q0:.6g}"
+    )
+    return Prediction(
+        "residual",
+        act.name,
+        kind,
+        float(sigma_w),
+        float(sigma_b),
+        int(depth),
+        float(alpha),
+        None,
+        q_layers,
+        math.nan,
+        tau,
+        moments,
+        density,
+        mean / 2.0,
+        std / 2.0,
+        math.nan,
+        mean_mode,
+        regime,
+        tuple(notes),
+    )
 
 
 def _mean_phi(act, q: float) -> tuple[np.ndarray, np.ndarray]:

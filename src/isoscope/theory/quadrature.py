@@ -27,7 +27,7 @@ NODES = 40
 _INV_SQRT_2PI = 1.0 / np.sqrt(2.0 * np.pi)
 
 
-@functools.lru_cache(maxsize=None)
+@functools.cache
 def _legendre(n: int) -> tuple[np.ndarray, np.ndarray]:
     x, w = np.polynomial.legendre.leggauss(n)
     x.setflags(write=False)
@@ -81,8 +81,13 @@ def expect(f: Callable[[np.ndarray], np.ndarray], q: float, kinks: Sequence[floa
     return float(np.dot(w, f(s * z)))
 
 
-def expect_bivariate(f: Callable[[np.ndarray, np.ndarray], np.ndarray], q1: float, q2: float,
-                     rho: float, kinks: Sequence[float] = ()) -> float:
+def expect_bivariate(
+    f: Callable[[np.ndarray, np.ndarray], np.ndarray],
+    q1: float,
+    q2: float,
+    rho: float,
+    kinks: Sequence[float] = (),
+) -> float:
     """``E[f(u1, u2)]`` for a centred Gaussian pair with variances q1, q2 and correlation rho.
 
     Written as u1 = sqrt(q1) z1, u2 = sqrt(q2) (rho z1 + sqrt(1 - rho^2) z2) with z1, z2
