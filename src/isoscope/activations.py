@@ -294,8 +294,8 @@ def _leaky_row(slope: float) -> Activation:
     )
 
 
-_ROWS = tuple(_leaky_row(LEAKY_SLOPE) if a is None else a for a in _ROWS)
-_REGISTRY: dict[str, Activation] = {a.name: a for a in _ROWS}
+_TABLE: tuple[Activation, ...] = tuple(_leaky_row(LEAKY_SLOPE) if a is None else a for a in _ROWS)
+_REGISTRY: dict[str, Activation] = {a.name: a for a in _TABLE}
 _ALIASES = {
     "swish": "silu",
     "hardtanh": "hard-tanh",

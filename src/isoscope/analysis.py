@@ -12,7 +12,7 @@ from __future__ import annotations
 import dataclasses
 import math
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from concurrent import futures
 from pathlib import Path
 
@@ -171,6 +171,8 @@ class Analysis:
 def spec_activation(spec: Spec) -> Activation:
     """The spec's activation as one registry object (leaky ReLU with ``network.leaky_slope``)."""
     n = spec.network
+    if n.activation is None:
+        raise ValueError(f"spec {spec.name!r} (family {n.family!r}) names no activation")
     return get_activation(
         n.activation, slope=n.leaky_slope if n.activation == "leaky-relu" else None
     )
@@ -183,6 +185,7 @@ def build_network(spec: Spec) -> Network:
     if n.family == "python":
         return _factory(spec).network
     act = spec_activation(spec)
+    assert n.depth is not None, "a built-in family always has a depth (spec.py)"
     if n.family == "residual":
         return residual_stack(
             n.width,
@@ -214,6 +217,7 @@ def _factory(spec: Spec):
     from isoscope.factory import load_factory
 
     base = Path(spec.source).parent if spec.source else Path.cwd()
+    assert spec.network.factory is not None, "a python family always names its factory (spec.py)"
     try:
         return load_factory(spec.network.factory, base, spec.network.width)
     except InputError as e:
@@ -341,8 +345,8 @@ def plan_inputs(spec: Spec) -> tuple[InputPlan, tuple[str, ...]]:
         return InputPlan(
             "gaussian", a.input_variance, f"x ~ N(0, {a.input_variance:g}) in every coordinate"
         ), ()
-    spec, _ = theory_design(spec)
-    if spec is None:
+    design, _ = theory_design(spec)
+    if design is None:
         return (
             InputPlan(
                 "gaussian",
@@ -352,6 +356,7 @@ def plan_inputs(spec: Spec) -> tuple[InputPlan, tuple[str, ...]]:
             ),
             (),
         )
+    spec = design  # a user's network is planned as its equivalent built-in design
     if spec.network.family == "residual":
         return (
             InputPlan(
@@ -416,7 +421,7 @@ def _homogeneous_plan(spec: Spec, act: Activation, v: float) -> tuple[InputPlan,
         q1 = sw * sw * mean_field.length_map(act, 1.0, 0.0, v)
         if 0.0 < factor < 1.0 and q1 > 0:
             layer = 1 + math.log(tiny / q1) / math.log(factor)
-            if layer < spec.network.depth:
+            if spec.network.depth is not None and layer < spec.network.depth:
                 warnings = (
                     f"the pre-activation variance falls by {factor:.6g} per layer and "
                     f"leaves the {spec.analysis.dtype} range after about {layer:.0f} of "
@@ -442,6 +447,7 @@ def _load_inputs(spec: Spec, dtype) -> np.ndarray:
             message, expected=expected, hint=hint, file=spec.source, key="analysis.input_file"
         )
 
+    assert a.input_file is not None, "input = 'file' always names its file (spec.py)"
     path = Path(a.input_file)
     try:
         x = np.load(path, allow_pickle=False)
@@ -506,6 +512,7 @@ def _draw_input(
 ) -> jax.Array:
     z = jax.random.normal(key, (width,), dtype)
     if plan.kind == "steady-state":
+        assert activation is not None, "a steady state is planned only for a known activation"
         return activation.fn(jnp.sqrt(jnp.asarray(plan.variance, dtype)) * z)
     return jnp.sqrt(jnp.asarray(plan.variance, dtype)) * z
 
@@ -565,6 +572,7 @@ def predict_spec(spec: Spec, plan: InputPlan | None = None, points: int = 400) -
             "an equivalent built-in design (a third return value)"
         )
     n, i = design.network, design.init
+    assert n.depth is not None, "an equivalent design always has a depth"
     return predict(
         spec_activation(design),
         i.weights,
@@ -656,7 +664,7 @@ def layer_predictions(spec: Spec, predicted: Prediction) -> tuple[np.ndarray, np
     return q, (branch if n.family == "plain" else 1.0 + n.alpha * n.alpha * branch)
 
 
-def isometric_until(depths: np.ndarray, scores: np.ndarray) -> int | None:
+def isometric_until(depths: np.ndarray, scores: Sequence[float] | np.ndarray) -> int | None:
     """The largest of ``depths`` up to which every score is at least ``ISOMETRIC_SCORE``
     (``None`` when the first is not; a NaN score is not isometric)."""
     ok = np.asarray(scores, dtype=float) >= ISOMETRIC_SCORE
@@ -774,7 +782,7 @@ def _analyze(spec: Spec, progress: Callable[[int, int], None] | None) -> Analysi
     route, reason = routes.choose_route(spec, network.layer is not None)
     depths = (
         profile_depths(spec.network.depth)
-        if network.layer is not None and route != "matrix-free"
+        if network.layer is not None and route != "matrix-free" and spec.network.depth is not None
         else None
     )
     # theory depends on the design only: the prediction, then the profile's shallower
@@ -824,7 +832,7 @@ class _Draws:
     spectrum: Spectrum | None
     fault: jac.Fault | None
     fault_draw: int
-    partial: object
+    partial: jac.PartialSpectra | None
     layers: list
     quadrature: tuple[dict, ...] | None
     seconds: dict[str, float]
@@ -837,7 +845,8 @@ def _draws(spec, network, design, dtype, plan, file_inputs, route, depths, progr
     total = spec.analysis.inputs
     activation = spec_activation(design) if plan.kind == "steady-state" else None
     seconds = {"sampling": 0.0, "jacobian": 0.0, "svd": 0.0, "profile": 0.0}
-    rows, fault, partial, layers, quadrature, i = [], None, None, [], [], 0
+    rows: list[np.ndarray] = []
+    fault, partial, layers, quadrature, i = None, None, [], [], 0
     for i in range(total):
         t = time.perf_counter()
         k_draw = jax.random.fold_in(root, i)
@@ -870,6 +879,7 @@ def _draws(spec, network, design, dtype, plan, file_inputs, route, depths, progr
         if draw.fault is not None:
             fault = draw.fault
             break
+        assert draw.log_s is not None, "a draw without a fault has its spectrum"
         rows.append(draw.log_s)
         partial = draw.partial if i == 0 else partial
         if draw.quadrature is not None:
@@ -907,6 +917,7 @@ def _finish(
             "sigma_w or the depth, or use float64",
         )
     else:
+        assert spectrum is not None, "draws without a fault have a spectrum"
         score = score_spectrum(spectrum, depth)
         warnings += _precision_warnings(spectrum)
     if route == "matrix-free":

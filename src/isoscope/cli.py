@@ -19,6 +19,7 @@ import time
 import traceback
 from importlib import resources
 from pathlib import Path
+from typing import NoReturn
 
 from isoscope.errors import InputError, SolverError, TheoryError, did_you_mean
 
@@ -185,7 +186,7 @@ def _cmd_demo(args) -> int:
         intro=DEMO_INTRO,
     )
     _print_comparison(
-        *done,
+        done,
         policy,
         args.json,
         f"wrote {args.out}/report.html (open it in a browser); the four specs are in "
@@ -206,7 +207,9 @@ def _compare_specs(args):
             expected="two or more SPEC.toml files",
             hint="use `isoscope analyze` for one design",
         )
-    specs, seen, folders = [], {}, {}
+    specs: list = []
+    seen: dict[str, str] = {}
+    folders: dict[str, tuple[str, str]] = {}
     for path in args.specs:
         spec = load_spec(path)
         data = spec.to_dict()
@@ -247,7 +250,7 @@ def _cmd_compare(args) -> int:
     )
     done = _run_comparison(specs, out, texts, policy, args.json)
     _print_comparison(
-        *done,
+        done,
         policy,
         args.json,
         None
@@ -257,8 +260,10 @@ def _cmd_compare(args) -> int:
     return 0
 
 
-def _print_comparison(analyses, limits, ranking, policy, as_json, wrote):
-    """``comparison.json`` on stdout, or the terminal table and the line saying what was written."""
+def _print_comparison(done, policy, as_json, wrote):
+    """``comparison.json`` on stdout, or the terminal table and the line saying what was written;
+    ``done`` is what :func:`_run_comparison` returns (analyses, limits, ranking)."""
+    analyses, limits, ranking = done
     if as_json:
         from isoscope.report import comparison_dict, to_json
 
@@ -517,7 +522,7 @@ def _cmd_show(args) -> int:
     if args.json:
         sys.stdout.write(to_json(show_dict(view)))
         return 0
-    if args.x is not None and args.y is not None:
+    if args.x is not None and args.y is not None and view.matrices is not None:
         print(show_matrix_text(view.matrices[view.metric]))
     else:
         metrics = list(dict.fromkeys((view.metric, *PHASE_METRICS, "score.verdict")))
@@ -829,7 +834,7 @@ _INVALID_CHOICE = re.compile(r"invalid choice: '?(?P<got>[^' ]*)'? \(choose from
 class _Parser(argparse.ArgumentParser):
     """argparse with the nearest valid name suggested for a misspelled command or choice."""
 
-    def error(self, message: str):  # type: ignore[override]
+    def error(self, message: str) -> NoReturn:
         m = _INVALID_CHOICE.search(message)
         if m:
             allowed = [c.strip().strip("'") for c in m["allowed"].split(",")]

@@ -68,7 +68,8 @@ class _DrawCache:
     """Least-recently-used store of unit draws, bounded in bytes."""
 
     def __init__(self, max_bytes: int):
-        self.max_bytes, self.bytes, self.items = max_bytes, 0, OrderedDict()
+        self.max_bytes, self.bytes = max_bytes, 0
+        self.items: OrderedDict[tuple, jax.Array] = OrderedDict()
         self.hits = self.misses = 0
 
     def get(self, kind: str, sampler: Callable, key, shape: tuple[int, ...], dtype) -> jax.Array:

@@ -269,6 +269,7 @@ def profiled_jacobian(network: Network, params, x: jax.Array, depths) -> Profile
         or depths[-1] > network.depth
     ):
         raise ValueError(f"depths must increase within 1..{network.depth}, got {depths.tolist()}")
+    assert network.depth is not None, "a stack with layers has a depth"
     slot = np.full(network.depth, depths.size, dtype=np.int32)  # unkept layers write a scratch slot
     slot[depths - 1] = np.arange(depths.size, dtype=np.int32)
     j, m, e = _compiled_profiled(network.layer)(
@@ -701,6 +702,7 @@ def stable_log_singular_values(
     keep = np.asarray([network.depth] if depths is None else depths, dtype=int)
     if keep.size == 0 or np.any(np.diff(keep) <= 0) or keep[0] < 1 or keep[-1] > network.depth:
         raise ValueError(f"depths must increase within 1..{network.depth}, got {keep.tolist()}")
+    assert network.depth is not None, "a stack with layers has a depth"
     slot = np.full(network.depth, keep.size, dtype=np.int32)
     slot[keep - 1] = np.arange(keep.size, dtype=np.int32)
     t_buf, d_buf, stretch = _compiled_stable(network.layer)(
@@ -710,11 +712,11 @@ def stable_log_singular_values(
     stretch = np.asarray(stretch, dtype=np.float64)
     running = np.maximum.accumulate(_rank_deficits(stretch, np.asarray(x).dtype))
     partial = running[keep - 1]
-    rows, sweeps = [], 0
+    recovered, sweeps = [], 0
     for t, d, lost in zip(t_buf, d_buf, partial):
         log_s, sweeps = graded_log_singular_values(d, t)
-        rows.append(_zero_bottom(log_s, int(lost)))
-    rows = np.stack(rows)
+        recovered.append(_zero_bottom(log_s, int(lost)))
+    rows = np.stack(recovered)
     full = rows[-1] if keep[-1] == network.depth else None
     if full is None:
         full = stable_log_singular_values(network, params, x).log_s

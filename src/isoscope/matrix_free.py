@@ -190,7 +190,8 @@ def lanczos_quadrature(
     dim = int(x.shape[0])
     m = min(steps, dim)
     z = rademacher_probes(key, probes, dim, x.dtype)
-    return QuadratureRule(*_compiled_rule(network.apply, m)(params, x, z), dim)
+    nodes, weights, ritz, ritz_weights, residuals = _compiled_rule(network.apply, m)(params, x, z)
+    return QuadratureRule(nodes, weights, ritz, ritz_weights, residuals, dim)
 
 
 def quadrature_summary(rule: QuadratureRule) -> dict[str, Any]:

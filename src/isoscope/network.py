@@ -46,7 +46,7 @@ class Network:
     """A network at initialization, as pure functions.
 
     Attributes:
-      init: ``init(key) -> params``.
+      init: ``init(key, dtype) -> params``.
       apply: ``apply(params, x) -> y`` for one input ``x`` of shape ``(width,)``.
       width: input dimension N (built-in stacks: also every hidden width).
       depth: number of weight layers L (``None`` when unknown: a user's black box).
@@ -60,7 +60,7 @@ class Network:
         kernel size (``None`` for dense stacks).
     """
 
-    init: Callable[[jax.Array], Params]
+    init: Callable[[jax.Array, Any], Params]
     apply: Callable[[Params, jax.Array], jax.Array]
     width: int
     depth: int | None

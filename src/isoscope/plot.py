@@ -9,6 +9,7 @@ shaded in warm grey; designs in a comparison take the
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
 from pathlib import Path
 from typing import NamedTuple
 
@@ -133,7 +134,7 @@ def _note(text: str):
     return Line2D([], [], linestyle="none", marker="none", label=text)
 
 
-def _legend_outside(ax, notes: list[str] = ()) -> None:
+def _legend_outside(ax, notes: Sequence[str] = ()) -> None:
     """Legend (and notes) to the right of the axes, so that it never covers bars or curves."""
     handles, labels = ax.get_legend_handles_labels()
     handles += [_note(t) for t in notes]

@@ -355,16 +355,16 @@ class output_folder:
             self.reservation = reserve(self.target)
         return self.reservation.folder
 
-    def __exit__(self, exc_type, exc, tb) -> bool:
+    def __exit__(self, exc_type, exc, tb) -> None:
+        assert self.reservation is not None, "__exit__ runs after __enter__"
         if exc_type is not None:
             self.reservation.abort()
-            return False
+            return
         try:
             self.reservation.commit()
         except BaseException:
             self.reservation.abort()
             raise
-        return False
 
 
 def _square(v: float) -> float:
@@ -419,7 +419,7 @@ def _figures(analysis: Analysis, folder: Path, prefix: str = "") -> dict[str, Pa
         )
         out["depth"] = plot.save(fig, folder / f"{prefix}spread-by-depth")[0]
     n, i = analysis.spec.network, analysis.spec.init
-    if n.family in ("plain", "conv1d", "conv2d"):
+    if n.family in ("plain", "conv1d", "conv2d") and n.activation is not None:
         try:
             line = mean_field.critical_line(n.activation)
         except TheoryError:  # no critical line for this activation: nothing to draw
@@ -626,7 +626,7 @@ def write_analysis_folder(analysis: Analysis, out: str | Path | Reservation) -> 
     return Path(out.target if isinstance(out, Reservation) else out)
 
 
-def _cell(v: float, spec: str) -> str:
+def _cell(v: Any, spec: str) -> str:
     """A number for the terminal as JSON would give it: finite, or "—" where JSON has null."""
     return format(v, spec) if isinstance(v, (int, float)) and math.isfinite(v) else "—"
 
@@ -792,7 +792,7 @@ def candidate_dict(c, why: str | None = None) -> dict[str, Any]:
     sc = a.score if a is not None else None
     measured = (
         None
-        if a is None
+        if a is None or sc is None
         else {
             "log_s_std": sc.log_s_std,
             "log_s_mean": a.spectrum.log_s_mean if a.spectrum else None,

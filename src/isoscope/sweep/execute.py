@@ -342,7 +342,8 @@ class DaskWorkers:
 
     def __init__(self, address: str, workers: int, timeout: float = 10.0):
         self.address, self.workers, self.timeout = address, workers, timeout
-        self.cluster = self.client = None
+        self.cluster: Any = None
+        self.client: Any = None
         self.dashboard: str | None = None
 
     def describe(self) -> str:

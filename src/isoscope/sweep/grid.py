@@ -203,7 +203,7 @@ def _check_values(source, table: str, key: str, values) -> list:
             "at least one value",
             "an empty list would make the grid empty; drop the key instead",
         )
-    seen = []
+    seen: list[Any] = []
     for v in values:
         if isinstance(v, (dict, list)):
             raise _refuse(

@@ -138,8 +138,9 @@ def run_sweep(
         )
         description = "nothing to run" if pool is None else pool.describe()
         with pool if pool is not None else contextlib.nullcontext():
-            if pool is not None and getattr(pool, "dashboard", None):
-                description += f" (dashboard {pool.dashboard})"
+            dashboard = getattr(pool, "dashboard", None)
+            if dashboard:
+                description += f" (dashboard {dashboard})"
             if on_start is not None:
                 on_start(description, len(todo), skipped)
             with Store.writer(store_path) as store:

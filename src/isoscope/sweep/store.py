@@ -315,6 +315,7 @@ class Store:
                 "VALUES (?, ?, ?, ?, 'running')",
                 (_now(), grid_file, grid_text, executor),
             )
+        assert cur.lastrowid is not None, "an INSERT sets lastrowid"
         return int(cur.lastrowid)
 
     def end_run(self, run: int, computed: int, skipped: int, failed: int, status: str) -> None:
