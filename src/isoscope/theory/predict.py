@@ -111,7 +111,8 @@ def log_lambda_stats(density: fp.Density) -> tuple[float, float]:
     """
     ell, r = density.log_x, density.rho_log
     parts = [(ell, r)] if ell.size >= 2 else []
-    atoms = [(la, w) for la, w in density.log_atoms if la > -math.inf]
+    _, log_atoms = density._log_form()
+    atoms = [(la, w) for la, w in log_atoms if la > -math.inf]
     mass = sum(float(np.trapezoid(rr, ee)) for ee, rr in parts) + sum(w for _, w in atoms)
     if mass <= 0:
         return math.nan, math.nan
@@ -324,7 +325,8 @@ _OUTSIDE_NOTE = 1e-3
 def _mass_outside_float_range(density: fp.Density) -> float:
     """``P(lambda < 1e-308 or lambda > 1e308)`` of a law (atoms included), from its log grid."""
     lo, hi = math.log(np.finfo(float).tiny), math.log(np.finfo(float).max)
-    out = sum(w for la, w in density.log_atoms if (la < lo and la > -math.inf) or la > hi)
+    _, log_atoms = density._log_form()
+    out = sum(w for la, w in log_atoms if (la < lo and la > -math.inf) or la > hi)
     e, r = density.log_x, density.rho_log
     if e.size >= 2:
         cum = np.concatenate([[0.0], np.cumsum(0.5 * (r[1:] + r[:-1]) * np.diff(e))])
@@ -349,7 +351,7 @@ def _finish(p: Prediction, act, asked: str) -> Prediction:
         )
     outside = _mass_outside_float_range(p.density)
     if outside > _OUTSIDE_NOTE:
-        lo, hi = p.density.log_support
+        lo, hi = p.density._log_form()[0]
         notes.append(
             f"{100 * outside:.3g}% of the law of lambda lies outside the float64 range "
             f"(ln lambda from {lo:.6g} to {hi:.6g}): the density is reported in ln lambda "

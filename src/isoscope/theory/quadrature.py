@@ -38,11 +38,11 @@ def _legendre(n: int) -> tuple[np.ndarray, np.ndarray]:
 def _panel_rule(cuts: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Nodes and plain (Lebesgue) weights on [cuts[0], cuts[-1]], panels between cuts."""
     x, w = _legendre(NODES)
-    edges = [cuts[0]]
+    panel_edges = [cuts[0]]
     for a, b in zip(cuts[:-1], cuts[1:]):
         n = max(1, int(np.ceil((b - a) / PANEL - 1e-12)))
-        edges.extend(np.linspace(a, b, n + 1)[1:])
-    edges = np.asarray(edges)
+        panel_edges.extend(np.linspace(a, b, n + 1)[1:])
+    edges = np.asarray(panel_edges)
     a, b = edges[:-1, None], edges[1:, None]
     half = (b - a) / 2.0
     nodes = (a + b) / 2.0 + half * x[None, :]
