@@ -138,9 +138,11 @@ def safe_folder_name(label: str, fallback: str = "design") -> str:
     Keeps letters and digits (any script, NFKC-normalised), spaces and ``- _ . + ( )``; every
     other character (``/``, ``\\``, NUL, control characters, markup ``< > & " '``, ...) becomes
     ``-``.  Leading dots and dashes are dropped (no hidden names, no ``..``, nothing read as an
-    option), the result is cut to 100 bytes of UTF-8.  When anything was changed, the first 8
-    hex digits of the label's SHA-256 are appended, so that two labels that differ only in
-    removed characters do not share a folder.  An empty result becomes ``fallback``.
+    option).  When anything was changed (or the label is longer than 100 bytes of UTF-8), the
+    kept text is cut to 91 bytes and ``-`` and the first 8 hex digits of the label's SHA-256
+    are appended, so that two labels that differ only in removed characters do not share a
+    folder; an empty kept text becomes ``fallback``.  The result is at most 100 bytes and a
+    fixed point: the name of a folder it made maps to itself.
 
     Examples: ``"tanh-512"`` stays; ``"../../x"`` becomes ``"x-<hash>"``; ``"a/b"`` becomes
     ``"a-b-<hash>"``.
@@ -150,13 +152,12 @@ def safe_folder_name(label: str, fallback: str = "design") -> str:
     while "--" in kept:
         kept = kept.replace("--", "-")
     kept = kept.lstrip(".- ").rstrip(". ")
-    raw = kept.encode("utf-8")
-    if len(raw) > _MAX_NAME_BYTES:
-        kept = raw[:_MAX_NAME_BYTES].decode("utf-8", errors="ignore").rstrip(". ")
-    if kept != label:
-        digest = hashlib.sha256(label.encode("utf-8", errors="surrogatepass")).hexdigest()[:8]
-        kept = f"{kept}-{digest}" if kept else f"{fallback}-{digest}"
-    return kept
+    if kept == label and len(kept.encode("utf-8")) <= _MAX_NAME_BYTES:
+        return kept
+    digest = hashlib.sha256(label.encode("utf-8", errors="surrogatepass")).hexdigest()[:8]
+    raw = kept.encode("utf-8")[: _MAX_NAME_BYTES - 1 - len(digest)]
+    kept = unicodedata.normalize("NFKC", raw.decode("utf-8", errors="ignore")).rstrip(".- ")
+    return f"{kept}-{digest}" if kept else f"{fallback}-{digest}"
 
 
 # ----------------------------------------------------------------------------- process identity
