@@ -127,6 +127,15 @@ def _check_result(r: dict) -> None:
         assert 2 * mean <= plog["log_m1"] + 1e-9  # Jensen on the predicted law
 
 
+# strict: the derandomized cases reproduce two open defects this test found; once they are fixed the
+# test passes, the xfail turns into a failure, and the mark must go
+@pytest.mark.xfail(
+    strict=True,
+    reason="open defects: (1) matrix-free route, python family (width 2, 2 Lanczos steps): the "
+    "pooled mean of ln s exceeds ln(m1)/2 - the moments come from the quadrature and the log "
+    "statistics from its quantiles, which disagree at few steps; (2) a positively homogeneous "
+    "activation in float32 through analysis._homogeneous_plan (analysis.py:419) and score.py:457",
+)
 @given(valid_specs())
 @hsettings(max_examples=40)
 def test_any_valid_spec_gives_a_consistent_result(data):
